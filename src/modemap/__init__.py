@@ -5,6 +5,7 @@ from __future__ import annotations
 from modemap._exceptions import (
     DataError,
     ExpressionError,
+    FitCancelled,
     FitError,
     ModelFileError,
     ModemapError,
@@ -12,6 +13,7 @@ from modemap._exceptions import (
 )
 from modemap.dataset import Dataset, Gap, Run
 from modemap.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
+from modemap.intake import read_data, summarize
 
 __version__ = "0.1.0"
 
@@ -20,6 +22,7 @@ __all__ = [
     "Dataset",
     "Equilibrium",
     "ExpressionError",
+    "FitCancelled",
     "FitError",
     "Gap",
     "Guard",
@@ -30,4 +33,6 @@ __all__ = [
     "Run",
     "SimulationError",
     "__version__",
+    "read_data",
+    "summarize",
 ]

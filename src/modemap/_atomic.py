@@ -17,7 +17,9 @@ __all__ = ["atomic_write", "write_text_atomic"]
 
 
 @contextlib.contextmanager
-def atomic_write(path: str | os.PathLike[str], mode: str = "w", encoding: str | None = "utf-8") -> Iterator[IO]:
+def atomic_write(
+    path: str | os.PathLike[str], mode: str = "w", encoding: str | None = "utf-8"
+) -> Iterator[IO]:
     """Open a temporary file next to ``path``; rename it over ``path`` on success.
 
     Parameters
@@ -32,15 +34,27 @@ def atomic_write(path: str | os.PathLike[str], mode: str = "w", encoding: str | 
     target.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
     try:
-        with os.fdopen(fd, mode, encoding=None if "b" in mode else encoding, newline="" if "b" not in mode else None) as fh:
+        with os.fdopen(
+            fd,
+            mode,
+            encoding=None if "b" in mode else encoding,
+            newline="" if "b" not in mode else None,
+        ) as fh:
             yield fh
             fh.flush()
             os.fsync(fh.fileno())
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, target)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
         raise
+
+
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
 
 
 def write_text_atomic(path: str | os.PathLike[str], text: str) -> None:
