@@ -1,0 +1,204 @@
+"""Tests of the switching surfaces (modemap.guards)."""
+
+from __future__ import annotations
+
+import re
+
+import numpy as np
+import pytest
+from sklearn.base import clone
+from sklearn.linear_model import LogisticRegression
+
+from modemap import FitError
+from modemap.guards import SwitchingSurfaces, guard_text, place_equilibria, predict_labels
+from modemap.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
+from modemap.simulate import simulate
+
+
+def regime(rid: int, terms: list[str], coef) -> RegimeModel:
+    c = np.asarray(coef, dtype=float).reshape(len(terms), -1)
+    return RegimeModel(
+        id=rid, samples=0, terms=terms, coefficients=c, stderr=0 * c, noise_cov=np.eye(c.shape[1])
+    )
+
+
+def thermostat(low: float = 55.0, high: float = 65.0) -> HybridModel:
+    heat = regime(0, ["1", "T"], [8.0, -0.1])  # equilibrium 80 degC, time constant 10
+    cool = regime(1, ["1", "T"], [2.0, -0.1])  # equilibrium 20 degC
+    guards = [
+        Guard(0, 1, ["T"], np.array([1.0]), -high),
+        Guard(1, 0, ["T"], np.array([-1.0]), low),
+    ]
+    return HybridModel(
+        states=["T"], inputs=[], form="continuous", regimes=[heat, cool], guards=guards,
+        data_range={"T": (20.0, 80.0)}, units={"T": "degC"},
+    )  # fmt: skip
+
+
+def labelled_runs(model, x0s, t, inputs=None, noise=0.1, seed=0):
+    """Simulate runs of a hand-built model, add measurement noise, keep the true labels."""
+    rng = np.random.default_rng(seed)
+    Z, labels, lengths = [], [], []
+    for x0 in x0s:
+        res = simulate(model, t, x0, inputs)
+        assert res.status == 0
+        x = res.states + rng.normal(0.0, noise, res.states.shape)
+        Z.append(x if inputs is None else np.hstack([x, inputs]))
+        labels.append(res.regimes)
+        lengths.append(t.size)
+    return np.vstack(Z), np.concatenate(labels), lengths
+
+
+@pytest.fixture(scope="module")
+def thermostat_data():
+    t = np.arange(0.0, 150.0, 0.1)
+    return labelled_runs(thermostat(), [[50.0], [58.0], [62.0]], t)
+
+
+def test_thermostat_thresholds_and_hysteresis(thermostat_data):
+    Z, labels, lengths = thermostat_data
+    surf = SwitchingSurfaces().fit(Z, labels, lengths, ["T"], units={"T": "degC"})
+    # hysteresis: the per-source family must beat the memoryless one (common practice:
+    # a memoryless classifier cannot hold two thresholds for one variable)
+    assert surf.kind_ == "per-source"
+    assert surf.scores_["per-source"]["cost"] < surf.scores_["memoryless"]["cost"]
+    by_pair = {(g.source, g.target): g for g in surf.guards_}
+    assert set(by_pair) == {(0, 1), (1, 0)}
+    up, down = by_pair[(0, 1)], by_pair[(1, 0)]
+    # the simulated ground truth switches at 65 (heating -> cooling) and 55 degC
+    assert -up.offset / up.weights[0] == pytest.approx(65.0, abs=0.3)
+    assert -down.offset / down.weights[0] == pytest.approx(55.0, abs=0.3)
+    assert up.weights[0] > 0 > down.weights[0]
+    m_up = re.fullmatch(r"switch 0 -> 1 when T > (\d+\.\d) degC", up.text)
+    m_down = re.fullmatch(r"switch 1 -> 0 when T < (\d+\.\d) degC", down.text)
+    assert m_up and m_down, (up.text, down.text)
+    assert float(m_up.group(1)) == pytest.approx(65.0, abs=0.3)
+    assert surf.variables_ == ["T"]
+
+
+def test_memoryless_family_cannot_hold_two_thresholds(thermostat_data):
+    Z, labels, lengths = thermostat_data
+    surf = SwitchingSurfaces(kind="memoryless").fit(Z, labels, lengths, ["T"])
+    assert surf.kind_ == "memoryless"
+    up, down = sorted(surf.guards_, key=lambda g: g.source)
+    # one boundary, shared by both directions (values of opposite sign)
+    assert -up.offset / up.weights[0] == pytest.approx(-down.offset / down.weights[0], abs=1e-9)
+
+
+def test_predict_next_and_guard_values(thermostat_data):
+    Z, labels, lengths = thermostat_data
+    surf = SwitchingSurfaces(kind="per-source").fit(Z, labels, lengths, ["T"])
+    assert surf.predict_next(np.array([66.0]), 0) == 1
+    assert surf.predict_next(np.array([60.0]), 0) == 0  # inside the band: stay
+    assert surf.predict_next(np.array([60.0]), 1) == 1
+    assert surf.predict_next(np.array([54.0]), 1) == 0
+    vals = surf.guard_values(np.array([60.0]), 0)
+    assert list(vals) == [1] and vals[1] < 0
+
+
+def test_gate_driven_guards_use_the_gate():
+    off = regime(0, ["i", "v"], [[0, 1], [-1, -1]])
+    on = regime(1, ["1", "i", "v"], [[10, 0], [0, 1], [-1, -1]])
+    truth = [Guard(0, 1, ["q"], np.array([1.0]), -0.5), Guard(1, 0, ["q"], np.array([-1.0]), 0.5)]
+    model = HybridModel(
+        states=["i", "v"], inputs=["q"], form="continuous", regimes=[off, on], guards=truth,
+        data_range={"i": (0.0, 10.0), "v": (0.0, 10.0), "q": (0.0, 1.0)},
+    )  # fmt: skip
+    t = np.arange(3000) * 0.01
+    q = ((t % 0.2) < 0.12).astype(float)[:, None]
+    Z, labels, lengths = labelled_runs(model, [[0.0, 0.0]], t, inputs=q, noise=0.02)
+    surf = SwitchingSurfaces().fit(Z, labels, lengths, ["i", "v", "q"])
+    texts = sorted(g.text for g in surf.guards_)
+    assert texts == ["switch 0 -> 1 when q > 0.50", "switch 1 -> 0 when q < 0.50"]
+    for g in surf.guards_:
+        w = dict(zip(g.terms, g.weights, strict=True))
+        assert w["i"] == 0 and w["v"] == 0 and w["q"] != 0
+    # the gate pattern is reproduced exactly on held-out samples (common practice)
+    assert all(s["missed"] == 0 and s["spurious"] == 0 for s in surf.scores_.values())
+
+
+def test_oblique_boundary_matches_logistic_reference():
+    # regime = 1 where x + 2 y > 1 (memoryless); two variables are needed
+    rng = np.random.default_rng(3)
+    n = 4000
+    Z = rng.uniform(-1.0, 2.0, size=(n, 2))
+    Z[:, 1] = np.cumsum(rng.normal(0, 0.05, n)) % 1.5  # slow second variable
+    Z[:, 0] = 0.5 + 1.2 * np.sin(np.arange(n) / 37.0)
+    labels = (Z[:, 0] + 2 * Z[:, 1] > 1).astype(int)
+    surf = SwitchingSurfaces(kind="memoryless").fit(Z, labels, [n], ["x", "y"])
+    g = next(g for g in surf.guards_ if g.source == 0)
+    w = dict(zip(g.terms, g.weights, strict=True))
+    # direction and location of the boundary x + 2 y = 1
+    assert w["y"] / w["x"] == pytest.approx(2.0, rel=0.1)
+    assert -g.offset / w["x"] == pytest.approx(1.0, abs=0.1)  # crosses y = 0 at x = 1
+    # reference library: scikit-learn's own logistic regression on the raw variables
+    ref = LogisticRegression(C=1e3, class_weight="balanced", max_iter=5000).fit(Z, labels)
+    ref_dir = ref.coef_[0] / np.linalg.norm(ref.coef_[0])
+    ours = np.array([w["x"], w["y"]]) / np.hypot(w["x"], w["y"])
+    assert ours @ ref_dir == pytest.approx(1.0, abs=2e-3)
+    assert re.fullmatch(r"switch 0 -> 1 when [\d.]+ x \+ [\d.]+ y > [-\d.]+", g.text), g.text
+
+
+def test_degree_two_guard_is_exact_in_raw_terms():
+    # regime 1 outside the unit circle: x^2 + y^2 > 1 (memoryless)
+    rng = np.random.default_rng(5)
+    ang = np.cumsum(rng.normal(0.05, 0.01, 3000))
+    rad = 1.0 + 0.6 * np.sin(np.arange(3000) / 23.0)
+    Z = np.column_stack([rad * np.cos(ang), rad * np.sin(ang)])
+    labels = (rad > 1.0).astype(int)
+    surf = SwitchingSurfaces(kind="memoryless", degree=2, simplify_tol=0.0).fit(
+        Z, labels, [3000], ["x", "y"]
+    )
+    g = next(g for g in surf.guards_ if g.source == 0)
+    # ground truth circle: the guard's own sign agrees with the circle on almost every sample
+    w = dict(zip(g.terms, g.weights, strict=True))
+    vals = w["x^2"] * Z[:, 0] ** 2 + w["y^2"] * Z[:, 1] ** 2 + w["x"] * Z[:, 0] + w["y"] * Z[:, 1]
+    vals += w["x*y"] * Z[:, 0] * Z[:, 1] + g.offset
+    assert np.mean((vals > 0) == (rad > 1.0)) > 0.99
+    assert w["x^2"] == pytest.approx(w["y^2"], rel=0.1)
+    # re-predicted label sequence from the guards agrees with the ground truth
+    pred = predict_labels(surf.guards_, ["x", "y"], Z, int(labels[0]))
+    assert np.mean(pred == labels) > 0.98
+
+
+def test_degenerate_cases():
+    Z = np.linspace(0, 1, 50)[:, None]
+    # a single regime: no guards
+    surf = SwitchingSurfaces().fit(Z, np.zeros(50, int), [50], ["x"])
+    assert surf.guards_ == []
+    # regime 1 is entered and never left: guards only from regime 0
+    labels = (Z[:, 0] > 0.5).astype(int)
+    surf = SwitchingSurfaces(kind="per-source", holdout=0.0).fit(Z, labels, [50], ["x"])
+    assert [(g.source, g.target) for g in surf.guards_] == [(0, 1)]
+    # midpoint between the samples 24/49 and 25/49 on either side: 0.5
+    assert surf.guards_[0].text == "switch 0 -> 1 when x > 0.50"
+    with pytest.raises(FitError, match="lengths sum"):
+        SwitchingSurfaces().fit(Z, labels, [40], ["x"])
+    with pytest.raises(FitError, match="kind"):
+        SwitchingSurfaces(kind="other").fit(Z, labels, [50], ["x"])
+
+
+def test_estimator_conventions():
+    est = SwitchingSurfaces(kind="memoryless", degree=2, C=5.0)
+    # scikit-learn convention: parameters stored as given, clone reproduces them
+    assert clone(est).get_params() == est.get_params()
+    assert not hasattr(est, "guards_")
+
+
+def test_place_equilibria_marks_virtual_and_reachable():
+    model = thermostat()
+    model.regimes[0].equilibria = [Equilibrium({"T": 80.0}, np.array([-0.1]), "stable node")]
+    model.regimes[1].equilibria = [Equilibrium({"T": 20.0}, np.array([-0.1]), "stable node")]
+    place_equilibria(model)
+    # both equilibria lie beyond their regime's threshold: virtual (the system switches first)
+    assert [r.equilibria[0].inside for r in model.regimes] == [False, False]
+    wide = thermostat(low=10.0, high=90.0)
+    wide.regimes[0].equilibria = [Equilibrium({"T": 80.0}, np.array([-0.1]), "stable node")]
+    place_equilibria(wide.guards, wide.regimes, wide.variables)
+    assert wide.regimes[0].equilibria[0].inside is True
+
+
+def test_guard_text_half_plane_with_units():
+    g = Guard(1, 2, ["T", "w"], np.array([0.83, -0.56]), -12.1 * np.hypot(0.83, 0.56))
+    text = guard_text(g, {"T": "degC", "w": "L/min"}, {"T": 20.0, "w": 5.0})
+    assert text == "switch 1 -> 2 when 0.829 T[degC] - 0.559 w[L/min] > 12.1"
