@@ -1,0 +1,363 @@
+"""One regime's local model: regression rows and the :class:`LocalDynamics` estimator.
+
+:func:`prepare_regression` turns a :class:`~modemap.dataset.Dataset` into
+regression rows: variables ``Z = [states, inputs]`` and targets ``Y``, which
+are the time derivatives of the states (continuous form, estimated per run by
+:func:`modemap.derivatives.differentiate`) or the next states (discrete form,
+``Z = z[:-1]``, ``Y = x[1:]`` per run, so each run loses its last sample).
+
+:class:`LocalDynamics` fits one model to all rows: candidate terms from
+:class:`~modemap.terms.TermLibrary`, statistics accumulated chunk by chunk
+(:func:`modemap.stats.accumulate`), then sequentially thresholded least squares
+(:func:`modemap.sparse.fit_sparse`) or the affine operator
+(:func:`modemap.affine.fit_affine`), the equilibria with the inputs held at
+their medians, and readable equations.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sklearn.base import BaseEstimator
+from sklearn.utils.validation import check_is_fitted
+
+from modemap._exceptions import DataError, FitError
+from modemap.affine import fit_affine
+from modemap.dataset import Dataset
+from modemap.derivatives import differentiate
+from modemap.equations import format_equations
+from modemap.equilibria import find_equilibria
+from modemap.hybrid import RegimeModel
+from modemap.sparse import CRITERIA, fit_sparse
+from modemap.stats import accumulate, accumulate_by_label
+from modemap.terms import TermLibrary
+from modemap.uncertainty import block_bootstrap
+
+__all__ = ["FORMS", "MODELS", "LocalDynamics", "RegressionData", "prepare_regression"]
+
+FORMS = ("continuous", "discrete")
+MODELS = ("sparse", "affine")
+_CV_BLOCKS = 5
+
+
+@dataclass
+class RegressionData:
+    """Regression rows built from a dataset.
+
+    Attributes
+    ----------
+    Z : ndarray of shape (n, n_vars)
+        Variables, states then inputs.
+    Y : ndarray of shape (n, n_states)
+        Derivatives (continuous) or next states (discrete).
+    lengths : ndarray of int
+        Rows per run (runs left with no row are omitted).
+    sample_index : ndarray of shape (n,) of int
+        Position of each row's sample in ``ds.concat()`` order.
+    time : ndarray of shape (n,)
+        Time stamp of each row.
+    run_ids : ndarray of int
+        Index in ``ds.runs`` of each entry of ``lengths``.
+    form : str
+    derivative : dict
+        Derivative settings actually used (empty in discrete form).
+    """
+
+    Z: np.ndarray
+    Y: np.ndarray
+    lengths: np.ndarray
+    sample_index: np.ndarray
+    time: np.ndarray
+    run_ids: np.ndarray
+    form: str = "continuous"
+    derivative: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def n_samples(self) -> int:
+        return int(self.Z.shape[0])
+
+
+def _derivative_request(derivative: str | Mapping[str, Any]) -> tuple[str, dict[str, Any]]:
+    if isinstance(derivative, str):
+        return derivative, {}
+    options = dict(derivative)
+    return str(options.pop("method", "auto")), options
+
+
+def _merge_settings(settings: list[dict[str, Any]]) -> dict[str, Any]:
+    """One settings dict for the model file; per-run details when runs differ."""
+    if not settings:
+        return {}
+    first = dict(settings[0])
+    if any(s != settings[0] for s in settings[1:]):
+        first["per_run"] = [dict(s) for s in settings]
+    return first
+
+
+def prepare_regression(
+    ds: Dataset, *, form: str = "continuous", derivative: str | Mapping[str, Any] = "auto"
+) -> RegressionData:
+    """Regression rows of a dataset.
+
+    Parameters
+    ----------
+    ds : Dataset
+    form : {"continuous", "discrete"}, default "continuous"
+    derivative : str or mapping, default "auto"
+        Method for :func:`modemap.derivatives.differentiate`, or a settings
+        mapping such as ``{"method": "savgol", "window": 15}`` (as recorded in
+        a model file).  Ignored in discrete form.
+
+    Returns
+    -------
+    RegressionData
+    """
+    if form not in FORMS:
+        raise ValueError(f"form must be one of {FORMS}, got {form!r}")
+    method, options = _derivative_request(derivative)
+    Zs, Ys, times, index, lengths, run_ids, settings = [], [], [], [], [], [], []
+    offset = 0
+    for i, run in enumerate(ds.runs):
+        z = np.hstack([run.states, run.inputs]).astype(np.float64, copy=False)
+        if form == "continuous":
+            dx, used = differentiate(run.time, run.states, method, **options)
+            settings.append(used)
+            rows = np.arange(run.n_samples)
+            Zs.append(z), Ys.append(np.asarray(dx).reshape(run.n_samples, -1))
+        else:
+            rows = np.arange(run.n_samples - 1)
+            Zs.append(z[:-1]), Ys.append(run.states[1:])
+        if rows.size:
+            times.append(run.time[rows]), index.append(offset + rows)
+            lengths.append(rows.size), run_ids.append(i)
+        offset += run.n_samples
+    if not lengths:
+        raise DataError("no regression rows: every run is too short", source=ds.source)
+    return RegressionData(
+        Z=np.concatenate(Zs, axis=0),
+        Y=np.concatenate(Ys, axis=0).astype(np.float64, copy=False),
+        lengths=np.asarray(lengths, dtype=np.int64),
+        sample_index=np.concatenate(index).astype(np.int64),
+        time=np.concatenate(times),
+        run_ids=np.asarray(run_ids, dtype=np.int64),
+        form=form,
+        derivative=_merge_settings(settings),
+    )
+
+
+class LocalDynamics(BaseEstimator):
+    """One local model of a system's dynamics, from all samples of a dataset.
+
+    Parameters
+    ----------
+    form : {"continuous", "discrete"}, default "continuous"
+        Fit ``dx/dt = f(x, u)`` or ``x[k+1] = f(x[k], u[k])``.
+    model : {"sparse", "affine"}, default "sparse"
+        Sparse regression on candidate terms, or the affine operator
+        ``A x + B u + c`` (degree-1 terms, plain least squares).
+    degree : int, default 2
+        Polynomial degree of the candidate terms (sparse model).
+    trig : sequence of str, default ()
+        Variables that get ``sin``/``cos`` terms (see :class:`TermLibrary`).
+    custom : sequence of str, default ()
+        Extra terms in the expression grammar.
+    threshold : "auto" or float, default "auto"
+        Normalised threshold (see :mod:`modemap.sparse`).
+    ridge : float, default 0
+    criterion : {"bic", "aic", "cv"}, default "bic"
+        Threshold choice; "cv" uses 5 contiguous blocks of rows.
+    derivative : str or mapping, default "auto"
+        Derivative method (continuous form).
+    n_bootstrap : int, default 0
+        Block-bootstrap replicates for ``inclusion_`` (sparse model); 0 skips.
+    seed : int, default 0
+
+    Attributes
+    ----------
+    library_ : TermLibrary
+    terms_ : list of str
+    coef_, stderr_ : ndarray of shape (n_terms, n_states)
+    support_ : ndarray of bool, shape (n_terms, n_states)
+    noise_cov_ : ndarray of shape (n_states, n_states)
+    threshold_ : ndarray of shape (n_states,)
+    local_fit_ : LocalFit
+    equilibria_ : list of Equilibrium
+        With inputs at their medians; ``inside`` means inside the data box.
+    equations_ : list of str
+    derivative_settings_ : dict
+    inclusion_ : ndarray of shape (n_terms, n_states) or None
+    state_names_, input_names_ : list of str
+    n_samples_ : int
+    """
+
+    def __init__(
+        self,
+        *,
+        form: str = "continuous",
+        model: str = "sparse",
+        degree: int = 2,
+        trig: tuple[str, ...] = (),
+        custom: tuple[str, ...] = (),
+        threshold: float | str = "auto",
+        ridge: float = 0.0,
+        criterion: str = "bic",
+        derivative: str | Mapping[str, Any] = "auto",
+        n_bootstrap: int = 0,
+        seed: int = 0,
+    ) -> None:
+        self.form = form
+        self.model = model
+        self.degree = degree
+        self.trig = trig
+        self.custom = custom
+        self.threshold = threshold
+        self.ridge = ridge
+        self.criterion = criterion
+        self.derivative = derivative
+        self.n_bootstrap = n_bootstrap
+        self.seed = seed
+
+    def _check_params(self) -> None:
+        if self.form not in FORMS:
+            raise ValueError(f"form must be one of {FORMS}, got {self.form!r}")
+        if self.model not in MODELS:
+            raise ValueError(f"model must be one of {MODELS}, got {self.model!r}")
+        if self.criterion not in CRITERIA:
+            raise ValueError(f"criterion must be one of {CRITERIA}, got {self.criterion!r}")
+        if int(self.n_bootstrap) < 0:
+            raise ValueError(f"n_bootstrap must be >= 0, got {self.n_bootstrap!r}")
+
+    def _library(self, variables: tuple[str, ...]) -> TermLibrary:
+        if self.model == "affine":
+            return TermLibrary(degree=1).fit(variables)
+        return TermLibrary(degree=self.degree, trig=self.trig, custom=self.custom).fit(variables)
+
+    def fit(self, ds: Dataset, y: object = None) -> LocalDynamics:
+        """Fit the local model to every sample of ``ds``.
+
+        Parameters
+        ----------
+        ds : Dataset
+        y : ignored
+
+        Returns
+        -------
+        self
+        """
+        self._check_params()
+        if not isinstance(ds, Dataset):
+            raise DataError(f"LocalDynamics.fit expects a Dataset, got {type(ds).__name__}")
+        reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
+        library = self._library(ds.variable_names)
+        if reg.n_samples <= library.n_terms_:
+            raise FitError(
+                f"{ds.source}: {reg.n_samples} samples for {library.n_terms_} candidate terms; "
+                "lower the degree or give more data"
+            )
+        fit = self._fit_stats(library, reg)
+        self._set_results(ds, reg, library, fit)
+        if self.n_bootstrap and self.model == "sparse":
+            boot = block_bootstrap(
+                library,
+                reg.Z,
+                reg.Y,
+                reg.lengths,
+                n_boot=int(self.n_bootstrap),
+                threshold=self.threshold,
+                criterion="bic" if self.criterion == "cv" else self.criterion,
+                ridge=self.ridge,
+                seed=self.seed,
+            )
+            self.inclusion_ = boot["inclusion"]
+        return self
+
+    def _fit_stats(self, library: TermLibrary, reg: RegressionData):
+        terms = list(library.terms_)
+        if self.model == "affine":
+            return fit_affine(accumulate(library, reg.Z, reg.Y), terms)
+        if self.criterion == "cv" and self.threshold == "auto":
+            blocks = np.minimum(
+                np.arange(reg.n_samples) * _CV_BLOCKS // reg.n_samples, _CV_BLOCKS - 1
+            )
+            stats = accumulate_by_label(library, reg.Z, reg.Y, blocks, _CV_BLOCKS)
+            return fit_sparse(stats, terms, threshold="auto", ridge=self.ridge, criterion="cv")
+        return fit_sparse(
+            accumulate(library, reg.Z, reg.Y),
+            terms,
+            threshold=self.threshold,
+            ridge=self.ridge,
+            criterion=self.criterion,
+        )
+
+    def _set_results(self, ds: Dataset, reg: RegressionData, library: TermLibrary, fit) -> None:
+        _, states, inputs, _ = ds.concat()
+        bounds = np.column_stack([states.min(axis=0), states.max(axis=0)])
+        u_med = np.median(inputs, axis=0) if inputs.shape[1] else np.zeros(0)
+        self.library_, self.local_fit_ = library, fit
+        self.terms_ = list(library.terms_)
+        self.coef_, self.stderr_, self.support_ = fit.coef, fit.stderr, fit.support
+        self.noise_cov_, self.threshold_ = fit.noise_cov, fit.threshold
+        self.state_names_, self.input_names_ = list(ds.state_names), list(ds.input_names)
+        self.n_samples_ = reg.n_samples
+        self.derivative_settings_ = dict(reg.derivative)
+        self.input_values_ = u_med
+        self.equilibria_ = find_equilibria(
+            library,
+            fit.coef,
+            n_states=ds.n_states,
+            input_values=u_med,
+            bounds=bounds,
+            form=self.form,
+            step=float(ds.step) if np.isfinite(ds.step) else 1.0,
+            seed=self.seed,
+            state_names=list(ds.state_names),
+        )
+        self.equations_ = format_equations(
+            self.terms_,
+            fit.coef,
+            ds.state_names,
+            stderr=fit.stderr,
+            units=ds.units,
+            time_unit=ds.unit(ds.time_name),
+            form=self.form,
+        )
+        self.inclusion_ = None
+
+    def predict_derivative(self, Z: np.ndarray) -> np.ndarray:
+        """Right-hand side at variables ``Z (n, n_vars)``: ``dx/dt`` or ``x[k+1]``."""
+        check_is_fitted(self, "coef_")
+        return self.library_.transform(np.asarray(Z, dtype=np.float64)) @ self.coef_
+
+    def to_frame(self, values: str = "coef") -> pd.DataFrame:
+        """Table of terms x states: ``values`` in {"coef", "stderr", "support", "inclusion"}."""
+        check_is_fitted(self, "coef_")
+        data = {
+            "coef": self.coef_,
+            "stderr": self.stderr_,
+            "support": self.support_,
+            "inclusion": self.inclusion_,
+        }.get(values)
+        if data is None:
+            raise ValueError(f"no {values!r} table (choose coef, stderr, support, inclusion)")
+        frame = pd.DataFrame(
+            data, index=pd.Index(self.terms_, name="term"), columns=self.state_names_
+        )
+        return frame
+
+    def to_regime_model(self, regime_id: int = 0) -> RegimeModel:
+        """The fit as a :class:`~modemap.hybrid.RegimeModel` (numbers only)."""
+        check_is_fitted(self, "coef_")
+        return RegimeModel(
+            id=regime_id,
+            samples=self.n_samples_,
+            terms=list(self.terms_),
+            coefficients=self.coef_.copy(),
+            stderr=self.stderr_.copy(),
+            noise_cov=self.noise_cov_.copy(),
+            equilibria=list(self.equilibria_),
+            inclusion=None if self.inclusion_ is None else self.inclusion_.copy(),
+        )
