@@ -32,11 +32,13 @@ BOUNDS = {
     ("savgol", 1e-3): 0.04,
     ("spline", 1e-3): 0.01,
     ("tv", 1e-3): 0.04,
-    ("auto", 1e-3): 0.04,
+    # "auto" lets through up to 10% noise by design (it feeds a least-squares fit, which
+    # averages noise but not smoothing bias), so its pointwise error bound is looser.
+    ("auto", 1e-3): 0.15,
     ("savgol", 1e-2): 0.08,
     ("spline", 1e-2): 0.1,
     ("tv", 1e-2): 0.08,
-    ("auto", 1e-2): 0.08,
+    ("auto", 1e-2): 0.15,
 }
 
 

@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 from scipy.interpolate import UnivariateSpline
 from scipy.linalg import solveh_banded
-from scipy.signal import savgol_filter
+from scipy.signal import savgol_coeffs, savgol_filter
 
 from modemap._exceptions import DataError
 
@@ -47,11 +47,12 @@ DERIVATIVE_METHODS = ("central", "savgol", "spline", "tv")
 # "auto" rule (see _auto_settings): central differences when the noise they let
 # through is below CLEAN_FRACTION of the derivative's RMS, else Savitzky-Golay.
 CLEAN_FRACTION = 0.01
-TARGET_FRACTION = 0.02
+TARGET_FRACTION = 0.1
 MAX_AUTO_WINDOW = 101
 UNIFORM_TOLERANCE = 1e-3
 # Keys of a settings dict that describe what happened but are not options: a recorded
 # settings dict can be passed back as ``differentiate(t, X, **settings)`` to replay it.
+AUTO_ORDER = 3
 RECORD_ONLY = frozenset({"auto", "noise", "step", "edge_order", "per_run"})
 _MAD_SCALE = 0.6744897501960817  # median(|N(0,1)|)
 
@@ -282,7 +283,7 @@ def _auto_method(t: np.ndarray, X: np.ndarray, sigma: np.ndarray) -> tuple[str, 
     central differences pass noise of standard deviation ``sigma/(sqrt(2) h)``
     into the derivative.  If that is below ``CLEAN_FRACTION`` (1%) of the RMS of
     the derivative in every column, use ``central``.  Otherwise use
-    ``savgol`` of order 2 with the window from :func:`_noise_window`; on a
+    ``savgol`` of order 3 with the window from :func:`_noise_window`; on a
     non-uniform step (or fewer than 5 samples) fall back to ``spline`` (or
     ``central``).  ``tv`` is never chosen automatically (its cost and its
     tuning make it an explicit choice).
@@ -293,7 +294,7 @@ def _auto_method(t: np.ndarray, X: np.ndarray, sigma: np.ndarray) -> tuple[str, 
         return "central", {}
     if not _is_uniform(t):
         return "spline", {}
-    return "savgol", {"window": _noise_window(t, X, step, sigma, rms), "order": 2}
+    return "savgol", {"window": _noise_window(t, X, step, sigma, rms), "order": AUTO_ORDER}
 
 
 def _derivative_rms(t: np.ndarray, X: np.ndarray, sigma: np.ndarray, step: float) -> np.ndarray:
@@ -311,12 +312,17 @@ def _noise_window(
 ) -> int:
     """Savitzky-Golay window from the noise level.
 
-    At the centre of a window of ``w`` samples an order-2 fit estimates the
-    slope with noise variance ``12 sigma^2 / (h^2 w (w^2 - 1))`` (least-squares
-    slope of equally spaced points, textbook regression).  The window is the
-    smallest odd ``w >= 5`` bringing this below ``TARGET_FRACTION`` (2%) of the
+    A cubic (``AUTO_ORDER``) fit is used because its slope at the window
+    centre has no bias from the curvature and only a fourth-order bias term,
+    where a quadratic fit's slope is as biased as a straight line's.  The noise
+    passed into the derivative by a window of ``w`` samples is
+    ``sigma * sqrt(sum(c_i^2))``, with ``c`` the filter's derivative
+    coefficients (``scipy.signal.savgol_coeffs``).  The window is the smallest
+    odd ``w >= 5`` bringing this below ``TARGET_FRACTION`` (10%) of the
     derivative RMS in the noisiest column, capped at ``MAX_AUTO_WINDOW`` (101)
-    and at a fifth of the run (odd, at least 5).
+    and at a fifth of the run (odd, at least 5).  The derivative feeds a least
+    squares fit, which averages zero-mean noise in the target over many samples
+    but not the smoothing bias of a wide window: hence the generous 10%.
     """
     n = X.shape[0]
     sigma = estimate_noise(X) if sigma is None else sigma
@@ -324,11 +330,17 @@ def _noise_window(
     cap = max(5, min(MAX_AUTO_WINDOW, n // 5))
     cap -= 1 - cap % 2
     cap = min(cap, n if n % 2 else n - 1)
+    gains = {}
     window = 5
     for s, r in zip(sigma, rms, strict=True):
         target = TARGET_FRACTION * r
         w = 5
-        while w < cap and (target <= 0 or s / step * np.sqrt(12.0 / (w * (w * w - 1.0))) > target):
+        while w < cap:
+            if w not in gains:
+                c = savgol_coeffs(w, AUTO_ORDER, deriv=1, delta=step)
+                gains[w] = float(np.sqrt(np.sum(c * c)))
+            if target > 0 and s * gains[w] <= target:
+                break
             w += 2
         window = max(window, w)
     return int(min(window, cap))
