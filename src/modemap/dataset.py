@@ -149,8 +149,15 @@ class Dataset:
     def ranges(self) -> dict[str, tuple[float, float]]:
         """Minimum and maximum of every state and input over all runs."""
         _, x, u, _ = self.concat()
-        out = {n: (float(x[:, i].min()), float(x[:, i].max())) for i, n in enumerate(self.state_names)}
-        out.update({n: (float(u[:, i].min()), float(u[:, i].max())) for i, n in enumerate(self.input_names)})
+        out = {
+            n: (float(x[:, i].min()), float(x[:, i].max())) for i, n in enumerate(self.state_names)
+        }
+        out.update(
+            {
+                n: (float(u[:, i].min()), float(u[:, i].max()))
+                for i, n in enumerate(self.input_names)
+            }
+        )
         return out
 
     def to_frame(self) -> pd.DataFrame:
