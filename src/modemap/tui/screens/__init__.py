@@ -1,0 +1,1 @@
+"""Dashboard panels (full-size views) and modal screens."""

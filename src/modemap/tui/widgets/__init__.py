@@ -1,0 +1,1 @@
+"""Dashboard building blocks: braille plots, regime strips, text tables, data adapters."""

@@ -1,0 +1,351 @@
+"""Pilot tests of the dashboard: every panel, the cursor, refit, cancel, save, open data.
+
+All data are the invented, fixed scenario of ``conftest.py``; the fit, the
+simulator and the reader are fakes injected through the app's constructor.
+"""
+
+from __future__ import annotations
+
+import io
+import re
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+from rich.console import Console
+from textual.widgets import ContentSwitcher, Input, Static
+
+from conftest import demo_app, endless_refit, make_dataset, make_labels, make_model, refit_to, sync
+from modemap.hybrid import Guard
+from modemap.tui.app import DashboardApp
+from modemap.tui.screens.refit import RefitScreen
+from modemap.tui.widgets.tables import plain_equations
+
+SIZE = (80, 24)
+
+
+def plain(renderable) -> str:
+    """Text of a Rich renderable, as a wide console prints it."""
+    console = Console(width=200, record=True, file=io.StringIO(), color_system=None)
+    console.print(renderable)
+    return console.export_text()
+
+
+def text_of(app, selector: str) -> str:
+    return plain(app.screen.query_one(selector, Static).content)
+
+
+async def visit_all_panels(app, pilot) -> None:
+    for key, name in zip(
+        "12345", ("timeline", "regimes", "switching", "replay", "phase"), strict=True
+    ):
+        await pilot.press(key)
+        assert app.query_one(ContentSwitcher).current == name
+    await app.workers.wait_for_complete()
+    await pilot.pause()
+
+
+@sync
+async def test_each_panel_opens_and_shows_the_model():
+    app = demo_app(3)
+    async with app.run_test(size=SIZE) as pilot:
+        await visit_all_panels(app, pilot)
+        await pilot.press("2")
+        body = text_of(app, "#rg-body")
+        # the hand-built model has three regimes with the equation "dx/dt = (1 ± 0.01)·v"
+        assert "[A] regime 0" in body and "[C] regime 2" in body
+        assert "dx/dt = (1 ± 0.01)·v" in body
+        assert "stable focus" in body and "virtual" in body and "τ = 40 s" in body
+        await pilot.press("3")
+        sw = text_of(app, "#sw-body")
+        assert "x > -0.767 m" in sw and "x + 2 v > 1" in sw
+        # guards A->B at x > -0.7667 and B->A at x < -0.8667: a band of 0.1 m (arithmetic)
+        assert "hysteresis band of 0.1 m in x" in sw
+        await pilot.press("question_mark")
+        assert type(app.screen).__name__ == "HelpScreen"
+        await pilot.press("escape")
+        assert len(app.screen_stack) == 1
+
+
+@sync
+async def test_timeline_cursor_zoom_pan_and_runs():
+    app = demo_app(3)
+    async with app.run_test(size=SIZE) as pilot:
+        panel = app.query_one("#timeline")
+        for _ in range(7):
+            await pilot.press("right")
+        await pilot.press("shift+right")
+        run = app.state.current_run
+        i = int(np.argmin(np.abs(run.time - panel.cursor)))
+        assert panel.cursor > run.time[0]
+        readout = text_of(app, "#tl-readout")
+        # the readout shows the sample nearest to the cursor, with units, and its label
+        assert f"t = {run.time[i]:.6g} s" in readout
+        assert f"x = {run.states[i, 0]:.5g} m" in readout
+        assert f"v = {run.states[i, 1]:.5g} m/s" in readout
+        expected = int(make_labels(make_dataset(), 3)["regime"].iloc[i])
+        assert f"(regime {expected})" in readout
+        await pilot.press("left")
+        assert panel.cursor < run.time[i] + 1e-9
+        full = panel.view
+        await pilot.press("plus")
+        assert panel.view[1] - panel.view[0] == pytest.approx(0.5 * (full[1] - full[0]))
+        before = panel.view
+        await pilot.press("right_square_bracket")
+        assert panel.view[0] > before[0]
+        await pilot.press("z")
+        assert panel.view == full
+        await pilot.press("n")
+        assert app.state.run == 1
+        assert "run 'r2' (2/2)" in text_of(app, "#tl-head")
+        await pilot.press("p")
+        assert app.state.run == 0
+
+
+@sync
+async def test_refit_with_other_k_then_keep_and_save():
+    saved = []
+    app = demo_app(3, refit=refit_to(4), save=lambda m, lab: saved.append((m, lab)) or "model.json")
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("r")
+        screen = app.screen
+        assert isinstance(screen, RefitScreen)
+        field = screen.query_one("#opt-k", Input)
+        field.value = "4"
+        field.focus()
+        await pilot.press("enter")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        compare = plain(screen.query_one("#refit-compare", Static).content)
+        assert re.search(r"regimes K\s+3\s+4", compare)
+        assert re.search(r"BIC\s+910\s+880", compare)  # hand-built selection rows: 1000 - 30 K
+        assert plain(screen.query_one("#refit-status", Static).content).startswith("done")
+        await pilot.press("k")
+        await pilot.pause()
+        assert app.state.model.n_regimes == 4
+        assert app.unsaved
+        assert "(unsaved)" in text_of(app, "#tabs")
+        await pilot.press("q")  # unsaved: the first q only warns
+        assert app.is_running
+        await pilot.press("s")
+        assert len(saved) == 1 and saved[0][0].n_regimes == 4
+        assert not app.unsaved
+
+
+@sync
+async def test_refit_rejects_bad_settings_then_discard_keeps_the_old_model():
+    calls = []
+    fit = refit_to(2)
+    app = demo_app(3, refit=lambda *a: calls.append(a) or fit(*a))
+    async with app.run_test(size=SIZE) as pilot:
+        old = app.state.model
+        await pilot.press("r")
+        field = app.screen.query_one("#opt-degree", Input)
+        field.value = "two"
+        field.focus()
+        await pilot.press("enter")
+        await pilot.pause()
+        assert "degree" in plain(app.screen.query_one("#refit-status", Static).content)
+        assert calls == []
+        field.value = "3"
+        await pilot.press("enter")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        assert calls[0][1] == {
+            "n_regimes": 3,
+            "threshold": "auto",
+            "degree": 3,
+            "form": "continuous",
+        }
+        await pilot.press("d")
+        assert app.state.model is old
+
+
+@sync
+async def test_cancel_a_running_refit():
+    app = demo_app(3, refit=endless_refit)
+    async with app.run_test(size=SIZE) as pilot:
+        old = app.state.model
+        await pilot.press("r")
+        screen = app.screen
+        screen.query_one("#opt-k", Input).focus()
+        await pilot.press("enter")
+        await pilot.pause(0.1)
+        assert screen.running
+        assert "working" in plain(screen.query_one("#refit-status", Static).content)
+        await pilot.press("escape")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        assert not screen.running
+        assert "cancelled" in plain(screen.query_one("#refit-status", Static).content)
+        await pilot.press("escape")
+        assert app.state.model is old
+        assert not app.unsaved
+
+
+@pytest.mark.parametrize("k", [0, 1, 6])
+@sync
+async def test_starts_on_empty_single_and_six_regime_models(k):
+    app = demo_app(k)
+    async with app.run_test(size=SIZE) as pilot:
+        await visit_all_panels(app, pilot)
+        if k == 0:
+            assert "empty" in text_of(app, "#rg-body")
+        if k == 1:
+            assert "nothing to switch to" in text_of(app, "#sw-body")
+        if k == 6:
+            await pilot.press("1")
+            strip = app.query_one("#tl-strip").render_line(0).text
+            # six position bands: the run visits the outer ones, A and F
+            assert "A" in strip and "F" in strip
+            await pilot.resize_terminal(160, 48)  # survives resizing, large and tiny
+            await pilot.resize_terminal(40, 12)
+            await visit_all_panels(app, pilot)
+
+
+@sync
+async def test_model_without_data_and_data_without_model():
+    app = demo_app(3, with_data=False)
+    async with app.run_test(size=SIZE) as pilot:
+        await visit_all_panels(app, pilot)
+        await pilot.press("1")
+        assert "No data loaded" in text_of(app, "#tl-head")
+        await pilot.press("r")  # nothing to fit on: a warning, no screen
+        assert not isinstance(app.screen, RefitScreen)
+    app = DashboardApp(None, make_dataset(), None, formatter=plain_equations)
+    async with app.run_test(size=SIZE) as pilot:
+        await visit_all_panels(app, pilot)
+        await pilot.press("s")  # nothing to save: a warning
+        assert "no model" in text_of(app, "#tabs")
+
+
+@sync
+async def test_open_data_then_fit_from_inside():
+    ds = make_dataset()
+    asked = []
+
+    def load(path, *, time, states, inputs=(), run=None):
+        asked.append((path, time, tuple(states), tuple(inputs), run))
+        return ds
+
+    app = DashboardApp(None, None, None, load=load, refit=refit_to(3), formatter=plain_equations)
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("o")
+        for key, value in (("path", "cart.csv"), ("time", "t"), ("states", "x, v")):
+            app.screen.query_one(f"#open-{key}", Input).value = value
+        app.screen.query_one("#open-path", Input).focus()
+        await pilot.press("enter")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        assert asked == [("cart.csv", "t", ("x", "v"), (), None)]
+        assert app.state.dataset is ds
+        await pilot.press("r")
+        app.screen.query_one("#opt-k", Input).focus()
+        await pilot.press("enter")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        await pilot.press("k")
+        assert app.state.model.n_regimes == 3
+        assert app.state.regimes[0].max() == 2
+
+
+@sync
+async def test_open_data_shows_the_reader_error():
+    from modemap._exceptions import DataError
+
+    def load(path, **kwargs):
+        raise DataError("no column 'q'", source=path, column="q")
+
+    app = DashboardApp(None, None, None, load=load)
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("o")
+        for key, value in (("path", "a.csv"), ("time", "t"), ("states", "q")):
+            app.screen.query_one(f"#open-{key}", Input).value = value
+        app.screen.query_one("#open-time", Input).focus()
+        await pilot.press("enter")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        assert "a.csv, column 'q': no column 'q'" in plain(
+            app.screen.query_one("#open-status", Static).content
+        )
+
+
+@sync
+async def test_replay_overlays_simulation_and_reports_failure():
+    app = demo_app(3)
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("4")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        assert "status 0: ok" in text_of(app, "#rp-head")
+        strip = app.query_one("#rp-strip")
+        assert strip.render_line(1).text.strip().startswith("model│")
+        plot = app.query_one("#rp-plots").query(".trace").first()
+        assert len(plot.spec.series) == 2 and plot.spec.series[1].dashed
+        await pilot.press("v")
+        assert app.query_one("#rp-table").display
+        assert "0.052" in plain(app.query_one("#rp-figures", Static).content)
+
+    def broken(*args):
+        raise RuntimeError("step size too small")
+
+    app = demo_app(3, simulate=broken)
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("4")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        assert "simulation failed: step size too small" in text_of(app, "#rp-head")
+
+
+@sync
+async def test_phase_axes_runs_and_undrawable_guard():
+    ds = make_dataset()
+    labels = make_labels(ds, 2)
+    model = make_model(2, ds, labels)
+    model.guards.append(Guard(1, 0, ["w"], np.array([1.0]), 0.0, "w > 0"))  # w: no such variable
+    app = DashboardApp(
+        model, ds, labels, simulate=lambda *a: SimpleNamespace(), formatter=plain_equations
+    )
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("5")
+        panel = app.query_one("#phase")
+        assert panel.axes == [0, 1]
+        await pilot.press("y")  # only two variables: y stays distinct from x
+        assert panel.axes[0] != panel.axes[1]
+        await pilot.press("n")
+        assert "run 'r1'" in text_of(app, "#ph-head")
+        assert "not drawn" in text_of(app, "#ph-legend")
+        marks = [m.char for m in app.query_one("#ph-plot").spec.markers]
+        assert marks == ["●", "◇"]  # regime 0 stable reachable, regime 1 unstable virtual
+
+
+def saturation(hex_colour: str) -> int:
+    rgb = [int(hex_colour[i : i + 2], 16) for i in (0, 2, 4)]
+    return max(rgb) - min(rgb)
+
+
+async def timeline_svg(app) -> tuple[str, str]:
+    async with app.run_test(size=SIZE) as pilot:
+        await visit_all_panels(app, pilot)
+        await pilot.press("1")
+        return app.export_screenshot(), app.query_one("#tl-strip").render_line(0).text
+
+
+@pytest.mark.parametrize("no_color", [True, False])
+@sync
+async def test_no_color_keeps_regime_letters(monkeypatch, no_color):
+    if no_color:
+        monkeypatch.setenv("NO_COLOR", "1")
+    else:
+        monkeypatch.delenv("NO_COLOR", raising=False)
+    app = demo_app(3)
+    svg, strip = await timeline_svg(app)
+    assert app.no_color is no_color
+    # window-button colours of the SVG frame are not terminal output
+    colours = set(re.findall(r"#([0-9a-f]{6})", svg)) - {"ff5f57", "febc2e", "28c840"}
+    # NO_COLOR (no-color.org, common practice): Textual greys every colour, so the
+    # exported screen has no saturated colour; with colour on, the regime bands are saturated
+    assert (max(saturation(c) for c in colours) <= 3) is no_color
+    # either way the regime is readable from the letters of the strip
+    # (filters change styles only, never text)
+    assert strip.startswith(" regime│BBCCCC")
