@@ -1,0 +1,329 @@
+"""RegimeFinder: the regime-discovery stage as one scikit-learn style estimator.
+
+Pipeline inside :meth:`RegimeFinder.fit`:
+
+1. regression rows from the dataset (:func:`modemap.local.prepare_regression`): variables
+   ``Z = [states, inputs]`` and targets ``Y`` (derivatives, or next states in discrete form);
+2. a term library (degree-1 for the affine model, ``degree`` otherwise, or the given ``terms``);
+3. for each number of regimes tried: sticky Gaussian HMM proposals (:mod:`.proposal`) on
+   standardised features ``[states, increments or derivatives, inputs]`` and on the residuals
+   of a single model fitted to all rows, each refined by the hard-EM switching regression
+   (:mod:`.refine`); the refined labelling with the higher likelihood is kept;
+4. ``n_regimes="auto"``: K by BIC on the first 80 % of each run (:mod:`.selection`), then the
+   chosen K is fitted again on all rows;
+5. hygiene and a stable order of ids (:mod:`.hygiene`), statistics (:mod:`.summary`).
+
+Labels of samples that have no regression row (in discrete form, the last sample of each run,
+which has no successor) are copied from the preceding sample of the same run (from the
+following one if no sample precedes), so every sample carries a regime.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sklearn.base import BaseEstimator
+
+from modemap._exceptions import FitError
+from modemap._progress import ProgressCallback, null_progress, scaled
+from modemap.dataset import Dataset
+from modemap.regimes.hygiene import default_min_samples, order_regimes
+from modemap.regimes.proposal import propose
+from modemap.regimes.refine import RefineResult, fit_regimes, refine, residuals
+from modemap.regimes.selection import count_parameters, information_criterion, select_regimes
+from modemap.regimes.summary import statistics
+from modemap.stats import accumulate
+
+__all__ = ["RegimeFinder"]
+
+_FORMS = ("continuous", "discrete")
+_MODELS = ("sparse", "affine")
+
+
+class RegimeFinder(BaseEstimator):
+    """Find the regimes of logged trajectories and a local model in each.
+
+    Parameters
+    ----------
+    n_regimes : "auto" or int, default "auto"
+        Number of regimes; "auto" chooses 1..max_regimes by BIC.
+    max_regimes : int, default 6
+    form : {"continuous", "discrete"}, default "continuous"
+    model : {"sparse", "affine"}, default "sparse"
+    degree : int, default 2
+        Degree of the candidate monomials (sparse model).
+    threshold : "auto" or float, default "auto"
+    derivative : str, default "auto"
+        Derivative method (continuous form).
+    sticky : float, default 0.99
+        Self-transition weight of the Markov chain prior.
+    n_restarts : int, default 3
+        HMM restarts in the proposal.
+    max_iter : int, default 30
+        Refinement iterations at most.
+    min_samples : int or None, default None
+        Smallest regime kept; None: ``max(30, 10 x n_terms x n_states)``.
+    min_dwell : int, default 1
+        Stretches shorter than this (samples) take the neighbouring regime.
+    seed : int, default 0
+    terms : sequence of str or None, default None
+        Explicit candidate terms (overrides ``degree`` and ``model``'s library).
+    location_weight : float, default 0.0
+        Weight of the Gaussian term on where the state sits in the relabelling.
+    covariance : {"tied", "full"}, default "tied"
+        Residual covariance shared by all regimes, or one per regime.
+
+    Attributes
+    ----------
+    labels_ : list of ndarray of int
+        Regime id of every sample, one array per run of the dataset.
+    n_regimes_ : int
+    local_fits_ : list of LocalFit
+    selection_ : DataFrame
+        ``K, n_regimes, loglik, n_params, bic, holdout_rmse, chosen``.
+    statistics_ : dict
+        Shares, dwell times, switch counts (:func:`modemap.regimes.summary.statistics`).
+    transmat_ : ndarray of shape (K, K)
+    library_ : fitted TermLibrary
+    regression_ : RegressionData
+    notes_ : list of str
+    convergence_ : ConvergenceRecord of the final refinement
+    covariances_ : ndarray of shape (K, m, m)
+    """
+
+    def __init__(
+        self,
+        *,
+        n_regimes: str | int = "auto",
+        max_regimes: int = 6,
+        form: str = "continuous",
+        model: str = "sparse",
+        degree: int = 2,
+        threshold: str | float = "auto",
+        derivative: str = "auto",
+        sticky: float = 0.99,
+        n_restarts: int = 3,
+        max_iter: int = 30,
+        min_samples: int | None = None,
+        min_dwell: int = 1,
+        seed: int = 0,
+        terms: Sequence[str] | None = None,
+        location_weight: float = 0.0,
+        covariance: str = "tied",
+    ) -> None:
+        self.n_regimes = n_regimes
+        self.max_regimes = max_regimes
+        self.form = form
+        self.model = model
+        self.degree = degree
+        self.threshold = threshold
+        self.derivative = derivative
+        self.sticky = sticky
+        self.n_restarts = n_restarts
+        self.max_iter = max_iter
+        self.min_samples = min_samples
+        self.min_dwell = min_dwell
+        self.seed = seed
+        self.terms = terms
+        self.location_weight = location_weight
+        self.covariance = covariance
+
+    # ------------------------------------------------------------------ checks
+    def _check_params(self) -> None:
+        if self.form not in _FORMS:
+            raise FitError(f"form must be one of {', '.join(_FORMS)}, got {self.form!r}")
+        if self.model not in _MODELS:
+            raise FitError(f"model must be one of {', '.join(_MODELS)}, got {self.model!r}")
+        k = self.n_regimes
+        if not (k == "auto" or (isinstance(k, int | np.integer) and not isinstance(k, bool))):
+            raise FitError(f"n_regimes must be 'auto' or an integer, got {k!r}")
+        if k != "auto" and k < 1:
+            raise FitError(f"n_regimes must be >= 1, got {k}")
+        if int(self.max_regimes) < 1:
+            raise FitError(f"max_regimes must be >= 1, got {self.max_regimes}")
+        if not 0.0 < float(self.sticky) < 1.0:
+            raise FitError(f"sticky must be between 0 and 1 (exclusive), got {self.sticky}")
+        if self.covariance not in ("tied", "full"):
+            raise FitError(f"covariance must be 'tied' or 'full', got {self.covariance!r}")
+        if int(self.min_dwell) < 1:
+            raise FitError(f"min_dwell must be >= 1, got {self.min_dwell}")
+
+    def _library(self, variables: Sequence[str]) -> Any:
+        from modemap.terms import TermLibrary
+
+        if self.terms is not None:
+            return TermLibrary.from_terms(list(self.terms), variables)
+        degree = 1 if self.model == "affine" else int(self.degree)
+        return TermLibrary(degree=degree).fit(variables)
+
+    # --------------------------------------------------------------------- fit
+    def fit(self, ds: Dataset, progress: ProgressCallback | None = None) -> RegimeFinder:
+        """Discover regimes in ``ds``.
+
+        Parameters
+        ----------
+        ds : Dataset
+        progress : callable, optional
+            ``progress(fraction, message)``; raise ``FitCancelled`` in it to stop.
+
+        Returns
+        -------
+        self
+        """
+        from modemap.local import prepare_regression
+
+        self._check_params()
+        progress = progress or null_progress
+        reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
+        library = self._library(ds.variable_names)
+        Z, Y = np.asarray(reg.Z, dtype=np.float64), np.asarray(reg.Y, dtype=np.float64)
+        lengths = np.asarray(reg.lengths, dtype=np.int64)
+        if Z.shape[0] < 2:
+            raise FitError(f"{ds.source}: too few samples to find regimes ({Z.shape[0]})")
+        self._min_samples = (
+            default_min_samples(library.n_terms_, ds.n_states)
+            if self.min_samples is None
+            else int(self.min_samples)
+        )
+        self._library_fitted = library
+        if self.n_regimes == "auto":
+            kmax = max(1, min(int(self.max_regimes), Z.shape[0] // self._min_samples))
+            table, _ = select_regimes(
+                self._fit_k, library, Z, Y, lengths, kmax, progress=scaled(progress, 0.0, 0.8)
+            )
+            k = int(table.loc[table["chosen"], "K"].iloc[0])
+            result = self._fit_k(Z, Y, lengths, k, scaled(progress, 0.8, 1.0))
+        else:
+            result = self._fit_k(Z, Y, lengths, int(self.n_regimes), scaled(progress, 0.0, 1.0))
+            table = self._single_row(result, Y.shape[1], Z.shape[0])
+        self._set_results(ds, reg, library, result, table)
+        progress(1.0, f"{self.n_regimes_} regime(s) found")
+        return self
+
+    def _fit_k(
+        self,
+        Z: np.ndarray,
+        Y: np.ndarray,
+        lengths: np.ndarray,
+        k: int,
+        progress: ProgressCallback,
+    ) -> RefineResult:
+        """Proposals then refinement for one number of regimes; the best likelihood wins.
+
+        Two proposals are refined: the HMM on ``[states, motion, inputs]`` and the HMM on the
+        residuals of one model fitted to all rows (regimes that differ by their dynamics show
+        up there even where the states overlap).
+        """
+        progress(0.0, f"proposing {k} regime(s)")
+        starts = [self._features(Z, Y)]
+        if k > 1:
+            starts.append(self._global_residuals(Z, Y))
+        best = None
+        for i, features in enumerate(starts):
+            labels = propose(
+                features,
+                lengths,
+                k,
+                sticky=float(self.sticky),
+                n_restarts=int(self.n_restarts),
+                seed=int(self.seed),
+            )
+            result = refine(
+                Z,
+                Y,
+                lengths,
+                labels,
+                self._library_fitted,
+                n_regimes=k,
+                model=self.model,
+                threshold=self.threshold,
+                sticky=float(self.sticky),
+                location_weight=float(self.location_weight),
+                covariance=self.covariance,
+                min_samples=self._min_samples,
+                min_dwell=int(self.min_dwell),
+                max_iter=int(self.max_iter),
+                progress=scaled(progress, i / len(starts), (i + 1) / len(starts)),
+            )
+            if best is None or result.loglik > best.loglik:
+                best = result
+        return best
+
+    def _global_residuals(self, Z: np.ndarray, Y: np.ndarray) -> np.ndarray:
+        """Residuals of a single model fitted to all rows (a dynamics-aware feature)."""
+        stats = accumulate(self._library_fitted, Z, Y)
+        fit = fit_regimes(
+            [stats], self._library_fitted.terms_, model=self.model, threshold=self.threshold
+        )[0]
+        return residuals(self._library_fitted, Z, Y, np.asarray(fit.coef))
+
+    def _features(self, Z: np.ndarray, Y: np.ndarray) -> np.ndarray:
+        """``[states, increments (discrete) or derivatives (continuous), inputs]``."""
+        m = Y.shape[1]
+        x, u = Z[:, :m], Z[:, m:]
+        motion = Y - x if self.form == "discrete" else Y
+        return np.hstack([x, motion, u])
+
+    @staticmethod
+    def _single_row(result: RefineResult, m: int, n: int) -> pd.DataFrame:
+        n_params = count_parameters(result, m)
+        row = {
+            "K": result.n_regimes,
+            "n_regimes": result.n_regimes,
+            "loglik": result.loglik,
+            "n_params": n_params,
+            "bic": information_criterion(result.loglik, n_params, n),
+            "holdout_rmse": float("nan"),
+            "chosen": True,
+        }
+        return pd.DataFrame([row])
+
+    def _set_results(
+        self, ds: Dataset, reg: Any, library: Any, result: RefineResult, table: pd.DataFrame
+    ) -> None:
+        k = result.n_regimes
+        labels, order = order_regimes(result.labels, np.asarray(reg.Z)[:, 0], k)
+        full = _labels_per_sample(labels, np.asarray(reg.sample_index), ds)
+        trans = np.exp(result.log_trans)[np.ix_(order, order)]
+        self.labels_ = full
+        self.n_regimes_ = k
+        self.local_fits_ = [result.fits[i] for i in order]
+        self.covariances_ = result.covariances[order]
+        self.selection_ = table
+        self.statistics_ = statistics(full, k, float(ds.step) if np.isfinite(ds.step) else 1.0)
+        self.transmat_ = trans / trans.sum(axis=1, keepdims=True)
+        self.library_ = library
+        self.regression_ = reg
+        self.convergence_ = result.monitor
+        self.notes_ = list(result.notes)
+        if not result.monitor.converged:
+            self.notes_.append(
+                f"refinement stopped after {result.monitor.iterations} iterations "
+                f"with {result.monitor.changes[-1]} labels still changing"
+            )
+
+
+def _labels_per_sample(labels: np.ndarray, sample_index: np.ndarray, ds: Dataset) -> list:
+    """Spread row labels onto every sample; samples without a row copy a neighbour."""
+    full = np.full(ds.n_samples, -1, dtype=np.int64)
+    full[sample_index] = labels
+    out = []
+    offset = 0
+    for length in ds.lengths:
+        out.append(_fill_gaps(full[offset : offset + length]))
+        offset += int(length)
+    return out
+
+
+def _fill_gaps(lab: np.ndarray) -> np.ndarray:
+    """Forward fill ``-1`` from the preceding sample, back fill at the start of a run."""
+    ok = lab >= 0
+    if ok.all() or not ok.any():
+        return lab.copy()
+    idx = np.where(ok, np.arange(lab.size), -1)
+    idx = np.maximum.accumulate(idx)
+    idx[idx < 0] = int(np.flatnonzero(ok)[0])
+    return lab[idx]

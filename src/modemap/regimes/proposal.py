@@ -1,0 +1,172 @@
+"""First guess of the regime labels: a sticky Gaussian hidden Markov model on features.
+
+The features are whatever separates operating points at a glance (states, their increments or
+derivatives, inputs).  They are standardised per column, then a Gaussian HMM (hmmlearn, with
+expectation-maximisation by forward-backward passes: "A maximization technique occurring in
+the statistical analysis of probabilistic functions of Markov chains", Annals of Mathematical
+Statistics 41(1), 1970, DOI 10.1214/aoms/1177697196) is fitted with
+
+* means and covariances initialised by k-means (hmmlearn's own initialisation, seeded),
+* a sticky initial transition matrix (diagonal ``sticky``, the rest spread evenly),
+* a Dirichlet prior on each transition row that adds self-transition pseudo-counts equal to
+  10 % of the expected samples per regime, so short flickers are discouraged,
+* ``n_restarts`` seeded restarts; the one with the highest log-likelihood is kept (a restart
+  whose full covariances degenerate is redone with diagonal ones; if every fit fails, plain
+  k-means clusters are returned).
+
+All runs are fitted together through hmmlearn's ``lengths``.  When there are more than
+``max_samples`` samples, the HMM is fitted on contiguous windows of 2,000 samples (or shorter
+when runs are shorter) drawn at random (seeded) without replacement up to ``max_samples`` in
+total, kept in data order; every sample is then decoded with our own Viterbi.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+
+import numpy as np
+from hmmlearn import hmm
+from sklearn.cluster import KMeans
+from threadpoolctl import threadpool_limits
+
+from modemap.regimes.viterbi import viterbi_runs
+
+__all__ = ["gaussian_log_density", "propose", "standardise"]
+
+_WINDOW = 2000
+
+
+def standardise(features: np.ndarray) -> np.ndarray:
+    """Centre and scale each column (a constant column is only centred)."""
+    f = np.asarray(features, dtype=np.float64)
+    scale = f.std(axis=0)
+    scale[~(scale > 0)] = 1.0
+    return (f - f.mean(axis=0)) / scale
+
+
+def propose(
+    features: np.ndarray,
+    lengths: np.ndarray | list[int],
+    n_regimes: int,
+    *,
+    sticky: float = 0.99,
+    n_restarts: int = 3,
+    seed: int = 0,
+    max_samples: int = 200_000,
+    covariance: str = "full",
+) -> np.ndarray:
+    """Propose regime labels with a sticky Gaussian HMM.
+
+    Parameters
+    ----------
+    features : ndarray of shape (n, f)
+    lengths : sequence of int
+        Samples per run (sums to ``n``); the HMM never links two runs.
+    n_regimes : int
+    sticky : float
+        Initial self-transition probability.
+    n_restarts : int
+        Seeded restarts (seeds ``seed``, ``seed + 1``, ...); the best log-likelihood wins.
+    seed : int
+    max_samples : int
+        Fit on at most this many samples (contiguous windows); decode all.
+    covariance : {"full", "diag"}
+
+    Returns
+    -------
+    labels : ndarray of shape (n,) of int64
+    """
+    x = standardise(features)
+    lengths = np.asarray(lengths, dtype=np.int64)
+    if n_regimes <= 1:
+        return np.zeros(x.shape[0], dtype=np.int64)
+    fit_x, fit_lengths = _subsample(x, lengths, max_samples, seed)
+    best, best_score = None, -np.inf
+    # small dense problems: BLAS/OpenMP threads only add overhead (and stall on a busy machine)
+    with threadpool_limits(limits=1):
+        for r in range(max(1, n_restarts)):
+            for cov in dict.fromkeys((covariance, "diag")):  # diag when full is degenerate
+                try:
+                    model = _fit_one(fit_x, fit_lengths, n_regimes, sticky, seed + r, cov)
+                    score = model.score(fit_x, fit_lengths)
+                except (np.linalg.LinAlgError, ValueError):
+                    continue
+                if np.isfinite(score) and score > best_score:
+                    best, best_score = model, score
+                break
+    if best is None:  # every HMM fit failed: plain k-means clusters
+        return KMeans(n_clusters=n_regimes, n_init=3, random_state=seed).fit_predict(x)
+    log_em = gaussian_log_density(x, best.means_, best.covars_)
+    with np.errstate(divide="ignore"):
+        path, _ = viterbi_runs(log_em, lengths, np.log(best.startprob_), np.log(best.transmat_))
+    return path
+
+
+def _fit_one(
+    x: np.ndarray, lengths: np.ndarray, k: int, sticky: float, seed: int, covariance: str
+) -> hmm.GaussianHMM:
+    n = x.shape[0]
+    trans = np.full((k, k), (1.0 - sticky) / (k - 1))
+    np.fill_diagonal(trans, sticky)
+    prior = np.ones((k, k)) + np.eye(k) * max(1.0, 0.1 * n / k)
+    model = hmm.GaussianHMM(
+        n_components=k,
+        covariance_type=covariance,
+        n_iter=30,
+        tol=1e-2,
+        random_state=seed,
+        init_params="mc",
+        params="stmc",
+        transmat_prior=prior,
+        min_covar=1e-3,
+        implementation="scaling",
+    )
+    model.startprob_ = np.full(k, 1.0 / k)
+    model.transmat_ = trans
+    log = logging.getLogger("hmmlearn.base")
+    disabled, log.disabled = log.disabled, True  # hide "not converging" chatter near optimum
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            model.fit(x, lengths)
+    finally:
+        log.disabled = disabled
+    return model
+
+
+def _subsample(
+    x: np.ndarray, lengths: np.ndarray, max_samples: int, seed: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Contiguous windows (<= 2,000 samples) drawn at random up to ``max_samples``."""
+    n = x.shape[0]
+    if n <= max_samples:
+        return x, lengths
+    starts, sizes = [], []
+    offset = 0
+    for length in lengths:
+        for a in range(0, int(length), _WINDOW):
+            starts.append(offset + a)
+            sizes.append(min(_WINDOW, int(length) - a))
+        offset += int(length)
+    starts, sizes = np.array(starts), np.array(sizes)
+    order = np.random.default_rng(seed).permutation(starts.size)
+    keep = order[: max(1, int(np.searchsorted(np.cumsum(sizes[order]), max_samples)))]
+    keep.sort()
+    idx = np.concatenate([np.arange(starts[i], starts[i] + sizes[i]) for i in keep])
+    return x[idx], sizes[keep]
+
+
+def gaussian_log_density(x: np.ndarray, means: np.ndarray, covars: np.ndarray) -> np.ndarray:
+    """Log-density of each row of ``x`` under each Gaussian: (n, K).
+
+    ``covars`` is (K, f, f) (hmmlearn's ``covars_`` property always returns full matrices).
+    """
+    n, f = x.shape
+    out = np.empty((n, means.shape[0]))
+    for k, (mu, cov) in enumerate(zip(means, covars, strict=True)):
+        chol = np.linalg.cholesky(cov + 1e-9 * np.eye(f))
+        z = np.linalg.solve(chol, (x - mu).T)
+        logdet = 2.0 * np.log(np.diag(chol)).sum()
+        out[:, k] = -0.5 * (np.einsum("ij,ij->j", z, z) + logdet + f * np.log(2 * np.pi))
+    return out

@@ -1,0 +1,476 @@
+"""Dynamics-aware refinement of regime labels: hard-EM switching regression.
+
+Starting from proposed labels, we alternate
+
+(a) **fit**: one local model per regime from additive statistics (one pass over the data with
+    :func:`modemap.stats.accumulate_by_label`, then sequentially thresholded least squares or
+    the affine operator per regime); a regime with fewer than ``min_samples`` samples is
+    dropped and its samples are reassigned in step (c);
+(b) **score**: the log-likelihood of every sample under every regime: the residual
+    ``Y - Theta(Z) @ coef_k`` is Gaussian with the regime's residual covariance (maximum
+    likelihood, plus a floor of ``cov_floor`` times each target's variance), computed chunk by
+    chunk so that the term matrix never exists for all rows; optionally plus
+    ``location_weight`` times a Gaussian log-density of where the state sits (per-regime mean
+    and covariance of the states);
+(c) **relabel**: Viterbi decoding of all runs (never across runs) with a sticky Markov chain:
+    transition probabilities from the current switch counts plus Dirichlet pseudo-counts
+    (self-transitions get ``sticky`` of them), or fixed at ``sticky`` when
+    ``learn_transitions=False``;
+
+until the labels stop changing or ``max_iter`` is reached.  With the sparse model the first
+iterations use plain least squares on all terms (labels far from settled would otherwise prune
+terms that matter); once the labels settle the sparse fit takes over until they settle again.
+Each step cannot lower the complete-data likelihood when the fits are plain least squares, so
+this is the classification (hard) version of EM for a Markov-switching regression, as in
+autoregressive hidden Markov models.  The switching model: "A new approach to the economic
+analysis of nonstationary time series and the business cycle", Econometrica 57(2), 1989,
+DOI 10.2307/1912559, and "Analysis of time series subject to changes in regime", Journal of
+Econometrics 45, 1990, DOI 10.1016/0304-4076(90)90093-9.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from modemap._exceptions import FitError
+from modemap._progress import ProgressCallback, null_progress
+from modemap.regimes.hygiene import drop_small, enforce_min_dwell
+from modemap.regimes.summary import switch_counts
+from modemap.regimes.viterbi import viterbi_runs
+from modemap.stats import GramStats, accumulate_by_label
+
+__all__ = [
+    "ConvergenceRecord",
+    "RefineResult",
+    "fit_regimes",
+    "path_log_prob",
+    "predict_by_label",
+    "refine",
+    "regime_log_likelihood",
+    "residuals",
+    "transition_model",
+]
+
+_CHUNK = 65536
+
+
+@dataclass
+class ConvergenceRecord:
+    """What happened at each refinement iteration.
+
+    Attributes
+    ----------
+    history : list of float
+        Viterbi log-probability (complete-data log-likelihood) per iteration.
+    changes : list of int
+        Samples whose label changed per iteration.
+    n_regimes : list of int
+        Regimes alive per iteration.
+    converged : bool
+        True when an iteration changed no label.
+    """
+
+    history: list[float] = field(default_factory=list)
+    changes: list[int] = field(default_factory=list)
+    n_regimes: list[int] = field(default_factory=list)
+    converged: bool = False
+
+    @property
+    def iterations(self) -> int:
+        return len(self.history)
+
+
+@dataclass
+class RefineResult:
+    """Outcome of :func:`refine`.
+
+    Attributes
+    ----------
+    labels : ndarray of shape (n,)
+    n_regimes : int
+    fits : list of LocalFit
+    covariances : ndarray of shape (K, m, m)
+        Residual covariances used in the likelihood (with the floor).
+    loglik : float
+        Complete-data log-likelihood of ``labels`` under the final fits and chain.
+    log_start, log_trans : ndarray
+    stats : list of GramStats
+    monitor : ConvergenceRecord
+    notes : list of str
+    """
+
+    labels: np.ndarray
+    n_regimes: int
+    fits: list[Any]
+    covariances: np.ndarray
+    loglik: float
+    log_start: np.ndarray
+    log_trans: np.ndarray
+    stats: list[GramStats]
+    monitor: ConvergenceRecord
+    notes: list[str]
+    covariance: str = "tied"
+    location_weight: float = 0.0
+
+
+def fit_regimes(
+    stats: Sequence[GramStats], terms: Sequence[str], *, model: str = "sparse", threshold="auto"
+) -> list[Any]:
+    """One local fit per regime from its statistics (``model``: "sparse" or "affine")."""
+    if model == "affine":
+        from modemap.affine import fit_affine
+
+        return [fit_affine(s, list(terms)) for s in stats]
+    from modemap.sparse import fit_sparse
+
+    return [fit_sparse(s, list(terms), threshold=threshold) for s in stats]
+
+
+def _covariances(
+    stats: Sequence[GramStats], fits: Sequence[Any], floor: np.ndarray, kind: str = "tied"
+) -> np.ndarray:
+    """Residual covariances (K, m, m): per regime ("full") or pooled over regimes ("tied")."""
+    products = [s.residual_products(np.asarray(f.coef)) for s, f in zip(stats, fits, strict=True)]
+    counts = [max(float(s.n), 1.0) for s in stats]
+    if kind == "tied":
+        pooled = sum(products) / sum(counts) + np.diag(floor)
+        return np.repeat(pooled[None], len(stats), axis=0)
+    return np.array([p / c + np.diag(floor) for p, c in zip(products, counts, strict=True)])
+
+
+def regime_log_likelihood(
+    library: Any,
+    Z: np.ndarray,
+    Y: np.ndarray,
+    coefs: Sequence[np.ndarray],
+    covariances: np.ndarray,
+    *,
+    chunk_size: int = _CHUNK,
+) -> np.ndarray:
+    """Gaussian log-likelihood of each sample's residual under each regime: (n, K).
+
+    The term matrix is built chunk by chunk into one buffer; for each regime only the
+    chunk's residual exists at a time.
+    """
+    n, m = Y.shape
+    k = len(coefs)
+    out = np.empty((n, k))
+    # whitening: with Sigma_k = L_k L_k', w_k = (y - theta C_k) L_k^-T = y A_k - theta B_k
+    whiten = [np.linalg.inv(np.linalg.cholesky(c)).T for c in covariances]
+    consts = np.array([np.log(np.diag(w)).sum() - 0.5 * m * np.log(2 * np.pi) for w in whiten])
+    b_all = [np.asarray(c, dtype=np.float64) @ w for c, w in zip(coefs, whiten, strict=True)]
+    buf = np.empty((max(min(chunk_size, n), 1), b_all[0].shape[0]))
+    with threadpool_limits(limits=1, user_api="blas"):  # tall-skinny products: threads only hurt
+        _fill_log_likelihood(library, Z, Y, whiten, b_all, consts, buf, out, chunk_size)
+    return out
+
+
+def _fill_log_likelihood(
+    library: Any,
+    Z: np.ndarray,
+    Y: np.ndarray,
+    whiten: list[np.ndarray],
+    b_all: list[np.ndarray],
+    consts: np.ndarray,
+    buf: np.ndarray,
+    out: np.ndarray,
+    chunk_size: int,
+) -> None:
+    n, k = out.shape
+    for start in range(0, n, chunk_size):
+        stop = min(start + chunk_size, n)
+        theta = library.transform(Z[start:stop], out=buf[: stop - start])
+        y = Y[start:stop]
+        # one narrow product per regime: (rows, m) outputs stay cheap for BLAS
+        for j in range(k):
+            w = y @ whiten[j]
+            w -= theta @ b_all[j]
+            out[start:stop, j] = consts[j] - 0.5 * np.einsum("ij,ij->i", w, w)
+
+
+def _location_log_likelihood(x: np.ndarray, labels: np.ndarray, k: int) -> np.ndarray:
+    """Gaussian log-density of the states under each regime's mean and covariance."""
+    n, d = x.shape
+    out = np.zeros((n, k))
+    total_var = np.var(x, axis=0) + 1e-12
+    for j in range(k):
+        sel = x[labels == j]
+        if sel.shape[0] < 2:
+            continue
+        cov = np.atleast_2d(np.cov(sel, rowvar=False)) + np.diag(1e-6 * total_var)
+        chol = np.linalg.cholesky(cov)
+        w = np.linalg.solve(chol, (x - sel.mean(axis=0)).T)
+        logdet = 2.0 * np.log(np.diag(chol)).sum()
+        out[:, j] = -0.5 * (np.einsum("ij,ij->j", w, w) + logdet + d * np.log(2 * np.pi))
+    return out
+
+
+def transition_model(
+    labels: np.ndarray, lengths: np.ndarray, k: int, sticky: float, learn: bool = True
+) -> tuple[np.ndarray, np.ndarray]:
+    """Log start and log transition matrix for the relabelling Viterbi pass.
+
+    With ``learn`` the rows are the counts of consecutive pairs within runs (self-transitions
+    included) plus pseudo-counts ``10 * (sticky on the diagonal, the rest spread evenly)``;
+    otherwise the fixed sticky matrix.  The start distribution is uniform.
+    """
+    log_start = np.full(k, -np.log(k))
+    if k == 1:
+        return log_start, np.zeros((1, 1))
+    prior = np.full((k, k), (1.0 - sticky) / (k - 1))
+    np.fill_diagonal(prior, sticky)
+    if not learn:
+        return log_start, np.log(prior)
+    runs = np.split(np.asarray(labels), np.cumsum(lengths)[:-1])
+    counts = switch_counts(runs, k).astype(np.float64)
+    stay = np.bincount(
+        np.concatenate([r[:-1][(r[:-1] == r[1:]) & (r[:-1] >= 0)] for r in runs]).astype(np.int64),
+        minlength=k,
+    )[:k]
+    counts[np.diag_indices(k)] = stay
+    trans = counts + 10.0 * prior
+    return log_start, np.log(trans / trans.sum(axis=1, keepdims=True))
+
+
+def path_log_prob(
+    log_em: np.ndarray,
+    labels: np.ndarray,
+    lengths: np.ndarray,
+    log_start: np.ndarray,
+    log_trans: np.ndarray,
+) -> float:
+    """Joint log-probability of a given labelling (no maximisation)."""
+    n = labels.size
+    total = float(np.take_along_axis(log_em, labels[:, None], axis=1).sum())
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
+    is_start = np.zeros(n, dtype=bool)
+    is_start[starts] = True
+    total += float(log_start[labels[is_start]].sum())
+    prev, cur = labels[:-1], labels[1:]
+    inner = ~is_start[1:]
+    return total + float(log_trans[prev[inner], cur[inner]].sum())
+
+
+def residuals(
+    library: Any, Z: np.ndarray, Y: np.ndarray, coef: np.ndarray, *, chunk_size: int = _CHUNK
+) -> np.ndarray:
+    """``Y - Theta(Z) @ coef`` built chunk by chunk: (n, m)."""
+    n = Y.shape[0]
+    out = np.empty_like(Y, dtype=np.float64)
+    buf = np.empty((max(min(chunk_size, n), 1), np.asarray(coef).shape[0]))
+    with threadpool_limits(limits=1, user_api="blas"):
+        for start in range(0, n, chunk_size):
+            stop = min(start + chunk_size, n)
+            theta = library.transform(Z[start:stop], out=buf[: stop - start])
+            out[start:stop] = Y[start:stop] - theta @ coef
+    return out
+
+
+def predict_by_label(
+    library: Any,
+    Z: np.ndarray,
+    Y: np.ndarray,
+    coefs: Sequence[np.ndarray],
+    labels: np.ndarray,
+    *,
+    chunk_size: int = _CHUNK,
+) -> np.ndarray:
+    """Sum of squared one-step errors per state, each sample under its own regime: (m,)."""
+    n, m = Y.shape
+    coefs = [np.asarray(c, dtype=np.float64) for c in coefs]
+    buf = np.empty((max(min(chunk_size, n), 1), coefs[0].shape[0]))
+    sse = np.zeros(m)
+    with threadpool_limits(limits=1, user_api="blas"):
+        for start in range(0, n, chunk_size):
+            stop = min(start + chunk_size, n)
+            theta = library.transform(Z[start:stop], out=buf[: stop - start])
+            lab = labels[start:stop]
+            for j, c in enumerate(coefs):
+                sel = lab == j
+                r = Y[start:stop][sel] - theta[sel] @ c
+                sse += np.einsum("ij,ij->j", r, r)
+    return sse
+
+
+def refine(
+    Z: np.ndarray,
+    Y: np.ndarray,
+    lengths: np.ndarray,
+    labels: np.ndarray,
+    library: Any,
+    *,
+    n_regimes: int,
+    model: str = "sparse",
+    threshold: Any = "auto",
+    sticky: float = 0.99,
+    learn_transitions: bool = True,
+    location_weight: float = 0.0,
+    covariance: str = "tied",
+    min_samples: int = 30,
+    min_dwell: int = 1,
+    max_iter: int = 30,
+    cov_floor: float = 1e-6,
+    progress: ProgressCallback | None = None,
+) -> RefineResult:
+    """Alternate per-regime fits and Viterbi relabelling (hard-EM switching regression).
+
+    Parameters
+    ----------
+    Z : ndarray of shape (n, n_vars)
+        Variables (states then inputs).
+    Y : ndarray of shape (n, m)
+        Targets (derivatives, or next states in discrete form).
+    lengths : ndarray of int
+        Samples per run.
+    labels : ndarray of shape (n,)
+        Initial labels in ``0..n_regimes-1`` (``-1`` = unassigned).
+    library : fitted TermLibrary
+    n_regimes : int
+    model : {"sparse", "affine"}
+    threshold : "auto" or float
+        Passed to the sparse fit.
+    sticky : float
+        Self-transition weight of the Markov chain prior.
+    learn_transitions : bool
+        Transition probabilities from switch counts (True) or fixed at ``sticky`` (False).
+    location_weight : float
+        Weight of the Gaussian term on where the state sits (0 = dynamics only).
+    covariance : {"tied", "full"}
+        One residual covariance shared by all regimes (regimes then differ by their dynamics
+        only, as with a non-switching variance) or one per regime.
+    min_samples : int
+        Regimes with fewer samples are dropped (never below ``n_terms + 1``).
+    min_dwell : int
+        Stretches shorter than this are relabelled to their neighbour after each pass.
+    max_iter : int
+    cov_floor : float
+        Floor added to residual variances, relative to each target's variance.
+    progress : callable, optional
+        ``progress(fraction, message)``, called once per iteration.
+
+    Returns
+    -------
+    RefineResult
+    """
+    progress = progress or null_progress
+    Y = np.asarray(Y, dtype=np.float64)
+    if Y.ndim == 1:
+        Y = Y[:, None]
+    opts = _Options(
+        model=model,
+        threshold=threshold,
+        sticky=sticky,
+        learn=learn_transitions,
+        location_weight=location_weight,
+        covariance=covariance,
+        min_samples=max(int(min_samples), len(library.terms_) + 1),
+        floor=cov_floor * (np.var(Y, axis=0) + 1e-300),
+    )
+    Z = np.asarray(Z, dtype=np.float64)
+    lengths = np.asarray(lengths, dtype=np.int64)
+    labels = np.asarray(labels, dtype=np.int64).copy()
+    k = int(n_regimes)
+    monitor, notes = ConvergenceRecord(), []
+    # phase 1 (sparse model only): plain least squares on all terms until the labels settle,
+    # so that early, unsettled labels do not prune terms; phase 2: the requested fit
+    dense = model == "sparse" and threshold != 0
+    phase_opts = replace(opts, threshold=0.0) if dense else opts
+    state = None
+    for it in range(max(1, max_iter)):
+        state = None  # release the previous scores before computing new ones (memory)
+        state = _score_labels(Z, Y, lengths, labels, k, library, phase_opts, notes)
+        labels, k = state.labels, state.k
+        new, log_prob = viterbi_runs(state.log_em, lengths, state.log_start, state.log_trans)
+        new = enforce_min_dwell(new, lengths, min_dwell)
+        changed = int(np.count_nonzero(new != labels))
+        monitor.history.append(float(log_prob))
+        monitor.changes.append(changed)
+        monitor.n_regimes.append(k)
+        labels = new
+        progress((it + 1) / max_iter, f"refinement iteration {it + 1}: {changed} labels changed")
+        if changed == 0 and phase_opts is not opts:
+            phase_opts = opts  # labels settled with dense fits: switch to the sparse fit
+            continue
+        if changed == 0:
+            monitor.converged = True
+            break
+    if not monitor.converged:
+        # final fits consistent with the final labels
+        state = None
+        state = _score_labels(Z, Y, lengths, labels, k, library, opts, notes)
+        labels, k = state.labels, state.k
+        if np.any(labels < 0):
+            labels, _ = viterbi_runs(state.log_em, lengths, state.log_start, state.log_trans)
+    if monitor.converged and min_dwell <= 1:
+        loglik = monitor.history[-1]  # the labels are the Viterbi path of this very state
+    else:
+        loglik = path_log_prob(state.log_em, labels, lengths, state.log_start, state.log_trans)
+    return RefineResult(
+        labels=labels,
+        n_regimes=k,
+        fits=state.fits,
+        covariances=state.covs,
+        loglik=loglik,
+        log_start=state.log_start,
+        log_trans=state.log_trans,
+        stats=state.stats,
+        monitor=monitor,
+        notes=notes,
+        covariance=covariance,
+        location_weight=location_weight,
+    )
+
+
+@dataclass
+class _Options:
+    model: str
+    threshold: Any
+    sticky: float
+    learn: bool
+    location_weight: float
+    covariance: str
+    min_samples: int
+    floor: np.ndarray
+
+
+@dataclass
+class _State:
+    labels: np.ndarray
+    k: int
+    stats: list[GramStats]
+    fits: list[Any]
+    covs: np.ndarray
+    log_em: np.ndarray
+    log_start: np.ndarray
+    log_trans: np.ndarray
+
+
+def _score_labels(
+    Z: np.ndarray,
+    Y: np.ndarray,
+    lengths: np.ndarray,
+    labels: np.ndarray,
+    k: int,
+    library: Any,
+    opts: _Options,
+    notes: list[str],
+) -> _State:
+    """Steps (a) and (b): drop small regimes, fit each regime, score every sample."""
+    labels, k, dropped = drop_small(labels, k, opts.min_samples)
+    notes += dropped
+    if k == 0:
+        raise FitError(f"no regime has at least {opts.min_samples} samples; use fewer regimes")
+    stats = accumulate_by_label(library, Z, Y, labels, k)
+    fits = fit_regimes(stats, list(library.terms_), model=opts.model, threshold=opts.threshold)
+    covs = _covariances(stats, fits, opts.floor, opts.covariance)
+    log_em = regime_log_likelihood(library, Z, Y, [f.coef for f in fits], covs)
+    if opts.location_weight:
+        x = Z[:, : Y.shape[1]]
+        log_em += opts.location_weight * _location_log_likelihood(x, labels, k)
+    log_start, log_trans = transition_model(labels, lengths, k, opts.sticky, opts.learn)
+    return _State(labels, k, stats, fits, covs, log_em, log_start, log_trans)

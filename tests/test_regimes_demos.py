@@ -1,0 +1,121 @@
+"""RegimeFinder on the three invented demo scenarios (modemap.demos), against their truth.
+
+The demo frames carry ``true_regime``: the regime active over ``[t_k, t_k+1)``, which is the
+regime of regression row ``k`` in discrete form (row ``k`` models the state at ``k + 1``).
+The scenarios switch on a fast clock (PWM) or at threshold crossings, so the discrete form is
+used: derivative smoothing in the continuous form blurs every switch (measured in continuous
+form: ``water_heaters`` 94 % label accuracy at K = 2 and 96 % even when refined from the true
+labels; ``buck`` with ``auto`` chose 6 regimes, 51 %).  Checks marked
+``xfail(strict=True)`` are targets we measured as not met (numbers in the reason); they turn
+into failures the day they pass, so the marker must then be removed.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.linalg import logm
+from scipy.optimize import linear_sum_assignment
+
+from modemap.demos import make_demo
+from modemap.intake import read_data
+from modemap.regimes import RegimeFinder
+
+pytestmark = pytest.mark.slow
+
+
+def _fit(name: str, inputs: list[str], **options):
+    frame, truth = make_demo(name, seed=0)
+    states = [s["column"] for s in truth["states"]]
+    ds = read_data(frame, time=frame.columns[0], states=states, inputs=inputs, run="run")
+    options = {"form": "discrete", "min_dwell": 2, "max_regimes": 3, **options}
+    finder = RegimeFinder(**options).fit(ds)
+    return finder, frame["true_regime"].to_numpy(), truth, ds
+
+
+def _matching(labels: np.ndarray, truth: np.ndarray) -> tuple[float, dict[int, int]]:
+    """Accuracy after the best id matching (scipy's assignment solver) and the matching."""
+    k = int(max(labels.max(), truth.max())) + 1
+    c = np.array([[np.sum((labels == i) & (truth == j)) for j in range(k)] for i in range(k)])
+    rows, cols = linear_sum_assignment(-c)
+    return c[rows, cols].sum() / labels.size, dict(zip(rows.tolist(), cols.tolist(), strict=True))
+
+
+@pytest.fixture(scope="module")
+def buck():
+    # the gate column is left out: it *is* the regime; the states alone must reveal it
+    return _fit("buck", [], model="affine")
+
+
+@pytest.fixture(scope="module")
+def heaters():
+    return _fit("water_heaters", ["w [L/min]"], terms=["1", "T", "w", "T*w"])
+
+
+@pytest.fixture(scope="module")
+def reactor():
+    # both regimes share one vector field (bistable): only where the state sits tells them
+    # apart, hence the location term
+    terms = ["1", "C_A", "T", "Tc", "C_A*exp(-8750/T)"]
+    return _fit("reactor", ["Tc [K]"], terms=terms, n_regimes=2, location_weight=1.0)
+
+
+def test_buck_regimes_and_equations(buck) -> None:
+    finder, truth_labels, truth, ds = buck
+    assert finder.n_regimes_ == 2
+    assert [lab.size for lab in finder.labels_] == ds.lengths.tolist()  # one label per sample
+    acc, match = _matching(np.concatenate(finder.labels_), truth_labels)
+    assert acc >= 0.97
+    for ours, fit in enumerate(finder.local_fits_):
+        true = truth["regimes"][match[ours]]["coefficients"]
+        # exact discrete -> continuous map of an affine system: A = logm(Ad) / dt,
+        # c = A (Ad - I)^-1 cd (matrix exponential solution, textbook)
+        cd, ad = fit.coef[0], fit.coef[1:].T
+        a = np.real(logm(ad)) / ds.step
+        c = a @ np.linalg.solve(ad - np.eye(2), cd)
+        for j, state in enumerate(ds.state_names):
+            for term, value in true[state].items():
+                got = c[j] if term == "1" else a[j, ds.state_names.index(term)]
+                assert got == pytest.approx(value, rel=0.03), (ours, state, term)
+
+
+def test_water_heaters_regimes(heaters) -> None:
+    finder, truth_labels, _, _ = heaters
+    assert finder.n_regimes_ == 2
+    acc, _ = _matching(np.concatenate(finder.labels_), truth_labels)
+    assert acc >= 0.97
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="measured: coefficients of 1, T, T*w off by far more than 3 % (e.g. heater-off "
+    "constant 0.020 vs 0.00093); T spans only 55-60 degC, so 1 and T are nearly collinear",
+)
+def test_water_heaters_coefficients(heaters) -> None:
+    finder, truth_labels, truth, ds = heaters
+    _, match = _matching(np.concatenate(finder.labels_), truth_labels)
+    for ours, fit in enumerate(finder.local_fits_):
+        true = truth["regimes"][match[ours]]["coefficients"]["T"]
+        cont = fit.coef[:, 0].copy()
+        cont[fit.terms.index("T")] -= 1.0
+        cont /= ds.step  # first-order map x[k+1] = x + dt f(x): k dt < 0.02 here
+        for term, value in true.items():
+            assert cont[fit.terms.index(term)] == pytest.approx(value, rel=0.03)
+
+
+def test_reactor_regimes_with_location(reactor) -> None:
+    finder, truth_labels, _, _ = reactor
+    acc, _ = _matching(np.concatenate(finder.labels_), truth_labels)
+    assert acc >= 0.97
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="measured: with identical dynamics in both regimes, BIC with the location term "
+    "keeps adding regimes up to 6 (5 left after hygiene; 58 % accuracy); with "
+    "max_regimes=3 it returns 2",
+)
+def test_reactor_auto_chooses_two() -> None:
+    terms = ["1", "C_A", "T", "Tc", "C_A*exp(-8750/T)"]
+    finder, _, _, _ = _fit("reactor", ["Tc [K]"], terms=terms, location_weight=1.0, max_regimes=6)
+    assert finder.n_regimes_ == 2

@@ -1,0 +1,166 @@
+"""RegimeFinder end to end: published data (statsmodels' Nile flows), simulated systems."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.linalg import expm
+from scipy.optimize import linear_sum_assignment
+from statsmodels.datasets import nile
+
+from modemap._exceptions import FitCancelled, FitError
+from modemap.intake import read_data
+from modemap.regimes import RegimeFinder
+
+
+def _agreement(a: np.ndarray, b: np.ndarray, k: int) -> float:
+    """Best agreement over id permutations (scipy's assignment solver)."""
+    c = np.array([[np.sum((a == i) & (b == j)) for j in range(k)] for i in range(k)])
+    r, cidx = linear_sum_assignment(-c)
+    return c[r, cidx].sum() / a.size
+
+
+def _switching_ar(n: int = 2500, seed: int = 1) -> tuple[pd.DataFrame, np.ndarray]:
+    """Invented switching AR(1): y' = 0.9 y + 1 or 0.3 y - 1, persistent Markov chain."""
+    rng = np.random.default_rng(seed)
+    stay = np.array([0.98, 0.97])
+    s = np.zeros(n, dtype=np.int64)
+    u = rng.random(n)
+    for t in range(1, n):
+        s[t] = s[t - 1] if u[t] < stay[s[t - 1]] else 1 - s[t - 1]
+    y = np.zeros(n + 1)
+    e = 0.5 * rng.standard_normal(n)
+    for t in range(n):
+        y[t + 1] = (0.9 * y[t] + 1.0, 0.3 * y[t] - 1.0)[s[t]] + e[t]
+    return pd.DataFrame({"t": np.arange(n + 1.0), "y": y}), s
+
+
+@pytest.fixture(scope="module")
+def ar_fit() -> tuple[RegimeFinder, np.ndarray]:
+    frame, s = _switching_ar()
+    ds = read_data(frame, time="t", states=["y"])
+    return RegimeFinder(form="discrete", model="affine", max_regimes=3).fit(ds), s
+
+
+def test_switching_ar_auto_finds_two_regimes(ar_fit) -> None:
+    finder, s = ar_fit
+    assert finder.n_regimes_ == 2  # simulated with two regimes
+    labels = finder.labels_[0]
+    assert labels.shape == (2501,)
+    # row k models y[k+1]: compare with the simulated regime of each transition
+    assert _agreement(labels[:-1], s, 2) >= 0.97
+    table = finder.selection_
+    assert list(table.columns) == [
+        "K",
+        "n_regimes",
+        "loglik",
+        "n_params",
+        "bic",
+        "holdout_rmse",
+        "chosen",
+    ]
+    assert table.loc[table["chosen"], "K"].item() == 2
+    # ids ordered by the mean of the first state: the regime near y = 10 (0.9 y + 1) is last
+    slopes = [fit.coef[1, 0] for fit in finder.local_fits_]
+    assert slopes[0] == pytest.approx(0.3, abs=0.05) and slopes[1] == pytest.approx(0.9, abs=0.05)
+
+
+def test_statistics_and_transition_matrix(ar_fit) -> None:
+    finder, _ = ar_fit
+    stats = finder.statistics_
+    assert set(stats) == {"share", "dwell", "transitions"}
+    assert sum(stats["share"].values()) == pytest.approx(1.0)
+    # expected dwell of a Markov chain with stay probability p is 1 / (1 - p) samples
+    # (geometric distribution, textbook); simulated: 50 and 33.3 samples
+    assert stats["dwell"]["1"]["mean"] == pytest.approx(50.0, rel=0.35)
+    assert stats["dwell"]["0"]["mean"] == pytest.approx(1 / 0.03, rel=0.35)
+    np.testing.assert_allclose(finder.transmat_.sum(axis=1), 1.0)
+    assert finder.transmat_[1, 1] == pytest.approx(0.98, abs=0.01)
+
+
+def test_same_seed_same_labels() -> None:
+    frame, _ = _switching_ar(n=800, seed=3)
+    ds = read_data(frame, time="t", states=["y"])
+    a = RegimeFinder(form="discrete", model="affine", n_regimes=2, seed=5).fit(ds)
+    b = RegimeFinder(form="discrete", model="affine", n_regimes=2, seed=5).fit(ds)
+    np.testing.assert_array_equal(a.labels_[0], b.labels_[0])
+    np.testing.assert_array_equal(a.local_fits_[0].coef, b.local_fits_[0].coef)
+
+
+def test_single_regime_oscillator_gives_one_regime() -> None:
+    # damped linear oscillator (one regime), exact discretisation by the matrix exponential
+    w, zeta, dt = 2.0, 0.1, 0.05
+    step = expm(np.array([[0.0, 1.0], [-w * w, -2 * zeta * w]]) * dt)
+    rng = np.random.default_rng(0)
+    frames = []
+    for run in range(3):
+        x = np.zeros((600, 2))
+        x[0] = 2.0 * rng.standard_normal(2)
+        for k in range(599):
+            x[k + 1] = step @ x[k] + 0.01 * rng.standard_normal(2)
+        frames.append(
+            pd.DataFrame({"t": np.arange(600) * dt, "run": run, "p": x[:, 0], "v": x[:, 1]})
+        )
+    ds = read_data(pd.concat(frames), time="t", states=["p", "v"], run="run")
+    finder = RegimeFinder(form="discrete", model="affine", max_regimes=3).fit(ds)
+    assert finder.n_regimes_ == 1
+    assert all(np.all(lab == 0) for lab in finder.labels_)
+    np.testing.assert_allclose(finder.local_fits_[0].coef[1:], step.T, atol=0.01)
+
+
+def test_nile_level_shift_at_1898() -> None:
+    # Nile annual flows 1871-1970 (statsmodels.datasets.nile); the level shift between 1898
+    # and 1899 is the change point found in the change point analysis of the Nile flows,
+    # Biometrika 65(2), 1978, DOI 10.1093/biomet/65.2.243 (title from memory: "The problem of
+    # the Nile: conditional solution to a changepoint problem"); the flow means on both sides
+    # (about 1097 and 850) are from memory
+    data = nile.load_pandas().data.astype(float)
+    ds = read_data(data, time="year", states=["volume"])
+    finder = RegimeFinder(
+        form="discrete", terms=["1"], n_regimes="auto", max_regimes=3, min_samples=10
+    ).fit(ds)
+    assert finder.n_regimes_ == 2
+    labels = finder.labels_[0]
+    years = data["year"].to_numpy()
+    # row k models volume[k + 1]: the label changes between the rows predicting 1898 and 1899
+    assert np.flatnonzero(np.diff(labels)).tolist() == [int(np.flatnonzero(years == 1897)[0])]
+    levels = sorted(fit.coef[0, 0] for fit in finder.local_fits_)
+    assert levels[0] == pytest.approx(850, rel=0.03) and levels[1] == pytest.approx(1097, rel=0.03)
+
+
+def test_progress_and_cancel() -> None:
+    frame, _ = _switching_ar(n=400, seed=2)
+    ds = read_data(frame, time="t", states=["y"])
+    seen: list[float] = []
+    RegimeFinder(form="discrete", model="affine", n_regimes=2).fit(
+        ds, progress=lambda f, m: seen.append(f)
+    )
+    assert seen and seen[-1] == 1.0 and all(0.0 <= f <= 1.0 for f in seen)
+
+    def stop(fraction: float, message: str) -> None:
+        raise FitCancelled("stopped")
+
+    with pytest.raises(FitCancelled):
+        RegimeFinder(form="discrete", n_regimes=2).fit(ds, progress=stop)
+    with pytest.raises(FitCancelled):
+        RegimeFinder(form="discrete", n_regimes="auto").fit(ds, progress=stop)
+
+
+def test_scikit_learn_parameter_protocol() -> None:
+    # sklearn.base.clone / get_params (scikit-learn estimator conventions)
+    from sklearn.base import clone
+
+    finder = RegimeFinder(n_regimes=3, sticky=0.95, terms=["1"])
+    copy = clone(finder)
+    assert copy.get_params() == finder.get_params()
+    assert not hasattr(copy, "labels_")
+
+
+def test_bad_parameters_raise_fit_error() -> None:
+    frame, _ = _switching_ar(n=200, seed=2)
+    ds = read_data(frame, time="t", states=["y"])
+    with pytest.raises(FitError, match="n_regimes"):
+        RegimeFinder(n_regimes=0).fit(ds)
+    with pytest.raises(FitError, match="form"):
+        RegimeFinder(form="sideways").fit(ds)

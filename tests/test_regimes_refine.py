@@ -1,0 +1,115 @@
+"""Hard-EM switching regression checked against statsmodels' Markov-switching regression.
+
+Reference: ``statsmodels.tsa.regime_switching.markov_regression.MarkovRegression``, an
+implementation of the model of "A new approach to the economic analysis of nonstationary time
+series and the business cycle", Econometrica 57(2), 1989, DOI 10.2307/1912559.  With
+``exog = y[t-1]`` and switching exog it fits ``y[t] = c_s + phi_s y[t-1] + e`` - the same
+parametrisation as our affine discrete-form regime models, so intercepts and slopes compare
+directly (``MarkovAutoregression`` instead models ``y[t] - mu_s = phi (y[t-1] - mu_s') + e``,
+which would need a mapping).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.optimize import linear_sum_assignment
+from statsmodels.tsa.regime_switching.markov_regression import MarkovRegression
+
+from modemap.regimes.proposal import propose
+from modemap.regimes.refine import path_log_prob, refine, transition_model
+from modemap.terms import TermLibrary
+
+# invented two-regime switching AR(1): (slope, intercept) per regime, persistent chain
+PARAMS = np.array([[0.9, 1.0], [0.3, -1.0]])
+P = np.array([[0.98, 0.02], [0.03, 0.97]])
+
+
+def _simulate(n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    s = np.zeros(n, dtype=np.int64)
+    u = rng.random(n)
+    for t in range(1, n):
+        s[t] = int(u[t] < P[s[t - 1], 1])
+    e = 0.5 * rng.standard_normal(n)
+    y = np.zeros(n + 1)
+    for t in range(n):
+        y[t + 1] = PARAMS[s[t], 0] * y[t] + PARAMS[s[t], 1] + e[t]
+    return y, s
+
+
+def _match(a: np.ndarray, b: np.ndarray, k: int) -> np.ndarray:
+    """Permutation of a's ids maximising agreement with b (scipy's assignment solver)."""
+    agree = np.array([[np.sum((a == i) & (b == j)) for j in range(k)] for i in range(k)])
+    rows, cols = linear_sum_assignment(-agree)
+    perm = np.empty(k, dtype=np.int64)
+    perm[rows] = cols
+    return perm
+
+
+@pytest.fixture(scope="module")
+def switching_fit():
+    y, s = _simulate(2500, seed=1)
+    z, target = y[:-1, None], y[1:, None]
+    library = TermLibrary(degree=1).fit(["y"])
+    labels0 = propose(np.hstack([z, target - z]), [z.shape[0]], 2, seed=0)
+    ours = refine(z, target, [z.shape[0]], labels0, library, n_regimes=2, model="affine")
+    ref = MarkovRegression(
+        y[1:], k_regimes=2, exog=y[:-1], switching_exog=True, switching_variance=False
+    ).fit(search_reps=0, disp=False)
+    return ours, ref, s
+
+
+def test_labels_agree_with_statsmodels(switching_fit) -> None:
+    ours, ref, truth = switching_fit
+    ref_labels = np.argmax(ref.smoothed_marginal_probabilities, axis=1)
+    perm = _match(ours.labels, ref_labels, 2)
+    assert np.mean(perm[ours.labels] == ref_labels) >= 0.98
+    perm_truth = _match(ours.labels, truth, 2)
+    assert np.mean(perm_truth[ours.labels] == truth) >= 0.97  # simulated truth
+    assert ours.monitor.converged
+
+
+def test_coefficients_inside_statsmodels_confidence_intervals(switching_fit) -> None:
+    ours, ref, _ = switching_fit
+    names = list(ref.model.param_names)
+    ci = np.asarray(ref.conf_int())  # 95 % intervals of the reference fit
+    ref_labels = np.argmax(ref.smoothed_marginal_probabilities, axis=1)
+    perm = _match(ours.labels, ref_labels, 2)
+    for k, fit in enumerate(ours.fits):
+        j = perm[k]
+        c, phi = fit.coef[:, 0]  # terms ["1", "y"]
+        lo, hi = ci[names.index(f"const[{j}]")]
+        assert lo <= c <= hi
+        lo, hi = ci[names.index(f"x1[{j}]")]
+        assert lo <= phi <= hi
+
+
+def test_transition_probabilities_close_to_statsmodels(switching_fit) -> None:
+    ours, ref, _ = switching_fit
+    ref_labels = np.argmax(ref.smoothed_marginal_probabilities, axis=1)
+    perm = _match(ours.labels, ref_labels, 2)
+    ref_trans = np.asarray(ref.regime_transition)[:, :, 0].T  # statsmodels: [to, from]
+    ours_trans = np.exp(ours.log_trans)
+    for i in range(2):
+        for j in range(2):
+            assert ours_trans[i, j] == pytest.approx(ref_trans[perm[i], perm[j]], abs=0.01)
+
+
+def test_loglik_is_the_path_score(switching_fit) -> None:
+    ours, _, _ = switching_fit
+    # the reported log-likelihood never exceeds the last Viterbi optimum by more than round-off
+    assert ours.loglik <= ours.monitor.history[-1] + 1e-6
+    assert np.isfinite(ours.loglik)
+
+
+def test_transition_model_counts_within_runs() -> None:
+    # counts of consecutive pairs inside runs only, plus the sticky pseudo-counts (definition)
+    labels = np.array([0, 0, 1, 1, 0, 0])
+    log_start, log_trans = transition_model(labels, np.array([3, 3]), 2, sticky=0.5)
+    counts = np.array([[2, 1], [1, 0]]) + 10 * 0.5  # pairs 00 01 | 10 00
+    np.testing.assert_allclose(np.exp(log_trans), counts / counts.sum(axis=1, keepdims=True))
+    np.testing.assert_allclose(np.exp(log_start), [0.5, 0.5])
+    score = path_log_prob(np.zeros((6, 2)), labels, np.array([3, 3]), log_start, log_trans)
+    expected = 2 * np.log(0.5) + 2 * log_trans[0, 0] + log_trans[0, 1] + log_trans[1, 0]
+    assert score == pytest.approx(expected)

@@ -1,0 +1,100 @@
+"""Viterbi decoding checked against hmmlearn's decoder (reference library)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hmmlearn import hmm
+
+from modemap.regimes.viterbi import viterbi, viterbi_runs
+
+
+def _random_gaussian_hmm(rng: np.random.Generator, k: int) -> hmm.GaussianHMM:
+    model = hmm.GaussianHMM(n_components=k, covariance_type="diag")
+    model.startprob_ = rng.dirichlet(np.ones(k))
+    model.transmat_ = rng.dirichlet(np.ones(k), size=k)
+    model.means_ = rng.normal(size=(k, 2))
+    model.covars_ = rng.uniform(0.5, 2.0, size=(k, 2))
+    return model
+
+
+@pytest.mark.parametrize("k", [2, 3, 5])
+@pytest.mark.parametrize("seed", range(8))
+def test_matches_hmmlearn_gaussian_with_lengths(k: int, seed: int) -> None:
+    rng = np.random.default_rng(100 * k + seed)
+    model = _random_gaussian_hmm(rng, k)
+    lengths = rng.integers(1, 400, size=rng.integers(1, 6))
+    x, _ = model.sample(int(lengths.sum()), random_state=seed)
+    # reference: hmmlearn's own Viterbi on the same parameters and runs
+    ref_logprob, ref_path = model.decode(x, lengths=lengths, algorithm="viterbi")
+    log_em = model._compute_log_likelihood(x)
+    path, logprob = viterbi_runs(log_em, lengths, np.log(model.startprob_), np.log(model.transmat_))
+    np.testing.assert_array_equal(path, ref_path)
+    assert logprob == pytest.approx(ref_logprob, rel=1e-10)
+
+
+@pytest.mark.parametrize("seed", range(5))
+def test_matches_hmmlearn_categorical_single_run(seed: int) -> None:
+    rng = np.random.default_rng(seed)
+    k, n_symbols = 3, 4
+    model = hmm.CategoricalHMM(n_components=k, n_features=n_symbols)
+    model.startprob_ = rng.dirichlet(np.ones(k))
+    model.transmat_ = rng.dirichlet(np.ones(k) * 0.5, size=k)
+    model.emissionprob_ = rng.dirichlet(np.ones(n_symbols), size=k)
+    x = rng.integers(0, n_symbols, size=(3000, 1))
+    ref_logprob, ref_path = model.decode(x, algorithm="viterbi")  # reference: hmmlearn
+    log_em = model._compute_log_likelihood(x)
+    log_start, log_trans = np.log(model.startprob_), np.log(model.transmat_)
+    path, logprob = viterbi(log_em, log_start, log_trans)
+    assert logprob == pytest.approx(ref_logprob, rel=1e-10)
+    # discrete emissions produce exactly tied paths (equal scores up to round-off), which
+    # either decoder may pick: both paths must reach the optimum
+    assert _path_score(path, log_em, log_start, log_trans) == pytest.approx(ref_logprob, rel=1e-10)
+    assert np.mean(path == ref_path) > 0.8
+
+
+def _path_score(path, log_em, log_start, log_trans) -> float:
+    total = log_start[path[0]] + log_em[np.arange(path.size), path].sum()
+    return float(total + log_trans[path[:-1], path[1:]].sum())
+
+
+def test_structural_zeros_left_to_right() -> None:
+    # a left-to-right chain (zero transition probabilities) as in hmmlearn's documentation
+    rng = np.random.default_rng(7)
+    model = hmm.GaussianHMM(n_components=3, covariance_type="diag")
+    model.startprob_ = np.array([1.0, 0.0, 0.0])
+    model.transmat_ = np.array([[0.95, 0.05, 0.0], [0.0, 0.95, 0.05], [0.0, 0.0, 1.0]])
+    model.means_ = np.array([[0.0], [3.0], [6.0]])
+    model.covars_ = np.ones((3, 1))
+    x, _ = model.sample(500, random_state=3)
+    ref_logprob, ref_path = model.decode(x, algorithm="viterbi")  # reference: hmmlearn
+    with np.errstate(divide="ignore"):
+        path, logprob = viterbi(
+            model._compute_log_likelihood(x), np.log(model.startprob_), np.log(model.transmat_)
+        )
+    np.testing.assert_array_equal(path, ref_path)
+    assert logprob == pytest.approx(ref_logprob, rel=1e-10)
+    assert np.all(np.diff(path) >= 0)
+    del rng
+
+
+def test_runs_are_decoded_independently() -> None:
+    # decoding two runs stacked equals decoding each alone (definition of independent runs)
+    rng = np.random.default_rng(3)
+    log_em = rng.normal(size=(300, 3))
+    log_start = np.log(np.array([0.2, 0.5, 0.3]))
+    log_trans = np.log(rng.dirichlet(np.ones(3), size=3))
+    both, lp = viterbi_runs(log_em, [120, 180], log_start, log_trans)
+    a, lpa = viterbi(log_em[:120], log_start, log_trans)
+    b, lpb = viterbi(log_em[120:], log_start, log_trans)
+    np.testing.assert_array_equal(both, np.concatenate([a, b]))
+    assert lp == pytest.approx(lpa + lpb, rel=1e-12)
+
+
+def test_single_regime_and_bad_lengths() -> None:
+    log_em = np.full((10, 1), -1.0)
+    path, lp = viterbi_runs(log_em, [4, 6], np.zeros(1), np.zeros((1, 1)))
+    assert np.all(path == 0)
+    assert lp == pytest.approx(-10.0)
+    with pytest.raises(ValueError, match="lengths"):
+        viterbi_runs(np.zeros((5, 2)), [2, 2], np.zeros(2), np.zeros((2, 2)))
