@@ -570,7 +570,7 @@ class SwitchingSurfaces(BaseEstimator):
         use_ho = yho.size and yho.any() and not yho.all()
         Zs, ys = (self._Z[ho], yho) if use_ho else (self._Z[tr], ytr)
         full_score = _balanced_accuracy(ys, _values(full, self._vars, Zs) > 0)
-        cands = range(len(self._vars)) if choices is None else [choices[key]]
+        cands = [self._leading_variable(full, tr)] if choices is None else [choices[key]]
         best = None
         for v in cands:
             thr, sign, _ = _threshold(self._Z[tr, v], ytr)
@@ -587,6 +587,25 @@ class SwitchingSurfaces(BaseEstimator):
         ok = best is not None and best[0] >= full_score - float(self.simplify_tol)
         self._choice_map[key] = best[1] if ok else None
         return best[2] if ok else full
+
+    def _leading_variable(self, full: Guard, rows: np.ndarray) -> int:
+        """The variable the full guard leans on most: largest |d value / d v| * spread(v).
+
+        Only this variable is offered as a one-variable threshold, so a variable that
+        merely co-varies with switching (a draw that hastens cooling) cannot replace the
+        one the surface is built on (the temperature).
+        """
+        Zr = self._Z[rows]
+        spread = Zr.std(axis=0)
+        centre = Zr.mean(axis=0)
+        h = np.where(spread > 0, 1e-3 * spread, 1e-6)
+        base = _values(full, self._vars, centre[None, :])[0]
+        slopes = np.empty(len(self._vars))
+        for v in range(len(self._vars)):
+            z = centre.copy()
+            z[v] += h[v]
+            slopes[v] = (_values(full, self._vars, z[None, :])[0] - base) / h[v]
+        return int(np.argmax(np.abs(slopes) * spread))
 
     def _score(self, guards, Z, labels, lengths, test) -> dict:
         """Held-out prediction of switch positions (in samples)."""

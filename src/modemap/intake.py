@@ -54,8 +54,11 @@ from modemap._exceptions import DataError
 from modemap.dataset import Dataset, Gap, Run
 
 __all__ = [
+    "CSV_CHUNK_ROWS",
     "CSV_SUFFIXES",
     "IRREGULAR_TOLERANCE",
+    "LARGE_FILE_BYTES",
+    "LARGE_PARQUET_ROWS",
     "PARQUET_SUFFIXES",
     "parse_header",
     "peek_columns",
@@ -67,6 +70,12 @@ CSV_SUFFIXES = (".csv", ".csv.gz")
 PARQUET_SUFFIXES = (".parquet", ".pq")
 IRREGULAR_TOLERANCE = 0.01
 """Relative spread of the time step ((max - min) / median) above which sampling is irregular."""
+LARGE_FILE_BYTES = 200 * 1024**2
+"""Files larger than this are read in pieces: CSV in chunks, Parquet by row groups."""
+LARGE_PARQUET_ROWS = 2_000_000
+"""Parquet files with at least this many rows (and several row groups) are read by row group."""
+CSV_CHUNK_ROWS = 1_000_000
+"""Rows per chunk when a large CSV is read in pieces."""
 
 _DATAFRAME = "<DataFrame>"
 _HEADER = re.compile(r"^\s*(?P<name>.*?)\s*\[(?P<unit>[^\[\]]*)\]\s*$")
@@ -271,13 +280,11 @@ def _load(table: _Table, positions: list[int]) -> pd.DataFrame:
     elif table.kind == "parquet":
         frame = _load_parquet(table, positions)
     else:
-        frame = _read_csv(
-            table,
-            header=0,
-            usecols=positions,
-            index_col=False,
-            skip_blank_lines=False,
-        )
+        options = {"header": 0, "usecols": positions, "index_col": False}
+        if _is_large(table.path):
+            frame = _read_csv_chunked(table, **options)
+        else:
+            frame = _read_csv(table, skip_blank_lines=False, **options)
         frame = frame.iloc[:, np.argsort(np.argsort(positions))]  # usecols returns file order
         frame = _drop_trailing_blank(frame)
     frame = frame.reset_index(drop=True)
@@ -285,12 +292,89 @@ def _load(table: _Table, positions: list[int]) -> pd.DataFrame:
     return frame
 
 
-def _load_parquet(table: _Table, positions: list[int]) -> pd.DataFrame:
+def _is_large(path: Path | None) -> bool:
+    """True for files worth reading piece by piece (see :data:`LARGE_FILE_BYTES`)."""
     try:
-        frame = pd.read_parquet(table.path, columns=[table.headers[p] for p in positions])
+        return path is not None and path.stat().st_size > LARGE_FILE_BYTES
+    except OSError:
+        return False
+
+
+def _read_csv_chunked(table: _Table, **options) -> pd.DataFrame:
+    """A large CSV read :data:`CSV_CHUNK_ROWS` rows at a time, then joined.
+
+    The parser works on one chunk at a time instead of the whole file; blank lines are kept
+    (as empty rows), so row numbers in messages still match the lines of the file.
+    """
+    for attempt in range(2):
+        reader = _read_csv(table, chunksize=CSV_CHUNK_ROWS, skip_blank_lines=False, **options)
+        try:
+            with reader:
+                chunks = list(reader)
+            break
+        except UnicodeDecodeError:
+            if attempt or table.encoding == "latin-1":
+                raise table.error("cannot decode the file as text") from None
+            table.encoding = "latin-1"
+        except (pd.errors.ParserError, ValueError, OverflowError, IndexError) as exc:
+            raise table.error(f"cannot parse as CSV: {_one_line(exc)}") from None
+    if not chunks:
+        raise table.error("no data rows (only a header)")
+    return pd.concat(chunks, ignore_index=True)
+
+
+def _load_parquet(table: _Table, positions: list[int]) -> pd.DataFrame:
+    columns = [table.headers[p] for p in positions]
+    try:
+        import pyarrow.parquet as pq
+
+        with pq.ParquetFile(table.path) as handle:
+            if handle.metadata.num_row_groups > 1 and (
+                handle.metadata.num_rows >= LARGE_PARQUET_ROWS or _is_large(table.path)
+            ):
+                return _parquet_by_row_groups(handle, columns)
+        frame = pd.read_parquet(table.path, columns=columns)
     except Exception as exc:  # pyarrow raises several unrelated types for bad files
         raise table.error(f"not a readable Parquet file: {_one_line(exc)}") from None
     return frame
+
+
+def _parquet_by_row_groups(handle, columns: list[str]) -> pd.DataFrame:
+    """Columns read one row group at a time; numeric ones land in preallocated arrays.
+
+    Peak memory is the final columns plus one row group, instead of the whole Arrow table
+    next to its pandas copy.  Other columns (text, time stamps) are converted per row group
+    and joined.
+    """
+    import pyarrow as pa
+
+    n = handle.metadata.num_rows
+    schema = handle.schema_arrow
+    numeric = {
+        c: schema.field(c).type.to_pandas_dtype()
+        for c in columns
+        if pa.types.is_integer(schema.field(c).type) or pa.types.is_floating(schema.field(c).type)
+    }
+    arrays = {c: np.empty(n, dtype=dtype) for c, dtype in numeric.items()}
+    others: dict[str, list[pd.Series]] = {c: [] for c in columns if c not in numeric}
+    start = 0
+    for i in range(handle.metadata.num_row_groups):
+        group = handle.read_row_group(i, columns=columns)
+        stop = start + group.num_rows
+        for c in columns:
+            col = group.column(c)
+            if c in arrays and col.null_count == 0:
+                arrays[c][start:stop] = col.to_numpy()
+            elif c in arrays:  # missing values: keep them as NaN (reported by validation)
+                arrays[c] = arrays[c].astype(np.float64, copy=False)
+                arrays[c][start:stop] = col.to_pandas().to_numpy(np.float64, na_value=np.nan)
+            else:
+                others[c].append(col.to_pandas())
+        start = stop
+    data = {
+        c: arrays[c] if c in arrays else pd.concat(others[c], ignore_index=True) for c in columns
+    }
+    return pd.DataFrame(data, columns=columns, copy=False)
 
 
 def _drop_trailing_blank(frame: pd.DataFrame) -> pd.DataFrame:

@@ -27,6 +27,7 @@ from sklearn.utils.validation import check_is_fitted
 
 from modemap._exceptions import DataError, FitError
 from modemap.affine import fit_affine
+from modemap.centring import fit_sparse_centred
 from modemap.dataset import Dataset
 from modemap.derivatives import differentiate
 from modemap.equations import format_equations
@@ -285,9 +286,10 @@ class LocalDynamics(BaseEstimator):
             )
             stats = accumulate_by_label(library, reg.Z, reg.Y, blocks, _CV_BLOCKS)
             return fit_sparse(stats, terms, threshold="auto", ridge=self.ridge, criterion="cv")
-        return fit_sparse(
+        return fit_sparse_centred(
             accumulate(library, reg.Z, reg.Y),
             terms,
+            library.variables_,
             threshold=self.threshold,
             ridge=self.ridge,
             criterion=self.criterion,

@@ -593,12 +593,12 @@ class _Sim:
             atol=self.atol,
         )
         self.nfev += int(sol.nfev)
-        m = sol.t.size
-        first = int(np.searchsorted(time, t_eval[0])) if t_eval.size else k + 1
-        self.X[first : first + m] = sol.y.T
-        self.R[first : first + m] = reg.id
         if sol.status == -1:
             raise _Stop(-1, f"solver failure at t={t:g}: {sol.message}")
+        m = np.size(sol.t)
+        first = int(np.searchsorted(time, t_eval[0])) if t_eval.size else k + 1
+        self.X[first : first + m] = np.asarray(sol.y).reshape(x.size, m).T
+        self.R[first : first + m] = reg.id
         if sol.status == 1:
             hits = [(i, e[0]) for i, e in enumerate(sol.t_events) if e.size]
             i_ev, te = min(hits, key=lambda p: p[1])

@@ -20,6 +20,7 @@ following one if no sample precedes), so every sample carries a regime.
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Sequence
 from typing import Any
 
@@ -32,9 +33,22 @@ from modemap._progress import ProgressCallback, null_progress, scaled
 from modemap.dataset import Dataset
 from modemap.regimes.hygiene import default_min_samples, order_regimes
 from modemap.regimes.proposal import propose
-from modemap.regimes.refine import RefineResult, fit_regimes, refine, residuals
-from modemap.regimes.selection import count_parameters, information_criterion, select_regimes
+from modemap.regimes.refine import (
+    RefineResult,
+    fit_regimes,
+    refine,
+    regime_log_likelihood,
+    residuals,
+)
+from modemap.regimes.segments import segment_derivatives
+from modemap.regimes.selection import (
+    count_parameters,
+    holdout_split,
+    information_criterion,
+    select_regimes,
+)
 from modemap.regimes.summary import statistics
+from modemap.regimes.viterbi import viterbi_runs
 from modemap.stats import accumulate
 
 __all__ = ["RegimeFinder"]
@@ -113,6 +127,8 @@ class RegimeFinder(BaseEstimator):
         terms: Sequence[str] | None = None,
         location_weight: float = 0.0,
         covariance: str = "tied",
+        switching_inputs: str | Sequence[str] | None = "auto",
+        resegment: bool = True,
     ) -> None:
         self.n_regimes = n_regimes
         self.max_regimes = max_regimes
@@ -130,6 +146,8 @@ class RegimeFinder(BaseEstimator):
         self.terms = terms
         self.location_weight = location_weight
         self.covariance = covariance
+        self.switching_inputs = switching_inputs
+        self.resegment = resegment
 
     # ------------------------------------------------------------------ checks
     def _check_params(self) -> None:
@@ -151,13 +169,41 @@ class RegimeFinder(BaseEstimator):
         if int(self.min_dwell) < 1:
             raise FitError(f"min_dwell must be >= 1, got {self.min_dwell}")
 
-    def _library(self, variables: Sequence[str]) -> Any:
+    def _library(self, variables: Sequence[str], excluded: Sequence[str] = ()) -> Any:
         from modemap.terms import TermLibrary
 
         if self.terms is not None:
             return TermLibrary.from_terms(list(self.terms), variables)
         degree = 1 if self.model == "affine" else int(self.degree)
-        return TermLibrary(degree=degree).fit(variables)
+        library = TermLibrary(degree=degree).fit(variables)
+        if not excluded:
+            return library
+        keep = [t for t in library.terms_ if not _uses(t, excluded)]
+        return TermLibrary.from_terms(keep, variables)
+
+    def _switching_inputs(self, ds: Dataset) -> list[str]:
+        """Inputs that select the regime rather than enter its equations.
+
+        ``"auto"``: every input that takes exactly two distinct values (an on/off
+        command, a gate signal); a list names them; ``None`` or ``()``: none.
+        """
+        if self.switching_inputs is None:
+            return []
+        if isinstance(self.switching_inputs, str) and self.switching_inputs != "auto":
+            names = [self.switching_inputs]
+        elif self.switching_inputs == "auto":
+            _, _, u, _ = ds.concat()
+            return [
+                name
+                for j, name in enumerate(ds.input_names)
+                if np.unique(u[:, j][:1_000_000]).size == 2
+            ]
+        else:
+            names = list(self.switching_inputs)
+        unknown = [n for n in names if n not in ds.input_names]
+        if unknown:
+            raise FitError(f"switching inputs {', '.join(unknown)} are not among the inputs")
+        return names
 
     # --------------------------------------------------------------------- fit
     def fit(self, ds: Dataset, progress: ProgressCallback | None = None) -> RegimeFinder:
@@ -178,7 +224,8 @@ class RegimeFinder(BaseEstimator):
         self._check_params()
         progress = progress or null_progress
         reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
-        library = self._library(ds.variable_names)
+        self.switching_inputs_ = self._switching_inputs(ds)
+        library = self._library(ds.variable_names, self.switching_inputs_)
         Z, Y = np.asarray(reg.Z, dtype=np.float64), np.asarray(reg.Y, dtype=np.float64)
         lengths = np.asarray(reg.lengths, dtype=np.int64)
         if Z.shape[0] < 2:
@@ -189,6 +236,9 @@ class RegimeFinder(BaseEstimator):
             else int(self.min_samples)
         )
         self._library_fitted = library
+        self._reg_time = reg.time
+        self._reg_lengths = lengths
+        self._derivative_settings = dict(reg.derivative or {})
         if self.n_regimes == "auto":
             kmax = max(1, min(int(self.max_regimes), Z.shape[0] // self._min_samples))
             table, _ = select_regimes(
@@ -250,13 +300,75 @@ class RegimeFinder(BaseEstimator):
             )
             if best is None or result.loglik > best.loglik:
                 best = result
+        if self.form == "continuous" and self.resegment and best.n_regimes > 1:
+            best = self._resegment(Z, Y, lengths, best, progress)
         return best
+
+    def _resegment(
+        self,
+        Z: np.ndarray,
+        Y: np.ndarray,
+        lengths: np.ndarray,
+        result: RefineResult,
+        progress: ProgressCallback,
+    ) -> RefineResult:
+        """Re-estimate derivatives within regime stretches and refine again (twice at most).
+
+        See :mod:`modemap.regimes.segments`.  The targets used by the final refinement are
+        kept in ``result.targets`` so that the fitted models and the likelihood agree.
+        """
+        time = self._row_time(Z.shape[0])
+        m = Y.shape[1]
+        for _ in range(2):
+            y2 = segment_derivatives(
+                time, Z[:, :m], Y, lengths, result.labels, self._derivative_settings
+            )
+            new = self._refine(Z, y2, lengths, result.labels, result.n_regimes, progress)
+            new.targets = y2
+            unchanged = np.array_equal(new.labels, result.labels)
+            result = new
+            if unchanged:
+                break
+        return result
+
+    def _row_time(self, n: int) -> np.ndarray:
+        """Time stamps of the rows given to ``_fit_k`` (all rows, or the selection's part)."""
+        time = np.asarray(self._reg_time)
+        if n == time.size:
+            return time
+        held = holdout_split(self._reg_lengths)
+        if n == int((~held).sum()):
+            return time[~held]
+        raise FitError("internal: rows given to the regime fit do not match the data")
+
+    def _refine(self, Z, Y, lengths, labels, k, progress) -> RefineResult:
+        return refine(
+            Z,
+            Y,
+            lengths,
+            labels,
+            self._library_fitted,
+            n_regimes=k,
+            model=self.model,
+            threshold=self.threshold,
+            sticky=float(self.sticky),
+            location_weight=float(self.location_weight),
+            covariance=self.covariance,
+            min_samples=self._min_samples,
+            min_dwell=int(self.min_dwell),
+            max_iter=int(self.max_iter),
+            progress=progress,
+        )
 
     def _global_residuals(self, Z: np.ndarray, Y: np.ndarray) -> np.ndarray:
         """Residuals of a single model fitted to all rows (a dynamics-aware feature)."""
         stats = accumulate(self._library_fitted, Z, Y)
         fit = fit_regimes(
-            [stats], self._library_fitted.terms_, model=self.model, threshold=self.threshold
+            [stats],
+            self._library_fitted.terms_,
+            model=self.model,
+            threshold=self.threshold,
+            variables=self._library_fitted.variables_,
         )[0]
         return residuals(self._library_fitted, Z, Y, np.asarray(fit.coef))
 
@@ -266,6 +378,45 @@ class RegimeFinder(BaseEstimator):
         x, u = Z[:, :m], Z[:, m:]
         motion = Y - x if self.form == "discrete" else Y
         return np.hstack([x, motion, u])
+
+    # ----------------------------------------------------------------- predict
+    def predict(self, ds: Dataset) -> list[np.ndarray]:
+        """Regime of every sample of ``ds`` under the fitted regimes.
+
+        The regression rows of ``ds`` are built with the same form and derivative
+        settings as in :meth:`fit`; each run is decoded by Viterbi with the fitted
+        residual likelihoods and transition matrix (the optional location term is
+        not used: it belongs to the training labels).
+
+        Returns
+        -------
+        list of ndarray
+            One label array per run of ``ds``.
+        """
+        from sklearn.utils.validation import check_is_fitted
+
+        from modemap.local import prepare_regression
+
+        check_is_fitted(self, "local_fits_")
+        fitted = tuple(self.library_.variables_)
+        if tuple(ds.variable_names) != fitted:
+            raise FitError(
+                f"{ds.source}: variables {', '.join(ds.variable_names)} differ from the fitted "
+                f"ones ({', '.join(fitted)})"
+            )
+        reg = prepare_regression(ds, form=self.form, derivative=self.regression_.derivative)
+        k = self.n_regimes_
+        log_em = regime_log_likelihood(
+            self.library_,
+            np.asarray(reg.Z, dtype=np.float64),
+            np.asarray(reg.Y, dtype=np.float64),
+            [np.asarray(f.coef) for f in self.local_fits_],
+            self.covariances_,
+        )
+        with np.errstate(divide="ignore"):
+            log_trans = np.log(self.transmat_)
+        path, _ = viterbi_runs(log_em, np.asarray(reg.lengths), np.full(k, -np.log(k)), log_trans)
+        return _labels_per_sample(np.asarray(path), np.asarray(reg.sample_index), ds)
 
     @staticmethod
     def _single_row(result: RefineResult, m: int, n: int) -> pd.DataFrame:
@@ -289,6 +440,7 @@ class RegimeFinder(BaseEstimator):
         full = _labels_per_sample(labels, np.asarray(reg.sample_index), ds)
         trans = np.exp(result.log_trans)[np.ix_(order, order)]
         self.labels_ = full
+        self.regression_labels_ = labels
         self.n_regimes_ = k
         self.local_fits_ = [result.fits[i] for i in order]
         self.covariances_ = result.covariances[order]
@@ -296,6 +448,8 @@ class RegimeFinder(BaseEstimator):
         self.statistics_ = statistics(full, k, float(ds.step) if np.isfinite(ds.step) else 1.0)
         self.transmat_ = trans / trans.sum(axis=1, keepdims=True)
         self.library_ = library
+        if result.targets is not None and result.targets.shape == np.shape(reg.Y):
+            reg = dataclasses.replace(reg, Y=result.targets)
         self.regression_ = reg
         self.convergence_ = result.monitor
         self.notes_ = list(result.notes)
@@ -304,6 +458,14 @@ class RegimeFinder(BaseEstimator):
                 f"refinement stopped after {result.monitor.iterations} iterations "
                 f"with {result.monitor.changes[-1]} labels still changing"
             )
+
+
+def _uses(term: str, names: Sequence[str]) -> bool:
+    """True when the canonical term string mentions one of ``names``."""
+    import re
+
+    tokens = set(re.findall(r"[A-Za-z_][A-Za-z0-9_]*", term))
+    return any(n in tokens for n in names)
 
 
 def _labels_per_sample(labels: np.ndarray, sample_index: np.ndarray, ds: Dataset) -> list:

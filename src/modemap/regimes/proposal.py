@@ -10,14 +10,19 @@ Statistics 41(1), 1970, DOI 10.1214/aoms/1177697196) is fitted with
 * a sticky initial transition matrix (diagonal ``sticky``, the rest spread evenly),
 * a Dirichlet prior on each transition row that adds self-transition pseudo-counts equal to
   10 % of the expected samples per regime, so short flickers are discouraged,
+* at most 30 EM iterations, stopping when the log-likelihood gains less than 0.001 per fitted
+  sample (a proposal only needs to be roughly right),
 * ``n_restarts`` seeded restarts; the one with the highest log-likelihood is kept (a restart
   whose full covariances degenerate is redone with diagonal ones; if every fit fails, plain
   k-means clusters are returned).
 
 All runs are fitted together through hmmlearn's ``lengths``.  When there are more than
-``max_samples`` samples, the HMM is fitted on contiguous windows of 2,000 samples (or shorter
-when runs are shorter) drawn at random (seeded) without replacement up to ``max_samples`` in
-total, kept in data order; every sample is then decoded with our own Viterbi.
+``max_samples`` samples (default :data:`MAX_FIT_SAMPLES` = 20,000), the HMM is fitted on
+contiguous windows of 2,000 samples (or shorter when runs are shorter) drawn at random
+(seeded) without replacement up to ``max_samples`` in total, kept in data order; every sample
+is then decoded with our own Viterbi.  The proposal is only a starting point for the exact
+refinement on all samples (:mod:`.refine`), so its fit is kept bounded: its cost does not grow
+with the data beyond the decoding pass.
 """
 
 from __future__ import annotations
@@ -32,9 +37,12 @@ from threadpoolctl import threadpool_limits
 
 from modemap.regimes.viterbi import viterbi_runs
 
-__all__ = ["gaussian_log_density", "propose", "standardise"]
+__all__ = ["MAX_FIT_SAMPLES", "gaussian_log_density", "propose", "standardise"]
 
 _WINDOW = 2000
+MAX_FIT_SAMPLES = 20_000
+"""Samples the HMM is fitted on at most (10 windows of 2,000); every sample is decoded."""
+_TOL_PER_SAMPLE = 1e-3  # EM stops when the log-likelihood gains less than this per sample
 
 
 def standardise(features: np.ndarray) -> np.ndarray:
@@ -53,7 +61,7 @@ def propose(
     sticky: float = 0.99,
     n_restarts: int = 3,
     seed: int = 0,
-    max_samples: int = 200_000,
+    max_samples: int = MAX_FIT_SAMPLES,
     covariance: str = "full",
 ) -> np.ndarray:
     """Propose regime labels with a sticky Gaussian HMM.
@@ -114,7 +122,7 @@ def _fit_one(
         n_components=k,
         covariance_type=covariance,
         n_iter=30,
-        tol=1e-2,
+        tol=max(1e-2, _TOL_PER_SAMPLE * n),
         random_state=seed,
         init_params="mc",
         params="stmc",
@@ -157,16 +165,29 @@ def _subsample(
     return x[idx], sizes[keep]
 
 
-def gaussian_log_density(x: np.ndarray, means: np.ndarray, covars: np.ndarray) -> np.ndarray:
+def gaussian_log_density(
+    x: np.ndarray, means: np.ndarray, covars: np.ndarray, *, chunk_size: int = 65536
+) -> np.ndarray:
     """Log-density of each row of ``x`` under each Gaussian: (n, K).
 
     ``covars`` is (K, f, f) (hmmlearn's ``covars_`` property always returns full matrices).
+    With ``Sigma = L L'``, the Mahalanobis term is ``|(x - mu) L^-T|^2``: one small
+    triangular inverse per Gaussian, then a matrix product over row chunks (no (f, n)
+    temporaries and no general solve on the data).
     """
     n, f = x.shape
-    out = np.empty((n, means.shape[0]))
-    for k, (mu, cov) in enumerate(zip(means, covars, strict=True)):
+    k = means.shape[0]
+    out = np.empty((n, k))
+    whiten, consts = [], []
+    for cov in covars:
         chol = np.linalg.cholesky(cov + 1e-9 * np.eye(f))
-        z = np.linalg.solve(chol, (x - mu).T)
-        logdet = 2.0 * np.log(np.diag(chol)).sum()
-        out[:, k] = -0.5 * (np.einsum("ij,ij->j", z, z) + logdet + f * np.log(2 * np.pi))
+        whiten.append(np.linalg.inv(chol).T)
+        consts.append(-np.log(np.diag(chol)).sum() - 0.5 * f * np.log(2 * np.pi))
+    shifts = [mu @ w for mu, w in zip(means, whiten, strict=True)]
+    for start in range(0, n, chunk_size):
+        block = x[start : start + chunk_size]
+        for j in range(k):
+            z = block @ whiten[j]
+            z -= shifts[j]
+            out[start : start + block.shape[0], j] = consts[j] - 0.5 * np.einsum("ij,ij->i", z, z)
     return out

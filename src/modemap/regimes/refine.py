@@ -102,6 +102,9 @@ class RefineResult:
     stats : list of GramStats
     monitor : ConvergenceRecord
     notes : list of str
+    targets : ndarray or None
+        The targets the fits used when they were re-estimated after labelling
+        (continuous form, see :mod:`modemap.regimes.segments`); None otherwise.
     """
 
     labels: np.ndarray
@@ -116,16 +119,32 @@ class RefineResult:
     notes: list[str]
     covariance: str = "tied"
     location_weight: float = 0.0
+    targets: np.ndarray | None = None  # set when the targets differ from the input Y
 
 
 def fit_regimes(
-    stats: Sequence[GramStats], terms: Sequence[str], *, model: str = "sparse", threshold="auto"
+    stats: Sequence[GramStats],
+    terms: Sequence[str],
+    *,
+    model: str = "sparse",
+    threshold="auto",
+    variables: Sequence[str] | None = None,
 ) -> list[Any]:
-    """One local fit per regime from its statistics (``model``: "sparse" or "affine")."""
+    """One local fit per regime from its statistics (``model``: "sparse" or "affine").
+
+    With ``variables`` the sparse selection runs on centred variables
+    (:func:`modemap.centring.fit_sparse_centred`), the estimate on raw ones.
+    """
     if model == "affine":
         from modemap.affine import fit_affine
 
         return [fit_affine(s, list(terms)) for s in stats]
+    if variables is not None:
+        from modemap.centring import fit_sparse_centred
+
+        return [
+            fit_sparse_centred(s, list(terms), list(variables), threshold=threshold) for s in stats
+        ]
     from modemap.sparse import fit_sparse
 
     return [fit_sparse(s, list(terms), threshold=threshold) for s in stats]
@@ -195,16 +214,34 @@ def _fill_log_likelihood(
 
 def _location_log_likelihood(x: np.ndarray, labels: np.ndarray, k: int) -> np.ndarray:
     """Gaussian log-density of the states under each regime's mean and covariance."""
-    n, d = x.shape
-    out = np.zeros((n, k))
+    return location_density(x, *location_parameters(x, labels, k))
+
+
+def location_parameters(x: np.ndarray, labels: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and Cholesky factor of the states' covariance per regime: (K, d), (K, d, d).
+
+    A regime with fewer than two samples gets NaN factors (its density is then left at 0).
+    """
+    d = x.shape[1]
+    means, chols = np.zeros((k, d)), np.full((k, d, d), np.nan)
     total_var = np.var(x, axis=0) + 1e-12
     for j in range(k):
         sel = x[labels == j]
         if sel.shape[0] < 2:
             continue
         cov = np.atleast_2d(np.cov(sel, rowvar=False)) + np.diag(1e-6 * total_var)
-        chol = np.linalg.cholesky(cov)
-        w = np.linalg.solve(chol, (x - sel.mean(axis=0)).T)
+        means[j], chols[j] = sel.mean(axis=0), np.linalg.cholesky(cov)
+    return means, chols
+
+
+def location_density(x: np.ndarray, means: np.ndarray, chols: np.ndarray) -> np.ndarray:
+    """Gaussian log-density of the rows of ``x`` under each (mean, Cholesky factor): (n, K)."""
+    n, d = x.shape
+    out = np.zeros((n, means.shape[0]))
+    for j, (mu, chol) in enumerate(zip(means, chols, strict=True)):
+        if not np.all(np.isfinite(chol)):
+            continue
+        w = np.linalg.solve(chol, (x - mu).T)
         logdet = 2.0 * np.log(np.diag(chol)).sum()
         out[:, j] = -0.5 * (np.einsum("ij,ij->j", w, w) + logdet + d * np.log(2 * np.pi))
     return out
@@ -316,6 +353,8 @@ def refine(
     max_iter: int = 30,
     cov_floor: float = 1e-6,
     progress: ProgressCallback | None = None,
+    engine: Any = None,
+    runs: Sequence[Any] | None = None,
 ) -> RefineResult:
     """Alternate per-regime fits and Viterbi relabelling (hard-EM switching regression).
 
@@ -352,6 +391,13 @@ def refine(
         Floor added to residual variances, relative to each target's variance.
     progress : callable, optional
         ``progress(fraction, message)``, called once per iteration.
+    engine : Engine, optional
+        Run the statistics and the decoding as a map over runs on this engine
+        (:mod:`modemap.engine`, e.g. Dask workers), reduced here in run order.  ``None``
+        (default) works on all rows at once in this process, the fastest path on one machine.
+    runs : sequence, optional
+        The runs as already placed by ``engine.scatter(split_runs(Z, Y, lengths))``, to reuse
+        one scatter across calls; by default they are scattered here.
 
     Returns
     -------
@@ -381,11 +427,12 @@ def refine(
     dense = model == "sparse" and threshold != 0
     phase_opts = replace(opts, threshold=0.0) if dense else opts
     state = None
+    work = _Work(Z, Y, lengths, library, notes, engine, runs)
     for it in range(max(1, max_iter)):
         state = None  # release the previous scores before computing new ones (memory)
-        state = _score_labels(Z, Y, lengths, labels, k, library, phase_opts, notes)
+        state = work.score(labels, k, phase_opts)
         labels, k = state.labels, state.k
-        new, log_prob = viterbi_runs(state.log_em, lengths, state.log_start, state.log_trans)
+        new, log_prob = work.decode(state)
         new = enforce_min_dwell(new, lengths, min_dwell)
         changed = int(np.count_nonzero(new != labels))
         monitor.history.append(float(log_prob))
@@ -402,14 +449,14 @@ def refine(
     if not monitor.converged:
         # final fits consistent with the final labels
         state = None
-        state = _score_labels(Z, Y, lengths, labels, k, library, opts, notes)
+        state = work.score(labels, k, opts)
         labels, k = state.labels, state.k
         if np.any(labels < 0):
-            labels, _ = viterbi_runs(state.log_em, lengths, state.log_start, state.log_trans)
+            labels, _ = work.decode(state)
     if monitor.converged and min_dwell <= 1:
         loglik = monitor.history[-1]  # the labels are the Viterbi path of this very state
     else:
-        loglik = path_log_prob(state.log_em, labels, lengths, state.log_start, state.log_trans)
+        loglik = work.log_prob(state, labels)
     return RefineResult(
         labels=labels,
         n_regimes=k,
@@ -445,9 +492,106 @@ class _State:
     stats: list[GramStats]
     fits: list[Any]
     covs: np.ndarray
-    log_em: np.ndarray
+    log_em: np.ndarray | None
     log_start: np.ndarray
     log_trans: np.ndarray
+    decoded: tuple[np.ndarray, float, float] | None = None  # engine path: path, best, current
+    location: Any = None  # engine path: (weight, means, Cholesky factors) or None
+
+
+class _Work:
+    """Scoring and relabelling on all rows here, or as a map over runs on an engine."""
+
+    def __init__(self, Z, Y, lengths, library, notes, engine, runs) -> None:
+        self.Z, self.Y, self.lengths, self.library, self.notes = Z, Y, lengths, library, notes
+        self.engine = engine
+        if engine is not None and runs is None:
+            from modemap.engine import split_runs
+
+            runs = engine.scatter(split_runs(Z, Y, lengths))
+        self.runs = runs
+
+    def score(self, labels: np.ndarray, k: int, opts: _Options) -> _State:
+        if self.engine is None:
+            return _score_labels(
+                self.Z, self.Y, self.lengths, labels, k, self.library, opts, self.notes
+            )
+        return _score_labels_engine(self, labels, k, opts)
+
+    def decode(self, state: _State) -> tuple[np.ndarray, float]:
+        if state.decoded is not None:
+            return state.decoded[0], state.decoded[1]
+        return viterbi_runs(state.log_em, self.lengths, state.log_start, state.log_trans)
+
+    def log_prob(self, state: _State, labels: np.ndarray) -> float:
+        """Joint log-probability of ``labels`` under the fits and chain of ``state``."""
+        if state.decoded is None:
+            return path_log_prob(
+                state.log_em, labels, self.lengths, state.log_start, state.log_trans
+            )
+        path, best, current = state.decoded
+        if np.array_equal(labels, path):
+            return best
+        if not np.array_equal(labels, state.labels) or not np.isfinite(current):
+            # labels changed after decoding (min_dwell): score them on the engine
+            return _score_labels_engine(self, labels, state.k, None, state).decoded[2]
+        return current
+
+    def per_run(self, values: np.ndarray) -> list[np.ndarray]:
+        return np.split(values, np.cumsum(self.lengths)[:-1])
+
+
+def _score_labels_engine(
+    work: _Work, labels: np.ndarray, k: int, opts: _Options | None, fitted: _State | None = None
+) -> _State:
+    """Steps (a), (b) and (c) as maps over runs: statistics, then scoring and Viterbi.
+
+    With ``fitted``, its fits and chain are reused and only ``labels`` are scored.
+    """
+    from modemap.engine import decode_runs, stats_by_label
+
+    if fitted is None:
+        labels, k, dropped = drop_small(labels, k, opts.min_samples)
+        work.notes += dropped
+        if k == 0:
+            raise FitError(f"no regime has at least {opts.min_samples} samples; use fewer regimes")
+        stats = stats_by_label(work.engine, work.runs, work.per_run(labels), work.library, k)
+        terms = list(work.library.terms_)
+        fits = fit_regimes(
+            stats,
+            terms,
+            model=opts.model,
+            threshold=opts.threshold,
+            variables=work.library.variables_,
+        )
+        covs = _covariances(stats, fits, opts.floor, opts.covariance)
+        log_start, log_trans = transition_model(labels, work.lengths, k, opts.sticky, opts.learn)
+        location = _engine_location(work, labels, k, opts.location_weight)
+    else:
+        stats, fits, covs = fitted.stats, fitted.fits, fitted.covs
+        log_start, log_trans, location = fitted.log_start, fitted.log_trans, fitted.location
+    paths, best, current = decode_runs(
+        work.engine,
+        work.runs,
+        work.library,
+        [f.coef for f in fits],
+        covs,
+        log_start,
+        log_trans,
+        current=work.per_run(labels),
+        location=location,
+    )
+    state = _State(labels, k, stats, fits, covs, None, log_start, log_trans)
+    state.decoded = (np.concatenate(paths), best, current)
+    state.location = location
+    return state
+
+
+def _engine_location(work: _Work, labels: np.ndarray, k: int, weight: float) -> Any:
+    if not weight:
+        return None
+    means, chols = location_parameters(work.Z[:, : work.Y.shape[1]], labels, k)
+    return (float(weight), means, chols)
 
 
 def _score_labels(
@@ -466,7 +610,13 @@ def _score_labels(
     if k == 0:
         raise FitError(f"no regime has at least {opts.min_samples} samples; use fewer regimes")
     stats = accumulate_by_label(library, Z, Y, labels, k)
-    fits = fit_regimes(stats, list(library.terms_), model=opts.model, threshold=opts.threshold)
+    fits = fit_regimes(
+        stats,
+        list(library.terms_),
+        model=opts.model,
+        threshold=opts.threshold,
+        variables=library.variables_,
+    )
     covs = _covariances(stats, fits, opts.floor, opts.covariance)
     log_em = regime_log_likelihood(library, Z, Y, [f.coef for f in fits], covs)
     if opts.location_weight:
