@@ -213,9 +213,380 @@ def _table(header: list[str], rows: list[list[str]]) -> list[str]:
     return [fmt(header)] + [fmt(r) for r in rows]
 
 
+# --------------------------------------------------------------------------- fit
+
+
+def _add_fit(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "fit",
+        help="identify a hybrid model; write model.json, labels.csv and report.md",
+        description="Find the regimes, their equations and equilibria and the switching guards; "
+        "validate by re-simulating held-out runs; write DIR/model.json, DIR/labels.csv and "
+        "DIR/report.md (atomically: a failed fit leaves earlier results untouched).",
+    )
+    add_data_options(parser)
+    add_fit_options(parser)
+    parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    parser.add_argument("--view", action="store_true", help="open the dashboard on the result")
+    parser.add_argument("--quiet", action="store_true", help="no progress display")
+    _add_debug(parser)
+    parser.set_defaults(handler=_run_fit)
+
+
+def add_fit_options(parser: argparse.ArgumentParser) -> None:
+    """Options of the identification itself (shared by ``fit`` and the dashboard)."""
+    group = parser.add_argument_group("identification")
+    group.add_argument(
+        "--regimes",
+        default="auto",
+        metavar="auto|K",
+        help="number of regimes, or 'auto' to choose it by BIC (default: auto)",
+    )
+    group.add_argument(
+        "--max-regimes",
+        type=int,
+        default=6,
+        metavar="K",
+        help="largest number of regimes 'auto' tries (default: 6)",
+    )
+    group.add_argument(
+        "--form",
+        choices=("continuous", "discrete"),
+        default="continuous",
+        help="fit d(state)/dt (continuous) or state[k+1] (discrete) (default: continuous)",
+    )
+    group.add_argument(
+        "--model",
+        choices=("sparse", "affine"),
+        default="sparse",
+        help="sparse regression on candidate terms, or an affine operator (default: sparse)",
+    )
+    group.add_argument(
+        "--degree",
+        type=int,
+        default=2,
+        metavar="D",
+        help="polynomial degree of the candidate terms (default: 2)",
+    )
+    group.add_argument(
+        "--threshold",
+        default="auto",
+        metavar="auto|X",
+        help="sparsity threshold on normalised coefficients (default: auto, by BIC)",
+    )
+    group.add_argument(
+        "--derivative",
+        default="auto",
+        choices=("auto", "central", "savgol", "spline", "tv"),
+        help="derivative estimator in continuous form (default: auto)",
+    )
+    group.add_argument(
+        "--guards",
+        default="auto",
+        choices=("auto", "per-source", "memoryless"),
+        help="switching-surface family (default: auto, chosen on held-out switch times)",
+    )
+    group.add_argument(
+        "--holdout",
+        type=float,
+        default=0.25,
+        metavar="F",
+        help="share of runs (or of the run's tail) kept out for validation (default: 0.25)",
+    )
+    group.add_argument(
+        "--min-dwell",
+        type=int,
+        default=1,
+        metavar="N",
+        help="shortest stay in a regime, in samples (default: 1)",
+    )
+    group.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
+    group.add_argument(
+        "--engine",
+        choices=("local", "dask"),
+        default="local",
+        help="where per-run work runs: in this process, or on a Dask cluster (default: local)",
+    )
+    group.add_argument(
+        "--scheduler", metavar="ADDRESS",
+        help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (default: a local cluster)",
+    )  # fmt: skip
+
+
+def _regimes(text: str) -> str | int:
+    if text == "auto":
+        return "auto"
+    try:
+        k = int(text)
+    except ValueError:
+        k = 0
+    if k < 1:
+        raise ModemapError(f"--regimes: expected 'auto' or a positive whole number, got '{text}'")
+    return k
+
+
+def _threshold(text: str) -> str | float:
+    if text == "auto":
+        return "auto"
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not value >= 0:
+        raise ModemapError(f"--threshold: expected 'auto' or a number >= 0, got '{text}'")
+    return value
+
+
+def identifier_from_args(args: argparse.Namespace):
+    """A :class:`modemap.identify.HybridIdentifier` configured from the command line."""
+    from modemap.identify import HybridIdentifier
+
+    if args.degree < 0:
+        raise ModemapError(f"--degree: expected a whole number >= 0, got {args.degree}")
+    if not 0 <= args.holdout < 1:
+        raise ModemapError(f"--holdout: expected a share in [0, 1), got {args.holdout}")
+    return HybridIdentifier(
+        n_regimes=_regimes(args.regimes),
+        max_regimes=args.max_regimes,
+        form=args.form,
+        model=args.model,
+        degree=args.degree,
+        threshold=_threshold(args.threshold),
+        derivative=args.derivative,
+        guard_kind=args.guards,
+        holdout=args.holdout,
+        min_dwell=args.min_dwell,
+        seed=args.seed,
+        engine=args.engine,
+        scheduler=args.scheduler,
+    )
+
+
+def _run_fit(args: argparse.Namespace) -> int:
+    from modemap.output import write_fit_outputs
+
+    ident = identifier_from_args(args)
+    ds = load_dataset(args)
+    show = sys.stderr.isatty() and not args.quiet
+    with _ProgressLine(enabled=show) as progress:
+        ident.fit(ds, progress=progress)
+    ident.model_.metadata["data"] = _data_record(args)
+    paths = write_fit_outputs(args.out, ident.model_, ident.labels_, dataset=ds)
+    model = ident.model_
+    print(
+        f"{model.n_regimes} regime(s), {len(model.guards)} guard(s); wrote "
+        + ", ".join(str(p) for p in paths)
+    )
+    if args.view:
+        from modemap.tui import run_view
+
+        run_view(args.out)
+    return 0
+
+
+def _data_record(args: argparse.Namespace) -> dict:
+    """How the data were read, so the dashboard can reopen them."""
+    return {
+        "files": [os.path.abspath(p) for p in args.data],
+        "time": args.time,
+        "states": args.states,
+        "inputs": list(args.inputs),
+        "run": args.run,
+        "resample": args.resample,
+        "max_gap": args.max_gap,
+        "min_samples": args.min_samples,
+    }
+
+
+class _ProgressLine:
+    """A one-line progress display on stderr (only when it is a terminal)."""
+
+    def __init__(self, enabled: bool) -> None:
+        self.enabled = enabled
+        self._last = ""
+
+    def __enter__(self) -> Callable[[float, str], None]:
+        return self
+
+    def __call__(self, fraction: float, message: str) -> None:
+        if not self.enabled:
+            return
+        width = 24
+        filled = round(width * min(max(fraction, 0.0), 1.0))
+        line = f"\r[{'#' * filled}{'.' * (width - filled)}] {100 * fraction:5.1f}%  {message[:60]}"
+        sys.stderr.write(line.ljust(len(self._last)))
+        sys.stderr.flush()
+        self._last = line
+
+    def __exit__(self, *exc: object) -> None:
+        if self.enabled and self._last:
+            sys.stderr.write("\r" + " " * len(self._last) + "\r")
+            sys.stderr.flush()
+
+
+# --------------------------------------------------------------------------- simulate
+
+
+def _add_simulate(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "simulate",
+        help="re-run a saved model from a given state with inputs from a file; write a CSV",
+        description="Simulate a saved hybrid model over the time grid of DATA, with the model's "
+        "inputs read from DATA. The initial state comes from DATA's first row (when it has the "
+        "state columns) or from --initial.",
+    )
+    parser.add_argument("model", metavar="MODEL", help="model.json written by 'modemap fit'")
+    parser.add_argument("data", metavar="DATA", help="CSV or Parquet file with time and inputs")
+    parser.add_argument("--time", metavar="NAME", help="time column (default: 'time' or 't')")
+    parser.add_argument("--run", metavar="NAME", help="run column: simulate each run")
+    parser.add_argument(
+        "--initial", metavar="A=1,B=2", help="initial state (default: DATA's first row)"
+    )
+    parser.add_argument(
+        "--regime", type=int, metavar="ID", help="initial regime (default: classify)"
+    )
+    parser.add_argument("--out", required=True, metavar="FILE", help="output CSV")
+    _add_debug(parser)
+    parser.set_defaults(handler=_run_simulate)
+
+
+def _parse_initial(text: str, states: list[str]) -> dict[str, float]:
+    values: dict[str, float] = {}
+    for part in text.split(","):
+        name, sep, value = part.partition("=")
+        name = name.strip()
+        if not sep or name not in states:
+            raise ModemapError(
+                f"--initial: expected NAME=VALUE pairs for the states {', '.join(states)}, "
+                f"got '{part}'"
+            )
+        try:
+            values[name] = float(value)
+        except ValueError:
+            raise ModemapError(f"--initial: '{value}' is not a number (state '{name}')") from None
+    missing = [s for s in states if s not in values]
+    if missing:
+        raise ModemapError(f"--initial: no value for state(s) {', '.join(missing)}")
+    return values
+
+
+def _run_simulate(args: argparse.Namespace) -> int:
+    import numpy as np
+    import pandas as pd
+
+    from modemap._atomic import atomic_write
+    from modemap.modelfile import load_model
+    from modemap.simulate import simulate
+
+    model = load_model(args.model)
+    columns = [h for h, _ in peek_columns(args.data)]
+    bare = {parse_header(h)[0] for h in columns}
+    has_states = all(s in bare for s in model.states)
+    if args.initial is None and not has_states:
+        raise ModemapError(
+            f"{args.data}: no columns for the states {', '.join(model.states)}; "
+            "give the initial state with --initial"
+        )
+    time = args.time or _guess_time(peek_columns(args.data), str(args.data))
+    ds = _read_grid(args.data, time, model, has_states, args.run)
+    initial = _parse_initial(args.initial, model.states) if args.initial else None
+    frames = []
+    for r in ds.runs:
+        x0 = np.array([initial[s] for s in model.states]) if initial is not None else r.states[0]
+        result = simulate(model, r.time, x0, r.inputs if model.inputs else None, args.regime)
+        if result.status != 0:
+            print(f"modemap: run '{r.name}': {result.message}", file=sys.stderr)
+        frame = {"run": r.origin, model.time_name: result.time}
+        frame.update({s: result.states[:, j] for j, s in enumerate(model.states)})
+        frame["regime"] = result.regimes
+        frames.append(pd.DataFrame(frame))
+    table = pd.concat(frames, ignore_index=True)
+    with atomic_write(args.out) as fh:
+        table.to_csv(fh, index=False, float_format="%.10g")
+    print(f"simulated {len(ds.runs)} run(s), {len(table)} samples; wrote {args.out}")
+    return 0
+
+
+def _read_grid(path: str, time: str, model, has_states: bool, run: str | None) -> Dataset:
+    """Time grid, inputs (and states when present) of the file to simulate over."""
+    if has_states:
+        return read_data(
+            path, time=time, states=list(model.states), inputs=list(model.inputs), run=run
+        )
+    # Only a time grid and inputs: validate them through intake with a placeholder state.
+    import pandas as pd
+
+    suffix = os.path.splitext(path)[1].lower()
+    frame = pd.read_parquet(path) if suffix in (".parquet", ".pq") else pd.read_csv(path)
+    frame["__initial__"] = 0.0
+    try:
+        return read_data(
+            frame, time=time, states=["__initial__"], inputs=list(model.inputs), run=run
+        )
+    except DataError as exc:
+        raise DataError(exc.message, source=path, column=exc.column) from None
+
+
+# --------------------------------------------------------------------------- view
+
+
+def _add_view(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "view",
+        help="open the terminal dashboard on a fit result folder or on a data file",
+        description="Open the dashboard on DIR (written by 'modemap fit'), or on data files "
+        "(with the column options) to fit from inside the dashboard.",
+    )
+    parser.add_argument("target", nargs="+", metavar="DIR|DATA")
+    group = parser.add_argument_group("columns (when opening data)")
+    group.add_argument("--time", metavar="NAME")
+    group.add_argument("--states", type=_names, metavar="A,B")
+    group.add_argument("--inputs", type=_names, default=[], metavar="U,V")
+    group.add_argument("--run", metavar="NAME")
+    group.add_argument("--resample", action="store_true")
+    group.add_argument("--max-gap", type=_positive_gap, default=5.0, metavar="N")
+    group.add_argument("--min-samples", type=int, default=8, metavar="N")
+    _add_debug(parser)
+    parser.set_defaults(handler=_run_view)
+
+
+def _run_view(args: argparse.Namespace) -> int:
+    from modemap.tui import run_view, run_view_data
+
+    target = args.target
+    if len(target) == 1 and os.path.isdir(target[0]):
+        run_view(target[0])
+        return 0
+    args.data = target
+    run_view_data(load_dataset(args))
+    return 0
+
+
+# --------------------------------------------------------------------------- bench
+
+
+def _add_bench(subparsers: argparse._SubParsersAction) -> None:
+    from modemap import bench
+
+    parser = subparsers.add_parser(
+        "bench",
+        help="measure time and memory of each stage on invented data of growing size",
+        description="Benchmark: per-stage wall time and peak memory against a floor measured in "
+        "the same run (read, term matrix, one normal-equation pass).",
+    )
+    bench.add_arguments(parser)
+    _add_debug(parser)
+    parser.set_defaults(handler=bench.run)
+
+
 # --------------------------------------------------------------------------- main
 
-_COMMANDS: tuple[Callable[[argparse._SubParsersAction], None], ...] = (_add_check,)
+_COMMANDS: tuple[Callable[[argparse._SubParsersAction], None], ...] = (
+    _add_check,
+    _add_fit,
+    _add_simulate,
+    _add_view,
+)
 
 
 def _add_debug(parser: argparse.ArgumentParser) -> None:

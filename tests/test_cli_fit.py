@@ -1,0 +1,109 @@
+"""`modemap fit` and `modemap simulate` from the command line (the published contract)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from conftest import relay_frame
+
+from modemap.cli import main
+
+COLUMNS = ["--time", "t", "--states", "x", "--run", "run"]
+
+
+@pytest.fixture(scope="module")
+def fitted(tmp_path_factory) -> tuple[Path, Path]:
+    root = tmp_path_factory.mktemp("fit")
+    data = root / "relay.csv"
+    relay_frame().to_csv(data, index=False)
+    out = root / "result"
+    assert main(["fit", str(data), *COLUMNS, "--seed", "1", "--out", str(out)]) == 0
+    return data, out
+
+
+def test_fit_writes_the_three_files(fitted) -> None:
+    _, out = fitted
+    assert sorted(p.name for p in out.iterdir()) == ["labels.csv", "model.json", "report.md"]
+
+
+def test_labels_csv_contract(fitted) -> None:
+    data, out = fitted
+    source = pd.read_csv(data)
+    labels = pd.read_csv(out / "labels.csv")
+    assert list(labels.columns) == ["run", "time", "regime"]
+    assert len(labels) == len(source)
+    assert labels["time"].tolist() == pytest.approx(source["t [s]"].tolist())
+    assert labels["regime"].dtype.kind == "i" and labels["regime"].min() >= -1
+
+
+def test_model_json_contract(fitted) -> None:
+    _, out = fitted
+    model = json.loads((out / "model.json").read_text())
+    assert model["format"] == "modemap-model" and model["version"] == 1
+    assert model["states"] == ["x"] and model["inputs"] == [] and model["form"] == "continuous"
+    assert len(model["regimes"]) == 2
+    for regime in model["regimes"]:
+        assert {"id", "samples", "terms", "coefficients", "equilibria"} <= set(regime)
+        assert len(regime["coefficients"]["x"]) == len(regime["terms"])
+        for eq in regime["equilibria"]:
+            assert set(eq) >= {"point", "eigenvalues", "stability", "inside"}
+            assert all(len(pair) == 2 for pair in eq["eigenvalues"])
+    for guard in model["guards"]:
+        assert {"from", "to", "terms", "weights", "offset"} <= set(guard)
+        assert len(guard["weights"]) == len(guard["terms"])
+
+
+def test_report_is_readable(fitted) -> None:
+    _, out = fitted
+    report = (out / "report.md").read_text()
+    assert "not a safety analysis" in report
+    assert "x < 2.0" in report and "x > 8.0" in report
+
+
+def test_simulate_rereads_the_model(fitted, tmp_path, capsys) -> None:
+    data, out = fitted
+    sim = tmp_path / "sim.csv"
+    code = main(
+        ["simulate", str(out / "model.json"), str(data), "--time", "t", "--run", "run",
+         "--out", str(sim)]
+    )  # fmt: skip
+    assert code == 0
+    table = pd.read_csv(sim)
+    assert list(table.columns) == ["run", "t", "x", "regime"]
+    source = pd.read_csv(data)
+    assert len(table) == len(source)
+    # the relay stays between its two thresholds (2 and 8) when re-simulated
+    assert table["x"].between(1.9, 8.1).all()
+
+
+def test_simulate_with_initial_state(fitted, tmp_path) -> None:
+    data, out = fitted
+    grid = pd.DataFrame({"t": [0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5]})
+    grid.to_csv(tmp_path / "grid.csv", index=False)
+    sim = tmp_path / "sim.csv"
+    args = ["simulate", str(out / "model.json"), str(tmp_path / "grid.csv"), "--out", str(sim)]
+    assert main([*args, "--initial", "x=5", "--regime", "1"]) in (0,)
+    assert pd.read_csv(sim)["x"].iloc[0] == pytest.approx(5.0)
+    assert main([*args, "--initial", "y=5"]) == 2
+
+
+def test_failed_fit_leaves_earlier_results(fitted, tmp_path, capsys) -> None:
+    data, out = fitted
+    before = {p.name: p.read_bytes() for p in out.iterdir()}
+    code = main(["fit", str(data), "--time", "t", "--states", "nope", "--out", str(out)])
+    err = capsys.readouterr().err
+    assert code == 2
+    assert err.startswith("modemap: error:") and err.count("\n") == 1 and "Traceback" not in err
+    assert "nope" in err
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+
+
+def test_failed_fit_writes_no_model(fitted, tmp_path, capsys) -> None:
+    data, _ = fitted
+    out = tmp_path / "new"
+    assert main(["fit", str(data), *COLUMNS, "--regimes", "many", "--out", str(out)]) == 2
+    assert "--regimes" in capsys.readouterr().err
+    assert not (out / "model.json").exists()
