@@ -61,7 +61,7 @@ def relay_frame(n_runs: int = 3, duration: float = 20.0, step: float = 0.01, noi
         for k, tk in enumerate(t):
             target = 10.0 if on else 0.0
             xk = target + (x0 - target) * np.exp(-(tk - t0))
-            if on and xk >= 8.0 or (not on) and xk <= 2.0:
+            if (on and xk >= 8.0) or ((not on) and xk <= 2.0):
                 t_hit = t0 + np.log((x0 - target) / ((8.0 if on else 2.0) - target))
                 x0, on, t0 = (8.0 if on else 2.0), not on, t_hit
                 target = 10.0 if on else 0.0

@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
-from conftest import relay_frame
 
+from conftest import relay_frame
 from modemap.cli import main
 
 COLUMNS = ["--time", "t", "--states", "x", "--run", "run"]
@@ -80,7 +80,7 @@ def test_simulate_rereads_the_model(fitted, tmp_path, capsys) -> None:
 
 
 def test_simulate_with_initial_state(fitted, tmp_path) -> None:
-    data, out = fitted
+    _, out = fitted
     grid = pd.DataFrame({"t": [0.0, 0.5, 1.0, 1.5, 2.0, 2.5, 3.0, 3.5]})
     grid.to_csv(tmp_path / "grid.csv", index=False)
     sim = tmp_path / "sim.csv"

@@ -4,10 +4,10 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from conftest import relay_frame
 from sklearn.base import clone
 
 import modemap
+from conftest import relay_frame
 from modemap.identify import HybridIdentifier, labels_frame
 
 
@@ -19,7 +19,7 @@ def relay():
 
 
 def test_relay_oscillator_is_recovered(relay) -> None:
-    frame, ds, ident = relay
+    frame, _, ident = relay
     model = ident.model_
     assert model.n_regimes == 2 and model.guard_kind == "per-source"
     # The two first-order responses dx/dt = -x and dx/dt = 10 - x (textbook first-order
@@ -43,7 +43,7 @@ def test_relay_oscillator_is_recovered(relay) -> None:
 
 
 def test_validation_describes_the_saved_model(relay) -> None:
-    _, ds, ident = relay
+    _, _, ident = relay
     val = ident.model_.validation
     assert val["holdout"] == "runs" and len(val["runs"]) == 1
     run = val["runs"][0]
