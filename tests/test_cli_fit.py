@@ -8,8 +8,8 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from conftest import relay_frame
 from modemap.cli import main
+from relay_data import relay_frame
 
 COLUMNS = ["--time", "t", "--states", "x", "--run", "run"]
 

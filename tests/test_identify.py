@@ -7,8 +7,8 @@ import pytest
 from sklearn.base import clone
 
 import modemap
-from conftest import relay_frame
 from modemap.identify import HybridIdentifier, labels_frame
+from relay_data import relay_frame
 
 
 @pytest.fixture(scope="module")

@@ -546,6 +546,9 @@ def _add_view(subparsers: argparse._SubParsersAction) -> None:
     group.add_argument("--resample", action="store_true")
     group.add_argument("--max-gap", type=_positive_gap, default=5.0, metavar="N")
     group.add_argument("--min-samples", type=int, default=8, metavar="N")
+    parser.add_argument(
+        "--out", metavar="DIR", help="where a model fitted from inside is saved (with data)"
+    )
     _add_debug(parser)
     parser.set_defaults(handler=_run_view)
 
@@ -558,7 +561,7 @@ def _run_view(args: argparse.Namespace) -> int:
         run_view(target[0])
         return 0
     args.data = target
-    run_view_data(load_dataset(args))
+    run_view_data(load_dataset(args), out=args.out)
     return 0
 
 

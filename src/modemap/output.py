@@ -24,6 +24,12 @@ __all__ = ["RESULT_FILES", "write_fit_outputs"]
 RESULT_FILES = ("model.json", "labels.csv", "report.md")
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def write_fit_outputs(
     directory: str | os.PathLike[str],
     model: HybridModel,
@@ -72,6 +78,7 @@ def write_fit_outputs(
                 fh.write(text)
                 fh.flush()
                 os.fsync(fh.fileno())
+            os.chmod(tmp, 0o666 & ~_umask())
         for name, tmp in temps.items():
             os.replace(tmp, out / name)
     finally:

@@ -360,17 +360,21 @@ def load_view_inputs(
     return model, dataset, labels, notes
 
 
-def _directory_saver(directory: Path) -> Callable[[HybridModel, pd.DataFrame | None], str]:
-    def save(model: HybridModel, labels: pd.DataFrame | None) -> str:
-        from modemap._atomic import write_text_atomic
-        from modemap.modelfile import save_model
+def _directory_saver(
+    directory: Path, dataset: Dataset | None = None
+) -> Callable[[HybridModel, pd.DataFrame | None], str]:
+    """Save as ``modemap fit`` does: model.json, labels.csv and report.md, atomically."""
 
-        save_model(model, directory / "model.json")
-        written = [str(directory / "model.json")]
-        if labels is not None:
-            write_text_atomic(directory / "labels.csv", labels.to_csv(index=False))
-            written.append(str(directory / "labels.csv"))
-        return " and ".join(written)
+    def save(model: HybridModel, labels: pd.DataFrame | None) -> str:
+        if labels is None:
+            from modemap.modelfile import save_model
+
+            save_model(model, directory / "model.json")
+            return str(directory / "model.json")
+        from modemap.output import write_fit_outputs
+
+        paths = write_fit_outputs(directory, model, labels, dataset=dataset)
+        return ", ".join(str(p) for p in paths)
 
     return save
 
@@ -382,12 +386,13 @@ def run_view(
 ) -> int:
     """``modemap view DIR``: show the model saved in ``DIR`` with its labels and data.
 
-    ``save`` defaults to writing ``DIR/model.json`` and ``DIR/labels.csv``
-    atomically.  Returns the exit code (0).
+    ``save`` defaults to writing ``DIR/model.json``, ``DIR/labels.csv`` and
+    ``DIR/report.md`` with the writer ``modemap fit`` uses.  Returns the exit code (0).
     """
     folder = Path(directory)
     model, dataset, labels, notes = load_view_inputs(folder)
-    DashboardApp(model, dataset, labels, save=save or _directory_saver(folder), notes=notes).run()
+    saver = save or _directory_saver(folder, dataset)
+    DashboardApp(model, dataset, labels, save=saver, notes=notes).run()
     return 0
 
 
@@ -405,7 +410,7 @@ def run_view_data(
 
     ``source`` is a :class:`Dataset` already read, or file name(s) read here with
     ``time``, ``states``, ``inputs`` and ``run``.  A model kept after fitting is
-    saved to ``out`` (``model.json`` and ``labels.csv``) when ``out`` or ``save``
+    saved to ``out`` (``model.json``, ``labels.csv``, ``report.md``) when ``out`` or ``save``
     is given.  Returns the exit code (0).
     """
     if isinstance(source, Dataset):
@@ -418,6 +423,6 @@ def run_view_data(
 
             raise DataError("--time and --states are needed to open data", source=str(source))
         dataset = read_data(source, time=time, states=list(states), inputs=list(inputs), run=run)
-    saver = save or (_directory_saver(Path(out)) if out is not None else None)
+    saver = save or (_directory_saver(Path(out), dataset) if out is not None else None)
     DashboardApp(None, dataset, None, save=saver).run()
     return 0
