@@ -21,7 +21,7 @@ import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator
 
-from modemap import __version__
+from modemap._version import __version__
 from modemap._exceptions import FitError
 from modemap._progress import ProgressCallback, null_progress, scaled
 from modemap.dataset import Dataset
