@@ -13,16 +13,40 @@ from modemap._exceptions import (
 )
 from modemap._version import __version__
 from modemap.dataset import Dataset, Gap, Run
-from modemap.guards import SwitchingSurfaces
 from modemap.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
-from modemap.identify import HybridIdentifier
 from modemap.intake import read_data, summarize
-from modemap.local import LocalDynamics
-from modemap.modelfile import load_model, save_model
-from modemap.regimes import RegimeFinder
-from modemap.simulate import SimulationResult, simulate
-from modemap.terms import TermLibrary
-from modemap.validation import split_holdout, validate
+
+# The estimators pull in scikit-learn, SciPy and hmmlearn: load them on first use so that
+# `modemap check` and `import modemap` stay quick (PEP 562 module __getattr__).
+_LAZY = {
+    "HybridIdentifier": "modemap.identify",
+    "LocalDynamics": "modemap.local",
+    "RegimeFinder": "modemap.regimes",
+    "SimulationResult": "modemap.simulate",
+    "SwitchingSurfaces": "modemap.guards",
+    "TermLibrary": "modemap.terms",
+    "load_model": "modemap.modelfile",
+    "save_model": "modemap.modelfile",
+    "simulate": "modemap.simulate",
+    "split_holdout": "modemap.validation",
+    "validate": "modemap.validation",
+}
+
+
+def __getattr__(name: str):
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'modemap' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))
+
 
 __all__ = [
     "DataError",
