@@ -21,14 +21,16 @@ import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator
 
-from modemap._version import __version__
 from modemap._exceptions import FitError
 from modemap._progress import ProgressCallback, null_progress, scaled
+from modemap._version import __version__
 from modemap.dataset import Dataset
 from modemap.equilibria import find_equilibria
 from modemap.guards import SwitchingSurfaces, place_equilibria
 from modemap.hybrid import HybridModel, RegimeModel
+from modemap.local import prepare_regression
 from modemap.regimes import RegimeFinder
+from modemap.regimes.segments import segment_derivatives
 from modemap.terms import TermLibrary
 from modemap.validation import one_step_quality, split_holdout, validate
 
@@ -141,21 +143,18 @@ class HybridIdentifier(BaseEstimator):
             kind=self.guard_kind, degree=self.guard_degree, seed=self.seed
         ).fit(z, labels, lengths, list(train.variable_names), units=dict(train.units))
         progress(0.82, "equilibria and stability")
-        model = self._assemble(train, finder, surfaces, z, labels)
-        place_equilibria(model)
+        model, typical_inputs = self._assemble(train, finder, surfaces, z, labels)
+        for regime, u_typ in zip(model.regimes, typical_inputs, strict=True):
+            place_equilibria(model.guards, [regime], model.variables, u_typ)
         progress(0.88, "validating on held-out data")
         if test is not None:
             test_labels = finder.predict(test)
             model.validation = validate(model, test, labels=test_labels, tolerance=self.tolerance)
             model.validation["holdout"] = "runs" if len(ds.runs) >= 2 else "tails"
+            model.validation["one_step"] = self._one_step(model, finder, test, test_labels)
             all_labels = _merge_labels(ds, train, finder.labels_, test, test_labels)
         else:
             all_labels = _merge_labels(ds, train, finder.labels_, None, None)
-        reg = finder.regression_
-        model.validation.setdefault("one_step", {})
-        model.validation["one_step"] = one_step_quality(
-            model, reg.Z, reg.Y, finder.regression_labels_
-        )
         self.model_ = model
         self.labels_ = labels_frame(ds, all_labels)
         self.finder_ = finder
@@ -182,11 +181,31 @@ class HybridIdentifier(BaseEstimator):
         if not 0 <= self.holdout < 1:
             raise FitError(f"holdout must be in [0, 1), got {self.holdout!r}")
 
-    def _assemble(self, ds, finder, surfaces, z, labels) -> HybridModel:
+    def _one_step(self, model, finder, test: Dataset, test_labels) -> dict:
+        """One-step quality on the held-out samples, each under its decoded regime.
+
+        The targets are built as in training: the next sample (discrete form) or
+        derivatives with the recorded settings, re-estimated within regime stretches.
+        """
+        reg = prepare_regression(test, form=self.form, derivative=finder.regression_.derivative)
+        rows = np.concatenate(test_labels)[np.asarray(reg.sample_index)]
+        Y = np.asarray(reg.Y, dtype=float)
+        if self.form == "continuous":
+            Y = segment_derivatives(
+                np.asarray(reg.time),
+                np.asarray(reg.Z)[:, : test.n_states],
+                Y,
+                np.asarray(reg.lengths),
+                rows,
+                dict(finder.regression_.derivative or {}),
+            )
+        return one_step_quality(model, np.asarray(reg.Z), Y, rows)
+
+    def _assemble(self, ds, finder, surfaces, z, labels) -> tuple[HybridModel, list]:
         n_states = ds.n_states
         ranges = ds.ranges()
         bounds = np.array([ranges[n] for n in ds.state_names], dtype=float)
-        regimes = []
+        regimes, typical_inputs, centroids = [], [], {}
         for k, fit in enumerate(finder.local_fits_):
             library = TermLibrary.from_terms(fit.terms, ds.variable_names)
             mask = labels == k
@@ -195,6 +214,9 @@ class HybridIdentifier(BaseEstimator):
                 if mask.any()
                 else np.median(z[:, n_states:], axis=0)
             )
+            typical_inputs.append(u_typ)
+            if mask.any():
+                centroids[str(k)] = [float(v) for v in z[mask, :n_states].mean(axis=0)]
             eq = find_equilibria(
                 library,
                 fit.coef,
@@ -223,8 +245,10 @@ class HybridIdentifier(BaseEstimator):
             "options": {k: v for k, v in self.get_params().items()},
             "source": ds.source,
             "notes": list(getattr(finder, "notes_", [])),
+            "switching_inputs": list(getattr(finder, "switching_inputs_", [])),
+            "regime_centroids": centroids,
         }
-        return HybridModel(
+        model = HybridModel(
             states=list(ds.state_names),
             inputs=list(ds.input_names),
             form=self.form,
@@ -240,6 +264,7 @@ class HybridIdentifier(BaseEstimator):
             statistics=finder.statistics_,
             metadata=metadata,
         )
+        return model, typical_inputs
 
 
 def _merge_labels(ds, train, train_labels, test, test_labels) -> dict[str, np.ndarray]:
