@@ -419,6 +419,8 @@ class SwitchingSurfaces(BaseEstimator):
         self._choice_map: dict = {}
         self._prev = np.full(labels.size, -2, dtype=np.int64)
         self._prev[cur] = labels[prev]
+        run_start = np.repeat(np.cumsum(lengths) - lengths, lengths)
+        self._ok2 = np.arange(labels.size) - run_start >= 2
         kinds = ["per-source", "memoryless"] if self.kind == "auto" else [self.kind]
         scores: dict[str, dict] = {}
         fitted: dict[str, list[Guard]] = {}
@@ -440,7 +442,7 @@ class SwitchingSurfaces(BaseEstimator):
         self.kind_ = chosen
         self.scores_ = scores
         self.variables_ = list(self._vars)
-        del self._Z
+        del self._Z, self._ok2
         return self
 
     def guard_values(self, z: np.ndarray, current: int) -> dict[int, float]:
@@ -568,8 +570,8 @@ class SwitchingSurfaces(BaseEstimator):
         if ytr.all() or not ytr.any():
             return full
         use_ho = yho.size and yho.any() and not yho.all()
-        Zs, ys = (self._Z[ho], yho) if use_ho else (self._Z[tr], ytr)
-        full_score = _balanced_accuracy(ys, _values(full, self._vars, Zs) > 0)
+        rows, ys = (ho, yho) if use_ho else (tr, ytr)
+        full_score = _balanced_accuracy(ys, self._after_rows(full, rows) > 0)
         cands = [self._leading_variable(full, tr)] if choices is None else [choices[key]]
         best = None
         for v in cands:
@@ -579,7 +581,7 @@ class SwitchingSurfaces(BaseEstimator):
             w[v] = sign / sd
             g = Guard(full.source, full.target, list(self._vars), w, -sign * thr / sd)
             g = _recentre(g, self._vars, self._Z, *events)
-            score = _balanced_accuracy(ys, _values(g, self._vars, Zs) > 0)
+            score = _balanced_accuracy(ys, self._after_rows(g, rows) > 0)
             if best is None or score > best[0]:
                 best = (score, v, g)
         if choices is not None:
@@ -587,6 +589,20 @@ class SwitchingSurfaces(BaseEstimator):
         ok = best is not None and best[0] >= full_score - float(self.simplify_tol)
         self._choice_map[key] = best[1] if ok else None
         return best[2] if ok else full
+
+    def _after_rows(self, guard: Guard, rows: np.ndarray) -> np.ndarray:
+        """Guard values "after" the given rows, as in :func:`predict_labels` (see
+        :func:`_after`): the larger of the value at the row and at the trend
+        ``2 z[r-1] - z[r-2]`` when both earlier samples belong to the same run.
+        Scoring with the value the simulator and the label prediction use keeps
+        a threshold crossed between two samples from counting as a miss."""
+        value = _values(guard, self._vars, self._Z[rows])
+        sel = np.flatnonzero(self._ok2[rows])
+        if sel.size:
+            r = rows[sel]
+            ext = _values(guard, self._vars, 2.0 * self._Z[r - 1] - self._Z[r - 2])
+            value[sel] = np.maximum(value[sel], ext)
+        return value
 
     def _leading_variable(self, full: Guard, rows: np.ndarray) -> int:
         """The variable the full guard leans on most: largest |d value / d v| * spread(v).

@@ -10,7 +10,8 @@ Pipeline inside :meth:`RegimeFinder.fit`:
    of a single model fitted to all rows, each refined by the hard-EM switching regression
    (:mod:`.refine`); the refined labelling with the higher likelihood is kept;
 4. ``n_regimes="auto"``: K by BIC on the first 80 % of each run (:mod:`.selection`), then the
-   chosen K is fitted again on all rows;
+   chosen labelling is extended to all rows (held-out tails decoded by Viterbi) and refined
+   there, so the model returned is the one the selection table scored;
 5. hygiene and a stable order of ids (:mod:`.hygiene`), statistics (:mod:`.summary`).
 
 Labels of samples that have no regression row (in discrete form, the last sample of each run,
@@ -241,11 +242,15 @@ class RegimeFinder(BaseEstimator):
         self._derivative_settings = dict(reg.derivative or {})
         if self.n_regimes == "auto":
             kmax = max(1, min(int(self.max_regimes), Z.shape[0] // self._min_samples))
-            table, _ = select_regimes(
+            table, results = select_regimes(
                 self._fit_k, library, Z, Y, lengths, kmax, progress=scaled(progress, 0.0, 0.8)
             )
             k = int(table.loc[table["chosen"], "K"].iloc[0])
-            result = self._fit_k(Z, Y, lengths, k, scaled(progress, 0.8, 1.0))
+            result = self._extend(Z, Y, lengths, results[k], scaled(progress, 0.8, 0.9))
+            if result.n_regimes != results[k].n_regimes:  # lost a regime on all rows
+                fresh = self._fit_k(Z, Y, lengths, k, scaled(progress, 0.9, 1.0))
+                if fresh.n_regimes > result.n_regimes:
+                    result = fresh
         else:
             result = self._fit_k(Z, Y, lengths, int(self.n_regimes), scaled(progress, 0.0, 1.0))
             table = self._single_row(result, Y.shape[1], Z.shape[0])
@@ -304,6 +309,46 @@ class RegimeFinder(BaseEstimator):
             best = self._resegment(Z, Y, lengths, best, progress)
         return best
 
+    def _extend(
+        self,
+        Z: np.ndarray,
+        Y: np.ndarray,
+        lengths: np.ndarray,
+        chosen: RefineResult,
+        progress: ProgressCallback,
+    ) -> RefineResult:
+        """Refit the chosen labelling of the training part on all rows.
+
+        The held-out tails are decoded by Viterbi with the chosen models and chain, and
+        the refinement on all rows starts from those labels.  A fresh proposal with the
+        chosen K could land on another labelling, or lose regimes to hygiene, so that the
+        model returned would not be the one the selection table describes.  When
+        this refit still loses a regime (hygiene on all rows), :meth:`fit` also tries
+        a fresh fit of the chosen K and keeps the one with more regimes.
+        """
+        held = holdout_split(lengths)
+        labels = np.empty(Z.shape[0], dtype=np.int64)
+        labels[~held] = chosen.labels
+        if held.any():
+            runs = np.repeat(np.arange(lengths.size), lengths)[held]
+            tail_len = np.bincount(runs, minlength=lengths.size)
+            log_em = regime_log_likelihood(
+                self._library_fitted,
+                Z[held],
+                Y[held],
+                [np.asarray(f.coef) for f in chosen.fits],
+                chosen.covariances,
+            )
+            tails, _ = viterbi_runs(
+                log_em, tail_len[tail_len > 0], chosen.log_start, chosen.log_trans
+            )
+            labels[held] = tails
+        k = chosen.n_regimes
+        result = self._refine(Z, Y, lengths, labels, k, progress)
+        if self.form == "continuous" and self.resegment and result.n_regimes > 1:
+            result = self._resegment(Z, Y, lengths, result, progress)
+        return result
+
     def _resegment(
         self,
         Z: np.ndarray,
@@ -319,9 +364,13 @@ class RegimeFinder(BaseEstimator):
         """
         time = self._row_time(Z.shape[0])
         m = Y.shape[1]
+        # inputs that select the regime already cut stretches through the labels
+        names = list(self._library_fitted.variables_)[m:]
+        keep = [m + j for j, name in enumerate(names) if name not in self.switching_inputs_]
+        stepped = Z[:, keep] if keep else None
         for _ in range(2):
             y2 = segment_derivatives(
-                time, Z[:, :m], Y, lengths, result.labels, self._derivative_settings
+                time, Z[:, :m], Y, lengths, result.labels, self._derivative_settings, stepped
             )
             new = self._refine(Z, y2, lengths, result.labels, result.n_regimes, progress)
             new.targets = y2

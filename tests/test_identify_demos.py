@@ -1,0 +1,199 @@
+"""HybridIdentifier end to end on the three invented demo datasets (continuous form, defaults).
+
+Each fixture runs what ``modemap fit datasets/<name>.csv --time t --states ... --inputs ...
+--run run`` runs: :func:`modemap.read_data` then ``HybridIdentifier().fit`` with default options
+(one run of four held out for validation).  The reference values come from outside the fit: the
+truth sidecars ``datasets/<name>.truth.json`` (written by the seeded generators of
+:mod:`modemap.demos`), textbook converter equations, and ``scipy.optimize.fsolve`` on the true
+reactor model.  Checks marked ``xfail(strict=True)`` are targets measured as not met (figures in
+the reason); they fail the day they pass, so the marker must then be removed.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy.optimize import linear_sum_assignment
+
+from modemap import read_data
+from modemap.demos import reactor as reactor_demo
+from modemap.identify import HybridIdentifier
+from modemap.simulate import simulate
+
+pytestmark = pytest.mark.slow
+
+DATA = Path(__file__).resolve().parents[1] / "datasets"
+
+
+def _identify(name: str, states: list[str], inputs: list[str]):
+    ds = read_data(DATA / f"{name}.csv", time="t", states=states, inputs=inputs, run="run")
+    ident = HybridIdentifier().fit(ds)
+    frame = pd.read_csv(DATA / f"{name}.csv")
+    truth = json.loads((DATA / f"{name}.truth.json").read_text(encoding="utf-8"))
+    return ident, ds, frame, truth
+
+
+def _matching(labels: np.ndarray, truth: np.ndarray) -> tuple[float, dict[int, int]]:
+    """Accuracy after the best id matching (scipy's assignment solver) and ours -> true ids."""
+    k = int(max(labels.max(), truth.max())) + 1
+    counts = np.zeros((k, k))
+    np.add.at(counts, (labels, truth), 1)
+    rows, cols = linear_sum_assignment(-counts)
+    match = dict(zip(rows.tolist(), cols.tolist(), strict=True))
+    return float(counts[rows, cols].sum() / labels.size), match
+
+
+# --------------------------------------------------------------------------------- buck
+@pytest.fixture(scope="module")
+def buck():
+    return _identify("buck", ["i_L", "v_C"], ["g"])
+
+
+def test_buck_two_regimes_with_textbook_matrices(buck) -> None:
+    ident, _, frame, truth = buck
+    model = ident.model_
+    assert model.n_regimes == 2
+    acc, match = _matching(ident.labels_["regime"].to_numpy(), frame["true_regime"].to_numpy())
+    assert acc >= 0.97
+    for reg in model.regimes:
+        # ideal buck in continuous conduction, switch on / off: L di/dt = g V_in - v,
+        # C dv/dt = i - v/R ("Fundamentals of Power Electronics", Springer, 3rd ed. 2020,
+        # chapter 2); the truth sidecar holds these coefficients for L, C, R, V_in of the demo
+        true = truth["regimes"][match[reg.id]]["coefficients"]
+        for j, state in enumerate(model.states):
+            for term, value in true[state].items():
+                got = reg.coefficients[reg.terms.index(term), j]
+                assert got == pytest.approx(value, rel=0.03), (reg.id, state, term)
+            others = [t for t in reg.terms if t not in true[state]]
+            for term in others:  # no spurious term: below 3 % of the 1/L, 1/C entries (10)
+                assert abs(reg.coefficients[reg.terms.index(term), j]) < 0.03 * 10.0
+
+
+def test_buck_guards_switch_on_the_gate(buck) -> None:
+    ident, _, _, _ = buck
+    guards = ident.model_.guards
+    assert {(g.source, g.target) for g in guards} == {(0, 1), (1, 0)}
+    for g in guards:
+        w = np.asarray(g.weights)
+        used = [t for t, c in zip(g.terms, w, strict=True) if c != 0]
+        assert used == ["g"], g.text
+        threshold = -g.offset / w[g.terms.index("g")]
+        assert 0.0 < threshold < 1.0  # the gate takes the values 0 and 1 (truth sidecar)
+
+
+def test_buck_resimulated_mean_voltage(buck) -> None:
+    ident, _, _, truth = buck
+    test = ident.test_.runs[0]
+    sim = simulate(ident.model_, test.time, test.states[0], test.inputs, None)
+    p = truth["parameters"]
+    # volt-second balance of the ideal converter in continuous conduction: mean v_C = D V_in
+    # (same textbook, chapter 2); D measured from the gate over the second half (after start-up)
+    half = test.time.size // 2
+    duty = float(test.inputs[half:, 0].mean())
+    mean_v = float(sim.states[half:, 1].mean())
+    assert mean_v == pytest.approx(duty * p["V_in"], rel=0.01)
+
+
+# ------------------------------------------------------------------------ water heaters
+@pytest.fixture(scope="module")
+def heaters():
+    return _identify("water_heaters", ["T"], ["w"])
+
+
+def test_heaters_labels(heaters) -> None:
+    ident, _, frame, _ = heaters
+    assert ident.model_.n_regimes == 2
+    acc, _ = _matching(ident.labels_["regime"].to_numpy(), frame["true_regime"].to_numpy())
+    assert acc >= 0.97
+
+
+def test_heaters_thermostat_thresholds_and_hysteresis(heaters) -> None:
+    ident, _, frame, truth = heaters
+    model = ident.model_
+    _, match = _matching(ident.labels_["regime"].to_numpy(), frame["true_regime"].to_numpy())
+    on = next(k for k, v in match.items() if v == 1)
+    assert model.guard_kind == "per-source"
+    rules = truth["switching"]
+    found = {}
+    for g in model.guards:
+        w = np.asarray(g.weights)
+        used = [t for t, c in zip(g.terms, w, strict=True) if c != 0]
+        assert used == ["T"], g.text  # one-variable guard on the temperature
+        found[g.source] = (-g.offset / w[g.terms.index("T")], np.sign(w[g.terms.index("T")]))
+    off = 1 - on
+    # hysteresis thermostat of the truth sidecar: off -> on when T falls to T_low,
+    # on -> off when T rises to T_high
+    thr, sign = found[off]
+    assert sign < 0 and thr == pytest.approx(rules["T_low"], abs=0.3)
+    thr, sign = found[on]
+    assert sign > 0 and thr == pytest.approx(rules["T_high"], abs=0.3)
+    assert abs(found[on][0] - found[off][0]) > 4.0  # different thresholds per source
+
+
+def test_heaters_resimulated_duty_cycle(heaters) -> None:
+    ident, _, frame, _ = heaters
+    _, match = _matching(ident.labels_["regime"].to_numpy(), frame["true_regime"].to_numpy())
+    on = next(k for k, v in match.items() if v == 1)
+    for run in ident.test_.runs:  # held-out runs only
+        sim = simulate(ident.model_, run.time, run.states[0], run.inputs, None)
+        rows = frame["run"].astype(str).to_numpy() == str(run.origin)
+        measured = float(np.mean(frame["true_regime"].to_numpy()[rows] == 1))
+        simulated = float(np.mean(sim.regimes == on))
+        assert simulated == pytest.approx(measured, rel=0.02)
+
+
+# ------------------------------------------------------------------------------ reactor
+@pytest.fixture(scope="module")
+def reactor():
+    return _identify("reactor", ["C_A", "T"], ["Tc"])
+
+
+def test_reactor_auto_chooses_two_regimes(reactor) -> None:
+    ident, _, _, _ = reactor
+    # the truth sidecar names two regimes: the low- and the high-conversion branch
+    assert ident.model_.n_regimes == 2
+
+
+def test_reactor_regimes_are_the_two_branches(reactor) -> None:
+    ident, _, frame, _ = reactor
+    acc, _ = _matching(ident.labels_["regime"].to_numpy(), frame["true_regime"].to_numpy())
+    # truth sidecar label rule: conversion above or below 0.5; measured 96.3 %
+    assert acc >= 0.95
+
+
+@pytest.mark.xfail(
+    strict=True,
+    reason="measured (defaults, degree-2 terms, inputs at each regime's median Tc): high branch "
+    "at 305 K: stable focus C_A 0.0421 / T 400.73, reachable (fsolve: stable 0.0405 / 400.74; "
+    "C_A off 3.9 %, T 0.00 %), plus a saddle at 0.0316 / 400.61; low branch at 300 K: "
+    "0.9664 / 309.70, reachable but classified as a saddle (fsolve: stable 0.9614 / 310.13; "
+    "off 0.5 % / 0.14 %); the middle saddle is reported as a saddle of the high regime at "
+    "0.543 / 368.3 (fsolve at 305 K: 0.692 / 339.0). Degree-2 polynomials over a regime that "
+    "includes the ignition and extinction transients do not reproduce exp(-E/RT) to 1 % in "
+    "C_A (1 % of 0.04 mol/L is a seventh of the noise level)",
+)
+def test_reactor_stable_steady_states_are_reachable_equilibria(reactor) -> None:
+    ident, _, frame, _ = reactor
+    assert ident.model_.n_regimes == 2
+    labels = ident.labels_["regime"].to_numpy()
+    _, match = _matching(labels, frame["true_regime"].to_numpy())
+    tc = frame["Tc [K]"].to_numpy()
+    for reg in ident.model_.regimes:
+        level = float(np.median(tc[labels == reg.id]))  # where identify.py evaluates the inputs
+        # steady states of the true (Arrhenius) model by scipy.optimize.fsolve at that level
+        states = reactor_demo.steady_states(level)
+        target = states[0] if match[reg.id] == 0 else states[-1]
+        assert target["stability"] == "stable"
+        hits = [
+            q
+            for q in reg.equilibria
+            if q.inside
+            and abs(q.point["C_A"] - target["C_A"]) <= 0.01 * target["C_A"]
+            and abs(q.point["T"] - target["T"]) <= 0.01 * target["T"]
+        ]
+        assert hits, (reg.id, level, [(q.point, q.stability, q.inside) for q in reg.equilibria])
+        assert hits[0].stability.startswith("stable")
