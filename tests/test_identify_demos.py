@@ -167,7 +167,7 @@ def test_reactor_regimes_are_the_two_branches(reactor) -> None:
 
 @pytest.mark.xfail(
     strict=True,
-    reason="measured (defaults, degree-2 terms, inputs at each regime's median Tc): high branch "
+    reason="measured (defaults, degree-2 terms, inputs at the Tc level each regime sits at most): high branch "
     "at 305 K: stable focus C_A 0.0421 / T 400.73, reachable (fsolve: stable 0.0405 / 400.74; "
     "C_A off 3.9 %, T 0.00 %), plus a saddle at 0.0316 / 400.61; low branch at 300 K: "
     "0.9664 / 309.70, reachable but classified as a saddle (fsolve: stable 0.9614 / 310.13; "

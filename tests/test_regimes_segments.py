@@ -31,3 +31,18 @@ def test_runs_are_separate_and_short_stretches_use_central_differences() -> None
     # x = t^2 on 3-point stretches: second-order differences are exact for a quadratic
     np.testing.assert_allclose(out[:6, 0], 2.0 * t[:6], atol=1e-9)
     np.testing.assert_allclose(out[6:, 0], 3.0, atol=1e-9)
+
+
+def test_input_steps_also_cut_stretches() -> None:
+    # One regime throughout, but the input steps at sample k and the slope follows it:
+    # dx/dt = u (elementary calculus: the exact derivative of each linear piece).
+    t = np.arange(0.0, 10.0, 0.05)
+    k = t.size // 2
+    u = np.where(np.arange(t.size) < k, 1.0, -2.0)
+    x = np.concatenate([[0.0], np.cumsum(u[:-1] * 0.05)])[:, None]
+    labels = np.zeros(t.size, dtype=int)
+    settings = {"method": "savgol", "window": 21, "order": 3}
+    whole, _ = differentiate(t, x, **settings)
+    out = segment_derivatives(t, x, whole, np.array([t.size]), labels, settings, inputs=u[:, None])
+    np.testing.assert_allclose(out[: k - 1, 0], 1.0, atol=1e-9)
+    np.testing.assert_allclose(out[k + 1 :, 0], -2.0, atol=1e-9)

@@ -209,11 +209,7 @@ class HybridIdentifier(BaseEstimator):
         for k, fit in enumerate(finder.local_fits_):
             library = TermLibrary.from_terms(fit.terms, ds.variable_names)
             mask = labels == k
-            u_typ = (
-                np.median(z[mask, n_states:], axis=0)
-                if mask.any()
-                else np.median(z[:, n_states:], axis=0)
-            )
+            u_typ = _typical_inputs(z[mask, n_states:] if mask.any() else z[:, n_states:])
             typical_inputs.append(u_typ)
             if mask.any():
                 centroids[str(k)] = [float(v) for v in z[mask, :n_states].mean(axis=0)]
@@ -265,6 +261,19 @@ class HybridIdentifier(BaseEstimator):
             metadata=metadata,
         )
         return model, typical_inputs
+
+
+def _typical_inputs(u: np.ndarray) -> np.ndarray:
+    """Inputs at which a regime's equilibria are computed.
+
+    A stepped input (at most 20 distinct levels) takes the level the regime spends
+    most samples at; a continuously varying one its median.
+    """
+    out = np.empty(u.shape[1])
+    for j, column in enumerate(u.T):
+        levels, counts = np.unique(column, return_counts=True)
+        out[j] = levels[np.argmax(counts)] if levels.size <= 20 else np.median(column)
+    return out
 
 
 def _merge_labels(ds, train, train_labels, test, test_labels) -> dict[str, np.ndarray]:
