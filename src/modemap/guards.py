@@ -240,7 +240,9 @@ def guard_text(
     guard: Guard, units: dict[str, str] | None = None, spans: dict[str, float] | None = None
 ) -> str:
     """Readable text of a guard: a threshold for one variable, else a normalised half-plane."""
-    units, spans = units or {}, spans or {}
+    spans = spans or {}
+    # a dimensionless marker ("-", "1") is not shown after a number
+    units = {k: v for k, v in (units or {}).items() if v not in ("-", "1", "")}
     w = np.asarray(guard.weights, dtype=float)
     nz = np.flatnonzero(w != 0)
     head = f"switch {guard.source} -> {guard.target} when "

@@ -198,7 +198,7 @@ def switching_details(model: HybridModel | None) -> RenderableType:
         line.append_text(_regime_label(g.source))
         line.append(" → ")
         line.append_text(_regime_label(g.target))
-        line.append(f"  when  {g.text or '(no text stored)'}")
+        line.append(f"  when  {_condition(g.text) or '(no text stored)'}")
         parts.append(line)
     if model.n_regimes > 1 and not model.guards:
         parts.append(Text("  no guards stored"))
@@ -323,3 +323,9 @@ def plain_equations(
         ]
         out.append(f"{lhs} = " + (" + ".join(parts) or "0"))
     return out
+
+
+def _condition(text: str) -> str:
+    """The condition part of a guard text (``"switch 0 -> 1 when T > 60"`` -> ``"T > 60"``)."""
+    head, sep, rest = text.partition(" when ")
+    return rest if sep and head.startswith("switch ") else text
