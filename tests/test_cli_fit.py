@@ -107,3 +107,17 @@ def test_failed_fit_writes_no_model(fitted, tmp_path, capsys) -> None:
     assert main(["fit", str(data), *COLUMNS, "--regimes", "many", "--out", str(out)]) == 2
     assert "--regimes" in capsys.readouterr().err
     assert not (out / "model.json").exists()
+
+
+def test_extra_candidate_terms_reach_the_model(tmp_path) -> None:
+    data = tmp_path / "relay.csv"
+    relay_frame(n_runs=2, duration=12.0).to_csv(data, index=False)
+    out = tmp_path / "res"
+    args = ["fit", str(data), *COLUMNS, "--degree", "1", "--term", "exp(-x)", "--out", str(out)]
+    assert main([*args, "--regimes", "2"]) == 0
+    model = json.loads((out / "model.json").read_text())
+    assert all("exp(-x)" in r["terms"] for r in model["regimes"])
+    # the relay needs no such term: the sparse fit leaves it out
+    for r in model["regimes"]:
+        assert r["coefficients"]["x"][r["terms"].index("exp(-x)")] == 0.0
+    assert main([*args[:-2], "--term", "exp(-q)", "--out", str(tmp_path / "bad")]) == 2

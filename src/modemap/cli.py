@@ -269,6 +269,14 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
         help="polynomial degree of the candidate terms (default: 2)",
     )
     group.add_argument(
+        "--term",
+        action="append",
+        default=[],
+        metavar="EXPR",
+        dest="terms",
+        help="extra candidate term in the term grammar, e.g. 'C_A*exp(-8750/T)' (repeatable)",
+    )
+    group.add_argument(
         "--threshold",
         default="auto",
         metavar="auto|X",
@@ -351,6 +359,7 @@ def identifier_from_args(args: argparse.Namespace):
         form=args.form,
         model=args.model,
         degree=args.degree,
+        custom_terms=tuple(args.terms),
         threshold=_threshold(args.threshold),
         derivative=args.derivative,
         guard_kind=args.guards,

@@ -51,6 +51,9 @@ class HybridIdentifier(BaseEstimator):
         Sparse regression on candidate terms, or an affine operator per regime.
     degree : int, default=2
         Polynomial degree of the candidate terms (sparse model).
+    custom_terms : sequence of str, default=()
+        Extra candidate terms in the term grammar, e.g. an Arrhenius factor
+        ``"C_A*exp(-8750/T)"`` (see :mod:`modemap.expressions`).
     threshold : "auto" or float, default="auto"
         Sparsity threshold on normalised coefficients.
     derivative : str, default="auto"
@@ -87,6 +90,7 @@ class HybridIdentifier(BaseEstimator):
         form: str = "continuous",
         model: str = "sparse",
         degree: int = 2,
+        custom_terms: tuple[str, ...] | list[str] = (),
         threshold: str | float = "auto",
         derivative: str = "auto",
         guard_kind: str = "auto",
@@ -103,6 +107,7 @@ class HybridIdentifier(BaseEstimator):
         self.form = form
         self.model = model
         self.degree = degree
+        self.custom_terms = custom_terms
         self.threshold = threshold
         self.derivative = derivative
         self.guard_kind = guard_kind
@@ -130,6 +135,7 @@ class HybridIdentifier(BaseEstimator):
             form=self.form,
             model=self.model,
             degree=self.degree,
+            custom=tuple(self.custom_terms),
             threshold=self.threshold,
             derivative=self.derivative,
             min_dwell=self.min_dwell,
@@ -238,7 +244,9 @@ class HybridIdentifier(BaseEstimator):
         metadata: dict[str, Any] = {
             "modemap_version": __version__,
             "seed": self.seed,
-            "options": {k: v for k, v in self.get_params().items()},
+            "options": {
+                k: list(v) if isinstance(v, tuple) else v for k, v in self.get_params().items()
+            },
             "source": ds.source,
             "notes": list(getattr(finder, "notes_", [])),
             "switching_inputs": list(getattr(finder, "switching_inputs_", [])),

@@ -582,16 +582,20 @@ class _Sim:
         events.append(blow)
         t_eval = time[k + 1 : kb + 1]
         t_eval = t_eval[t_eval > t]
-        sol = integrate.solve_ivp(
-            fun,
-            (t, t_end),
-            x,
-            method=self.choose_method(reg, t, x, k),
-            t_eval=t_eval,
-            events=events,
-            rtol=self.rtol,
-            atol=self.atol,
-        )
+        try:
+            sol = integrate.solve_ivp(
+                fun,
+                (t, t_end),
+                x,
+                method=self.choose_method(reg, t, x, k),
+                t_eval=t_eval,
+                events=events,
+                rtol=self.rtol,
+                atol=self.atol,
+            )
+        except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
+            # e.g. event location on a right-hand side that stopped being finite
+            raise _Stop(-1, f"solver failure at t={t:g}: {exc}") from None
         self.nfev += int(sol.nfev)
         if sol.status == -1:
             raise _Stop(-1, f"solver failure at t={t:g}: {sol.message}")

@@ -86,6 +86,9 @@ class RegimeFinder(BaseEstimator):
     seed : int, default 0
     terms : sequence of str or None, default None
         Explicit candidate terms (overrides ``degree`` and ``model``'s library).
+    custom : sequence of str, default ()
+        Extra candidate terms written in the term grammar (e.g. ``"C_A*exp(-8750/T)"``),
+        added to the polynomial library of the sparse model.
     location_weight : float, default 0.0
         Weight of the Gaussian term on where the state sits in the relabelling.
     covariance : {"tied", "full"}, default "tied"
@@ -126,6 +129,7 @@ class RegimeFinder(BaseEstimator):
         min_dwell: int = 1,
         seed: int = 0,
         terms: Sequence[str] | None = None,
+        custom: Sequence[str] = (),
         location_weight: float = 0.0,
         covariance: str = "tied",
         switching_inputs: str | Sequence[str] | None = "auto",
@@ -145,6 +149,7 @@ class RegimeFinder(BaseEstimator):
         self.min_dwell = min_dwell
         self.seed = seed
         self.terms = terms
+        self.custom = custom
         self.location_weight = location_weight
         self.covariance = covariance
         self.switching_inputs = switching_inputs
@@ -176,7 +181,8 @@ class RegimeFinder(BaseEstimator):
         if self.terms is not None:
             return TermLibrary.from_terms(list(self.terms), variables)
         degree = 1 if self.model == "affine" else int(self.degree)
-        library = TermLibrary(degree=degree).fit(variables)
+        custom = () if self.model == "affine" else tuple(self.custom)
+        library = TermLibrary(degree=degree, custom=custom).fit(variables)
         if not excluded:
             return library
         keep = [t for t in library.terms_ if not _uses(t, excluded)]
