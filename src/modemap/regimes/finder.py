@@ -292,23 +292,8 @@ class RegimeFinder(BaseEstimator):
                 n_restarts=int(self.n_restarts),
                 seed=int(self.seed),
             )
-            result = refine(
-                Z,
-                Y,
-                lengths,
-                labels,
-                self._library_fitted,
-                n_regimes=k,
-                model=self.model,
-                threshold=self.threshold,
-                sticky=float(self.sticky),
-                location_weight=float(self.location_weight),
-                covariance=self.covariance,
-                min_samples=self._min_samples,
-                min_dwell=int(self.min_dwell),
-                max_iter=int(self.max_iter),
-                progress=scaled(progress, i / len(starts), (i + 1) / len(starts)),
-            )
+            step = scaled(progress, i / len(starts), (i + 1) / len(starts))
+            result = self._refine(Z, Y, lengths, labels, k, step)
             if best is None or result.loglik > best.loglik:
                 best = result
         if self.form == "continuous" and self.resegment and best.n_regimes > 1:
