@@ -598,6 +598,7 @@ _COMMANDS: tuple[Callable[[argparse._SubParsersAction], None], ...] = (
     _add_fit,
     _add_simulate,
     _add_view,
+    _add_bench,
 )
 
 

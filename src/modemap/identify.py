@@ -140,6 +140,8 @@ class HybridIdentifier(BaseEstimator):
             derivative=self.derivative,
             min_dwell=self.min_dwell,
             seed=self.seed,
+            engine=self.engine,
+            scheduler=self.scheduler,
         ).fit(train, progress=scaled(progress, 0.02, 0.75))
         progress(0.75, "learning switching surfaces")
         _, x, u, lengths = train.concat()

@@ -134,7 +134,11 @@ class RegimeFinder(BaseEstimator):
         covariance: str = "tied",
         switching_inputs: str | Sequence[str] | None = "auto",
         resegment: bool = True,
+        engine: Any = "local",
+        scheduler: str | None = None,
     ) -> None:
+        self.engine = engine
+        self.scheduler = scheduler
         self.n_regimes = n_regimes
         self.max_regimes = max_regimes
         self.form = form
@@ -226,9 +230,23 @@ class RegimeFinder(BaseEstimator):
         -------
         self
         """
-        from modemap.local import prepare_regression
+        from modemap.engine import get_engine
 
         self._check_params()
+        engine = get_engine(self.engine, self.scheduler)  # FitError on a bad name / no Dask
+        try:
+            return self._fit(ds, progress, engine)
+        finally:
+            if isinstance(self.engine, str):  # close only what this fit started or joined
+                engine.close()
+            self._engine, self._scattered = None, None
+
+    def _fit(self, ds: Dataset, progress: ProgressCallback | None, engine: Any) -> RegimeFinder:
+        from modemap.local import prepare_regression
+
+        # the default local engine keeps the fast path: all rows at once, no map over runs
+        self._engine = None if engine.name == "local" else engine
+        self._scattered = None
         progress = progress or null_progress
         reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
         self.switching_inputs_ = self._switching_inputs(ds)
@@ -398,7 +416,20 @@ class RegimeFinder(BaseEstimator):
             min_dwell=int(self.min_dwell),
             max_iter=int(self.max_iter),
             progress=progress,
+            engine=self._engine,
+            runs=self._runs(Z, Y, lengths),
         )
+
+    def _runs(self, Z: np.ndarray, Y: np.ndarray, lengths: np.ndarray) -> Any:
+        """Runs placed on the engine's workers once per set of rows (None on the local path)."""
+        if self._engine is None:
+            return None
+        from modemap.engine import split_runs
+
+        cached = self._scattered
+        if cached is None or cached[0] is not Z or cached[1] is not Y:
+            self._scattered = cached = (Z, Y, self._engine.scatter(split_runs(Z, Y, lengths)))
+        return cached[2]
 
     def _global_residuals(self, Z: np.ndarray, Y: np.ndarray) -> np.ndarray:
         """Residuals of a single model fitted to all rows (a dynamics-aware feature)."""

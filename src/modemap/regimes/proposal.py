@@ -50,7 +50,9 @@ def standardise(features: np.ndarray) -> np.ndarray:
     f = np.asarray(features, dtype=np.float64)
     scale = f.std(axis=0)
     scale[~(scale > 0)] = 1.0
-    return (f - f.mean(axis=0)) / scale
+    out = f - f.mean(axis=0)  # one copy of the data; the division is done in place
+    out /= scale
+    return out
 
 
 def propose(
