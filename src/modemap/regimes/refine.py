@@ -352,6 +352,7 @@ def refine(
     min_dwell: int = 1,
     max_iter: int = 30,
     cov_floor: float = 1e-6,
+    tol: float = 1e-5,
     progress: ProgressCallback | None = None,
     engine: Any = None,
     runs: Sequence[Any] | None = None,
@@ -389,6 +390,10 @@ def refine(
     max_iter : int
     cov_floor : float
         Floor added to residual variances, relative to each target's variance.
+    tol : float
+        Converged when at most ``tol * n`` labels change in a pass (default 1e-5: below
+        10^5 samples this means none; on 10^6 samples, ten).  On long records the last
+        passes move a handful of boundary samples back and forth at full cost each.
     progress : callable, optional
         ``progress(fraction, message)``, called once per iteration.
     engine : Engine, optional
@@ -428,6 +433,7 @@ def refine(
     phase_opts = replace(opts, threshold=0.0) if dense else opts
     state = None
     work = _Work(Z, Y, lengths, library, notes, engine, runs)
+    settled = int(tol * labels.size)
     for it in range(max(1, max_iter)):
         state = None  # release the previous scores before computing new ones (memory)
         state = work.score(labels, k, phase_opts)
@@ -440,20 +446,20 @@ def refine(
         monitor.n_regimes.append(k)
         labels = new
         progress((it + 1) / max_iter, f"refinement iteration {it + 1}: {changed} labels changed")
-        if changed == 0 and phase_opts is not opts:
+        if changed <= settled and phase_opts is not opts:
             phase_opts = opts  # labels settled with dense fits: switch to the sparse fit
             continue
-        if changed == 0:
+        if changed <= settled:
             monitor.converged = True
             break
-    if not monitor.converged:
+    if not monitor.converged or monitor.changes[-1] > 0:
         # final fits consistent with the final labels
         state = None
         state = work.score(labels, k, opts)
         labels, k = state.labels, state.k
         if np.any(labels < 0):
             labels, _ = work.decode(state)
-    if monitor.converged and min_dwell <= 1:
+    if monitor.converged and monitor.changes[-1] == 0 and min_dwell <= 1:
         loglik = monitor.history[-1]  # the labels are the Viterbi path of this very state
     else:
         loglik = work.log_prob(state, labels)
