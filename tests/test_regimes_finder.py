@@ -164,3 +164,21 @@ def test_bad_parameters_raise_fit_error() -> None:
         RegimeFinder(n_regimes=0).fit(ds)
     with pytest.raises(FitError, match="form"):
         RegimeFinder(form="sideways").fit(ds)
+
+
+def test_choosing_k_on_windows_of_a_long_record_gives_the_same_regimes() -> None:
+    # The closed-form relay oscillator (first-order responses, common practice): the number of
+    # regimes chosen on 3000 of 9000 samples (windows) must equal the choice on all rows.
+    from modemap.intake import read_data
+    from relay_data import relay_frame
+
+    frame = relay_frame(n_runs=3, duration=30.0)
+    ds = read_data(frame, time="t", states=["x"], run="run")
+    full = RegimeFinder(seed=0).fit(ds)
+    part = RegimeFinder(seed=0, selection_samples=3000).fit(ds)
+    assert part.n_regimes_ == full.n_regimes_ == 2
+    np.testing.assert_array_equal(np.concatenate(part.labels_), np.concatenate(full.labels_))
+    for a, b in zip(part.local_fits_, full.local_fits_, strict=True):
+        np.testing.assert_allclose(a.coef, b.coef, rtol=1e-6, atol=1e-9)
+    assert any("contiguous windows" in note for note in part.notes_)
+    assert not any("contiguous windows" in note for note in full.notes_)

@@ -55,6 +55,7 @@ from modemap.stats import accumulate
 __all__ = ["RegimeFinder"]
 
 _FORMS = ("continuous", "discrete")
+_WINDOW = 5_000  # typical window length (rows) when K is chosen on part of a long record
 _MODELS = ("sparse", "affine")
 
 
@@ -91,6 +92,10 @@ class RegimeFinder(BaseEstimator):
         added to the polynomial library of the sparse model.
     location_weight : float, default 0.0
         Weight of the Gaussian term on where the state sits in the relabelling.
+    selection_samples : int, default 200_000
+        With ``n_regimes="auto"`` on longer data, K is chosen on about this many rows taken
+        as contiguous windows spread over every run; the chosen models are then refined on
+        all rows (a note says so).
     covariance : {"tied", "full"}, default "tied"
         Residual covariance shared by all regimes, or one per regime.
 
@@ -136,9 +141,11 @@ class RegimeFinder(BaseEstimator):
         resegment: bool = True,
         engine: Any = "local",
         scheduler: str | None = None,
+        selection_samples: int = 200_000,
     ) -> None:
         self.engine = engine
         self.scheduler = scheduler
+        self.selection_samples = selection_samples
         self.n_regimes = n_regimes
         self.max_regimes = max_regimes
         self.form = form
@@ -261,16 +268,25 @@ class RegimeFinder(BaseEstimator):
             else int(self.min_samples)
         )
         self._library_fitted = library
+        self._selection_note = None
         self._reg_time = reg.time
         self._reg_lengths = lengths
         self._derivative_settings = dict(reg.derivative or {})
         if self.n_regimes == "auto":
             kmax = max(1, min(int(self.max_regimes), Z.shape[0] // self._min_samples))
-            table, results = select_regimes(
-                self._fit_k, library, Z, Y, lengths, kmax, progress=scaled(progress, 0.0, 0.8)
-            )
+            sub = self._selection_rows(lengths)
+            if sub is None:
+                table, results = select_regimes(
+                    self._fit_k, library, Z, Y, lengths, kmax, progress=scaled(progress, 0.0, 0.8)
+                )
+            else:
+                table, results = self._select_on_windows(
+                    library, Z, Y, reg.time, lengths, sub, kmax, scaled(progress, 0.0, 0.8)
+                )
             k = int(table.loc[table["chosen"], "K"].iloc[0])
-            result = self._extend(Z, Y, lengths, results[k], scaled(progress, 0.8, 0.9))
+            result = self._extend(
+                Z, Y, lengths, results[k], scaled(progress, 0.8, 0.9), all_rows=sub is not None
+            )
             if result.n_regimes != results[k].n_regimes:  # lost a regime on all rows
                 fresh = self._fit_k(Z, Y, lengths, k, scaled(progress, 0.9, 1.0))
                 if fresh.n_regimes > result.n_regimes:
@@ -325,8 +341,13 @@ class RegimeFinder(BaseEstimator):
         lengths: np.ndarray,
         chosen: RefineResult,
         progress: ProgressCallback,
+        *,
+        all_rows: bool = False,
     ) -> RefineResult:
         """Refit the chosen labelling of the training part on all rows.
+
+        With ``all_rows`` (K was chosen on windows of the data, see
+        :meth:`_select_on_windows`) every row is decoded with the chosen models first.
 
         The held-out tails are decoded by Viterbi with the chosen models and chain, and
         the refinement on all rows starts from those labels.  A fresh proposal with the
@@ -335,9 +356,20 @@ class RegimeFinder(BaseEstimator):
         this refit still loses a regime (hygiene on all rows), :meth:`fit` also tries
         a fresh fit of the chosen K and keeps the one with more regimes.
         """
-        held = holdout_split(lengths)
-        labels = np.empty(Z.shape[0], dtype=np.int64)
-        labels[~held] = chosen.labels
+        if all_rows:  # K was chosen on windows: decode every row with the chosen models
+            log_em = regime_log_likelihood(
+                self._library_fitted,
+                Z,
+                Y,
+                [np.asarray(f.coef) for f in chosen.fits],
+                chosen.covariances,
+            )
+            labels, _ = viterbi_runs(log_em, lengths, chosen.log_start, chosen.log_trans)
+            held = np.zeros(Z.shape[0], dtype=bool)
+        else:
+            held = holdout_split(lengths)
+            labels = np.empty(Z.shape[0], dtype=np.int64)
+            labels[~held] = chosen.labels
         if held.any():
             runs = np.repeat(np.arange(lengths.size), lengths)[held]
             tail_len = np.bincount(runs, minlength=lengths.size)
@@ -357,6 +389,53 @@ class RegimeFinder(BaseEstimator):
         if self.form == "continuous" and self.resegment and result.n_regimes > 1:
             result = self._resegment(Z, Y, lengths, result, progress)
         return result
+
+    def _selection_rows(self, lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+        """Rows on which K is chosen when the data are long: None when all rows are used.
+
+        Above ``selection_samples`` rows, about that many rows are taken as contiguous
+        windows of equal length spread evenly over every run (each run gets windows in
+        proportion to its length, at least one), so every operating point the runs visit is
+        represented and derivatives and transitions stay local.  Returns the row mask and
+        the window lengths (each window is a run for the selection).
+        """
+        n, cap = int(lengths.sum()), int(self.selection_samples)
+        if n <= cap:
+            return None
+        n_windows = max(lengths.size, cap // _WINDOW)
+        width = max(cap // n_windows, 2 * self._min_samples)
+        mask = np.zeros(n, dtype=bool)
+        sizes = []
+        offset = 0
+        for length in lengths:
+            length = int(length)
+            count = max(1, round(n_windows * length / n))
+            w = min(width, length)
+            starts = np.linspace(0, length - w, count).astype(np.int64) if count > 1 else [0]
+            taken = np.zeros(length, dtype=bool)
+            for a in starts:
+                taken[a : a + w] = True
+            mask[offset : offset + length] = taken
+            edges = np.flatnonzero(np.diff(np.concatenate([[0], taken.astype(np.int8), [0]])))
+            sizes += list(edges[1::2] - edges[::2])
+            offset += length
+        return mask, np.asarray(sizes, dtype=np.int64)
+
+    def _select_on_windows(self, library, Z, Y, time, lengths, sub, kmax, progress):
+        """:func:`select_regimes` on the selection windows (see :meth:`_selection_rows`)."""
+        mask, sizes = sub
+        self._reg_time, self._reg_lengths = time[mask], sizes
+        try:
+            out = select_regimes(
+                self._fit_k, library, Z[mask], Y[mask], sizes, kmax, progress=progress
+            )
+        finally:
+            self._reg_time, self._reg_lengths = time, lengths
+        self._selection_note = (
+            f"number of regimes chosen on {int(mask.sum())} of {mask.size} samples "
+            f"({sizes.size} contiguous windows); the chosen models were then refined on all"
+        )
+        return out
 
     def _resegment(
         self,
@@ -524,6 +603,8 @@ class RegimeFinder(BaseEstimator):
         self.regression_ = reg
         self.convergence_ = result.monitor
         self.notes_ = list(result.notes)
+        if getattr(self, "_selection_note", None):
+            self.notes_.append(self._selection_note)
         if not result.monitor.converged:
             self.notes_.append(
                 f"refinement stopped after {result.monitor.iterations} iterations "
