@@ -385,7 +385,8 @@ class RegimeFinder(BaseEstimator):
             )
             labels[held] = tails
         k = chosen.n_regimes
-        result = self._refine(Z, Y, lengths, labels, k, progress)
+        # labels decoded on every row come from settled models: no dense settling phase
+        result = self._refine(Z, Y, lengths, labels, k, progress, settle_dense=not all_rows)
         if self.form == "continuous" and self.resegment and result.n_regimes > 1:
             result = self._resegment(Z, Y, lengths, result, progress)
         return result
@@ -478,7 +479,7 @@ class RegimeFinder(BaseEstimator):
             return time[~held]
         raise FitError("internal: rows given to the regime fit do not match the data")
 
-    def _refine(self, Z, Y, lengths, labels, k, progress) -> RefineResult:
+    def _refine(self, Z, Y, lengths, labels, k, progress, settle_dense=True) -> RefineResult:
         return refine(
             Z,
             Y,
@@ -494,6 +495,7 @@ class RegimeFinder(BaseEstimator):
             min_samples=self._min_samples,
             min_dwell=int(self.min_dwell),
             max_iter=int(self.max_iter),
+            settle_dense=settle_dense,
             progress=progress,
             engine=self._engine,
             runs=self._runs(Z, Y, lengths),

@@ -353,6 +353,7 @@ def refine(
     max_iter: int = 30,
     cov_floor: float = 1e-6,
     tol: float = 1e-5,
+    settle_dense: bool = True,
     progress: ProgressCallback | None = None,
     engine: Any = None,
     runs: Sequence[Any] | None = None,
@@ -394,6 +395,10 @@ def refine(
         Converged when at most ``tol * n`` labels change in a pass (default 1e-5: below
         10^5 samples this means none; on 10^6 samples, ten).  On long records the last
         passes move a handful of boundary samples back and forth at full cost each.
+    settle_dense : bool
+        With the sparse model, first let the labels settle under plain least-squares fits
+        (so early, unsettled labels do not prune terms); False skips that phase when the
+        starting labels come from already fitted models.
     progress : callable, optional
         ``progress(fraction, message)``, called once per iteration.
     engine : Engine, optional
@@ -429,7 +434,7 @@ def refine(
     monitor, notes = ConvergenceRecord(), []
     # phase 1 (sparse model only): plain least squares on all terms until the labels settle,
     # so that early, unsettled labels do not prune terms; phase 2: the requested fit
-    dense = model == "sparse" and threshold != 0
+    dense = settle_dense and model == "sparse" and threshold != 0
     phase_opts = replace(opts, threshold=0.0) if dense else opts
     state = None
     work = _Work(Z, Y, lengths, library, notes, engine, runs)
