@@ -172,7 +172,8 @@ def test_reactor_regimes_are_the_two_branches(reactor) -> None:
     "(fsolve: stable 0.0301 / 406.46; C_A off 3.4 %, T 0.01 %), with extra saddles at "
     "0.0248 / 406.35 and 0.576 / 371.2; low-conversion regime at 300 K: 0.9664 / 309.70, "
     "reachable, within 0.5 % / 0.14 % of fsolve's 0.9614 / 310.13 but classified as a saddle "
-    "(fsolve: stable node), plus a spurious stable focus at 0.131 / 388.9. Degree-2 polynomials over a regime that includes the ignition and "
+    "(fsolve: stable node), plus a spurious stable focus at 0.131 / 388.9. "
+    "Degree-2 polynomials over a regime that includes the ignition and "
     "extinction transients do not reproduce exp(-E/RT) to 1 % in C_A (1 % of 0.03 mol/L is "
     "a tenth of the noise level)",
 )
