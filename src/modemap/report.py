@@ -488,13 +488,27 @@ def _derivative_section(model: HybridModel) -> str:
         out.append("Not needed: in discrete form each equation predicts the next sample.")
     elif model.derivative:
         method = model.derivative.get("method", "–")
-        rest = [(k, x) for k, x in model.derivative.items() if k != "method"]
+        rest = [
+            (k, x) for k, x in model.derivative.items() if k not in ("method", "per_run", "noise")
+        ]
         out.append(
             f"The rates of change were estimated from the samples with the method "
             f"'{_cell(method)}'."
         )
         if rest:
             out.append(_table(["Setting", "Value"], rest))
+        per_run = model.derivative.get("per_run")
+        if isinstance(per_run, list) and per_run:
+            keys = sorted({k for r in per_run if isinstance(r, dict) for k in r} - {"auto", "step"})
+            rows = [
+                [i + 1] + [r.get(k, "–") for k in keys]
+                for i, r in enumerate(per_run)
+                if isinstance(r, dict)
+            ]
+            out.append(
+                "Per training run, in order (noise: the estimated measurement noise of each state):"
+            )
+            out.append(_table(["training run", *keys], rows))
     else:
         out.append("The derivative method was not recorded.")
     return "\n\n".join(out)
