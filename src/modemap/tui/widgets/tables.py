@@ -36,6 +36,8 @@ Formatter = Callable[..., list[str]]
 def _num(value: Any, digits: int = 3) -> str:
     if value is None:
         return "–"
+    if isinstance(value, dict):  # per-state figures, e.g. {"T": 0.02, "w": 0.1}
+        return ", ".join(f"{k} {_num(v, digits)}" for k, v in value.items())
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, int | np.integer):
