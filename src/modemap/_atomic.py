@@ -13,7 +13,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import IO
 
-__all__ = ["atomic_write", "write_text_atomic"]
+__all__ = ["atomic_write", "current_umask", "write_text_atomic"]
 
 
 @contextlib.contextmanager
@@ -43,7 +43,7 @@ def atomic_write(
             yield fh
             fh.flush()
             os.fsync(fh.fileno())
-        os.chmod(tmp, 0o666 & ~_umask())
+        os.chmod(tmp, 0o666 & ~current_umask())
         os.replace(tmp, target)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
@@ -51,7 +51,7 @@ def atomic_write(
         raise
 
 
-def _umask() -> int:
+def current_umask() -> int:
     mask = os.umask(0)
     os.umask(mask)
     return mask

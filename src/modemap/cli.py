@@ -49,10 +49,16 @@ def _positive_gap(text: str) -> float:
     return value
 
 
-def add_data_options(parser: argparse.ArgumentParser) -> None:
+def add_data_options(
+    parser: argparse.ArgumentParser,
+    *,
+    metavar: str = "DATA",
+    help: str = "CSV or Parquet file(s)",
+    title: str = "columns",
+) -> None:
     """Add the options that say which data and columns to read (shared by sub-commands)."""
-    parser.add_argument("data", nargs="+", metavar="DATA", help="CSV or Parquet file(s)")
-    group = parser.add_argument_group("columns")
+    parser.add_argument("data", nargs="+", metavar=metavar, help=help)
+    group = parser.add_argument_group(title)
     group.add_argument("--time", metavar="NAME", help="time column (default: 'time' or 't')")
     group.add_argument(
         "--states",
@@ -546,15 +552,12 @@ def _add_view(subparsers: argparse._SubParsersAction) -> None:
         description="Open the dashboard on DIR (written by 'modemap fit'), or on data files "
         "(with the column options) to fit from inside the dashboard.",
     )
-    parser.add_argument("target", nargs="+", metavar="DIR|DATA")
-    group = parser.add_argument_group("columns (when opening data)")
-    group.add_argument("--time", metavar="NAME")
-    group.add_argument("--states", type=_names, metavar="A,B")
-    group.add_argument("--inputs", type=_names, default=[], metavar="U,V")
-    group.add_argument("--run", metavar="NAME")
-    group.add_argument("--resample", action="store_true")
-    group.add_argument("--max-gap", type=_positive_gap, default=5.0, metavar="N")
-    group.add_argument("--min-samples", type=int, default=8, metavar="N")
+    add_data_options(
+        parser,
+        metavar="DIR|DATA",
+        help="a folder written by 'modemap fit', or CSV/Parquet file(s)",
+        title="columns (when opening data)",
+    )
     parser.add_argument(
         "--out", metavar="DIR", help="where a model fitted from inside is saved (with data)"
     )
@@ -565,11 +568,9 @@ def _add_view(subparsers: argparse._SubParsersAction) -> None:
 def _run_view(args: argparse.Namespace) -> int:
     from modemap.tui import run_view, run_view_data
 
-    target = args.target
-    if len(target) == 1 and os.path.isdir(target[0]):
-        run_view(target[0])
+    if len(args.data) == 1 and os.path.isdir(args.data[0]):
+        run_view(args.data[0])
         return 0
-    args.data = target
     run_view_data(load_dataset(args), out=args.out)
     return 0
 

@@ -15,6 +15,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from modemap._atomic import current_umask
 from modemap._exceptions import ModemapError
 from modemap.dataset import Dataset
 from modemap.hybrid import HybridModel
@@ -22,12 +23,6 @@ from modemap.hybrid import HybridModel
 __all__ = ["RESULT_FILES", "write_fit_outputs"]
 
 RESULT_FILES = ("model.json", "labels.csv", "report.md")
-
-
-def _umask() -> int:
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
 
 
 def write_fit_outputs(
@@ -78,7 +73,7 @@ def write_fit_outputs(
                 fh.write(text)
                 fh.flush()
                 os.fsync(fh.fileno())
-            os.chmod(tmp, 0o666 & ~_umask())
+            os.chmod(tmp, 0o666 & ~current_umask())
         for name, tmp in temps.items():
             os.replace(tmp, out / name)
     finally:
