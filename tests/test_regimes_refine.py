@@ -18,6 +18,7 @@ from statsmodels.tsa.regime_switching.markov_regression import MarkovRegression
 
 from modemap.regimes.proposal import propose
 from modemap.regimes.refine import path_log_prob, refine, transition_model
+from modemap.stats import accumulate_by_label
 from modemap.terms import TermLibrary
 
 # invented two-regime switching AR(1): (slope, intercept) per regime, persistent chain
@@ -113,3 +114,60 @@ def test_transition_model_counts_within_runs() -> None:
     score = path_log_prob(np.zeros((6, 2)), labels, np.array([3, 3]), log_start, log_trans)
     expected = 2 * np.log(0.5) + 2 * log_trans[0, 0] + log_trans[0, 1] + log_trans[1, 0]
     assert score == pytest.approx(expected)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_residual_emissions_and_decoding_match_hmmlearn_gaussian(seed: int) -> None:
+    # A regime model with the constant term only predicts y = c_k, so its Gaussian residual
+    # log-likelihood is a full-covariance Gaussian emission with mean c_k: hmmlearn's
+    # GaussianHMM (reference library) must give the same emissions and the same Viterbi path.
+    from hmmlearn import hmm
+
+    from modemap.regimes.refine import regime_log_likelihood
+    from modemap.regimes.viterbi import viterbi_runs
+
+    rng = np.random.default_rng(seed)
+    k, m = 3, 2
+    ref = hmm.GaussianHMM(n_components=k, covariance_type="full")
+    ref.startprob_ = rng.dirichlet(np.ones(k))
+    ref.transmat_ = rng.dirichlet(np.ones(k) * 0.3, size=k) + 5.0 * np.eye(k)
+    ref.transmat_ /= ref.transmat_.sum(axis=1, keepdims=True)
+    ref.means_ = rng.normal(scale=2.0, size=(k, m))
+    a = rng.normal(size=(k, m, m))
+    ref.covars_ = a @ a.transpose(0, 2, 1) + 0.5 * np.eye(m)
+    lengths = rng.integers(50, 700, size=3)
+    y, _ = ref.sample(int(lengths.sum()), random_state=seed)
+    library = TermLibrary.from_terms(["1"], ["z"])
+    z = np.zeros((y.shape[0], 1))
+    log_em = regime_log_likelihood(library, z, y, list(ref.means_[:, None, :]), ref.covars_)
+    np.testing.assert_allclose(log_em, ref._compute_log_likelihood(y), rtol=1e-10, atol=1e-10)
+    path, logprob = viterbi_runs(log_em, lengths, np.log(ref.startprob_), np.log(ref.transmat_))
+    ref_logprob, ref_path = ref.decode(y, lengths=lengths, algorithm="viterbi")
+    np.testing.assert_array_equal(path, ref_path)
+    assert logprob == pytest.approx(ref_logprob, rel=1e-10)
+
+
+def test_reported_loglik_equals_per_sample_path_score() -> None:
+    # whichever way refine() obtains its log-likelihood (last Viterbi optimum, per-sample scores
+    # or the statistics), it must equal the joint log-probability of the returned labels
+    # computed sample by sample (definition of the complete-data log-likelihood)
+    from modemap.regimes.refine import regime_log_likelihood
+
+    y, s = _simulate(3000, seed=4)
+    z, target = y[:-1, None], y[1:, None]
+    library = TermLibrary(degree=1).fit(["y"])
+    lengths = np.array([1000, 2000])
+    start = np.where(np.random.default_rng(2).random(s.size) < 0.15, 1 - s, s)
+    for tol in (0.0, 5e-2):  # 5e-2: stops with labels still moving, then refits from stats
+        res = refine(z, target, lengths, start, library, n_regimes=2, model="affine", tol=tol)
+        log_em = regime_log_likelihood(
+            library, z, target, [f.coef for f in res.fits], res.covariances
+        )
+        direct = path_log_prob(log_em, res.labels, lengths, res.log_start, res.log_trans)
+        assert res.loglik == pytest.approx(direct, rel=1e-9)
+        # statistics updated from the changed samples equal a fresh pass (sums, round-off)
+        fresh = accumulate_by_label(library, z, target, res.labels, res.n_regimes)
+        for ours, ref in zip(res.stats, fresh, strict=True):
+            assert ours.n == ref.n
+            np.testing.assert_allclose(ours.gram, ref.gram, rtol=1e-10)
+            np.testing.assert_allclose(ours.cross, ref.cross, rtol=1e-10)

@@ -18,6 +18,7 @@ these statistics alone.
 
 from __future__ import annotations
 
+import itertools
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
@@ -321,6 +322,11 @@ class _Block:
         )
 
 
+#: Below this many label changes in a block, each stretch of equal labels gets its own
+#: product; above it the block's rows are grouped by label (one stable sort) first.
+_FEW_STRETCHES = 64
+
+
 def _block_rows(p: int, m: int, chunk_size: int) -> int:
     return int(max(1, min(chunk_size, max(256, _BLOCK_BYTES // (8 * (p + m + 1))))))
 
@@ -371,9 +377,10 @@ def accumulate_by_label(
 ) -> list[GramStats]:
     """One :class:`GramStats` per label from a single pass over the data.
 
-    Each chunk is transformed once; its rows are then grouped by label (one
-    stable sort per chunk) and each group's cross products are added to that
-    label's totals.  Rows with a negative label are ignored.
+    Each chunk is transformed once.  Where labels are persistent (fewer than
+    64 changes in the chunk) each stretch of equal labels adds its cross
+    products to that label's totals; otherwise the chunk's rows are grouped by
+    label first (one stable sort).  Rows with a negative label are ignored.
 
     Parameters
     ----------
@@ -402,14 +409,23 @@ def accumulate_by_label(
     totals = np.zeros((n_labels, p + m + 1, p + m + 1))
     for start in range(0, n, rows):
         lab = labels[start : start + rows]
+        cuts = np.flatnonzero(lab[1:] != lab[:-1]) + 1
+        if cuts.size < _FEW_STRETCHES:
+            # persistent labels: one product per stretch of equal labels, no reordering
+            if lab.max() < 0:
+                continue
+            b = block.fill(Z[start : start + rows], Y[start : start + rows])
+            edges = np.concatenate([[0], cuts, [lab.size]])
+            for lo, hi in itertools.pairwise(edges):
+                if lab[lo] >= 0:
+                    seg = b[lo:hi]
+                    totals[lab[lo]] += seg.T @ seg
+            continue
         keep = lab >= 0
         n_keep = int(keep.sum())
         if n_keep == 0:
             continue
         b = block.fill(Z[start : start + rows], Y[start : start + rows])
-        if n_keep == lab.size and lab[0] == lab[-1] and np.all(lab == lab[0]):
-            totals[lab[0]] += b.T @ b  # common case: one label over the whole block
-            continue
         order = np.argsort(np.where(keep, lab, n_labels), kind="stable")[:n_keep]
         sorted_b, sorted_lab = b[order], lab[order]
         bounds = np.flatnonzero(np.diff(sorted_lab)) + 1

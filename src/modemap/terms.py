@@ -28,7 +28,7 @@ from itertools import combinations_with_replacement
 
 import numpy as np
 from sklearn.base import BaseEstimator
-from sklearn.utils.validation import check_is_fitted
+from sklearn.exceptions import NotFittedError
 
 from modemap._exceptions import DataError, ExpressionError
 from modemap.expressions import BinOp, Call, Const, Expr, Var, check_variable_names, parse
@@ -212,6 +212,14 @@ class TermLibrary(BaseEstimator):
                 seen[name] = text
         return library
 
+    def _require_fitted(self) -> None:
+        # sklearn's check_is_fitted costs ~0.2 ms; transform runs once per chunk of rows
+        if not hasattr(self, "terms_"):
+            raise NotFittedError(
+                f"This {type(self).__name__} instance is not fitted yet. Call 'fit' with "
+                "appropriate arguments before using this estimator."
+            )
+
     # ------------------------------------------------------------ transform
 
     def transform(self, Z: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
@@ -228,7 +236,7 @@ class TermLibrary(BaseEstimator):
         -------
         ndarray of shape (n, n_terms)
         """
-        check_is_fitted(self, "terms_")
+        self._require_fitted()
         Z = self._check_Z(Z)
         n = Z.shape[0]
         if out is None:
@@ -247,7 +255,7 @@ class TermLibrary(BaseEstimator):
 
     def get_feature_names_out(self, input_features: object = None) -> np.ndarray:
         """Term names as an object array (scikit-learn convention)."""
-        check_is_fitted(self, "terms_")
+        self._require_fitted()
         return np.asarray(self.terms_, dtype=object)
 
     # ------------------------------------------------------------- partials
@@ -264,7 +272,7 @@ class TermLibrary(BaseEstimator):
         ndarray of shape (n, n_terms, n_vars)
             ``[i, j, k]`` is ``d term_j / d variable_k`` at row ``i``.
         """
-        check_is_fitted(self, "terms_")
+        self._require_fitted()
         Z = self._check_Z(Z)
         n, n_vars = Z.shape
         out = np.zeros((n, self.n_terms_, n_vars))
@@ -290,7 +298,7 @@ class TermLibrary(BaseEstimator):
         Returns ``None`` for a term that depends on them other than
         polynomially (e.g. ``sin(x)`` in ``x``); 0 for a term free of them.
         """
-        check_is_fitted(self, "terms_")
+        self._require_fitted()
         wanted = {self.variables_.index(name) for name in names}
         degrees: list[int | None] = []
         for kind in self._kinds:

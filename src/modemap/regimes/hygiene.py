@@ -40,7 +40,7 @@ def drop_small(
     notes : list of str
     """
     labels = np.asarray(labels, dtype=np.int64)
-    counts = np.bincount(labels[labels >= 0], minlength=n_regimes)
+    counts = np.bincount(labels + 1, minlength=n_regimes + 1)[1:]
     keep = np.flatnonzero(counts >= min_samples)
     notes = [
         f"regime {k} dropped: {int(counts[k])} samples < minimum {min_samples}; "

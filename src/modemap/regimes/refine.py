@@ -30,17 +30,17 @@ Econometrics 45, 1990, DOI 10.1016/0304-4076(90)90093-9.
 
 from __future__ import annotations
 
+import functools
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 from modemap._exceptions import FitError
 from modemap._progress import ProgressCallback, null_progress
 from modemap.regimes.hygiene import drop_small, enforce_min_dwell
-from modemap.regimes.summary import switch_counts
 from modemap.regimes.viterbi import viterbi_runs
 from modemap.stats import GramStats, accumulate_by_label
 
@@ -48,6 +48,7 @@ __all__ = [
     "ConvergenceRecord",
     "RefineResult",
     "fit_regimes",
+    "pair_counts",
     "path_log_prob",
     "predict_by_label",
     "refine",
@@ -57,6 +58,16 @@ __all__ = [
 ]
 
 _CHUNK = 65536
+
+
+@functools.cache
+def _blas_controller() -> ThreadpoolController:
+    return ThreadpoolController()  # scanning the loaded libraries costs ~5 ms: once
+
+
+def _one_blas_thread() -> Any:
+    """Context limiting BLAS to one thread (tall-skinny products: threads only hurt)."""
+    return _blas_controller().limit(limits=1, user_api="blas")
 
 
 @dataclass
@@ -151,9 +162,17 @@ def fit_regimes(
 
 
 def _covariances(
-    stats: Sequence[GramStats], fits: Sequence[Any], floor: np.ndarray, kind: str = "tied"
+    stats: Sequence[GramStats], fits: Sequence[Any], rel_floor: float, kind: str = "tied"
 ) -> np.ndarray:
-    """Residual covariances (K, m, m): per regime ("full") or pooled over regimes ("tied")."""
+    """Residual covariances (K, m, m): per regime ("full") or pooled over regimes ("tied").
+
+    ``rel_floor`` times each target's variance (over all labelled rows, from the statistics)
+    is added to the diagonal.
+    """
+    total = sum(stats)
+    count = max(float(total.n), 1.0)
+    mean = total.target_sum / count
+    floor = rel_floor * (np.maximum(np.diag(total.yy) / count - mean**2, 0.0) + 1e-300)
     products = [s.residual_products(np.asarray(f.coef)) for s, f in zip(stats, fits, strict=True)]
     counts = [max(float(s.n), 1.0) for s in stats]
     if kind == "tied":
@@ -173,43 +192,34 @@ def regime_log_likelihood(
 ) -> np.ndarray:
     """Gaussian log-likelihood of each sample's residual under each regime: (n, K).
 
-    The term matrix is built chunk by chunk into one buffer; for each regime only the
-    chunk's residual exists at a time.
+    The term matrix is built chunk by chunk into one buffer, and the whitened residuals of
+    all regimes for that chunk come from one matrix product.
     """
     n, m = Y.shape
     k = len(coefs)
     out = np.empty((n, k))
-    # whitening: with Sigma_k = L_k L_k', w_k = (y - theta C_k) L_k^-T = y A_k - theta B_k
+    # whitening: with Sigma_k = L_k L_k', w_k = (y - theta C_k) L_k^-T = y A_k - theta B_k;
+    # all regimes at once: [theta | y] @ [[-B_1 .. -B_K], [A_1 .. A_K]] is one (rows, K m) product
     whiten = [np.linalg.inv(np.linalg.cholesky(c)).T for c in covariances]
     consts = np.array([np.log(np.diag(w)).sum() - 0.5 * m * np.log(2 * np.pi) for w in whiten])
     b_all = [np.asarray(c, dtype=np.float64) @ w for c, w in zip(coefs, whiten, strict=True)]
-    buf = np.empty((max(min(chunk_size, n), 1), b_all[0].shape[0]))
-    with threadpool_limits(limits=1, user_api="blas"):  # tall-skinny products: threads only hurt
-        _fill_log_likelihood(library, Z, Y, whiten, b_all, consts, buf, out, chunk_size)
+    p = b_all[0].shape[0]
+    weights = np.vstack([-np.hstack(b_all), np.hstack(whiten)])  # (p + m, K m)
+    rows = max(min(chunk_size, n), 1)
+    buf = np.empty((rows, p + m))
+    white = np.empty((rows, k * m))
+    half_sum = np.kron(np.eye(k), np.full((m, 1), -0.5))  # (K m, K): -0.5 * sum of each group
+    with _one_blas_thread():
+        for start in range(0, n, chunk_size):
+            stop = min(start + chunk_size, n)
+            b, w = buf[: stop - start], white[: stop - start]
+            library.transform(Z[start:stop], out=b[:, :p])
+            b[:, p:] = Y[start:stop]
+            np.matmul(b, weights, out=w)
+            np.multiply(w, w, out=w)
+            np.matmul(w, half_sum, out=out[start:stop])  # a product: faster than a small-axis sum
+            out[start:stop] += consts
     return out
-
-
-def _fill_log_likelihood(
-    library: Any,
-    Z: np.ndarray,
-    Y: np.ndarray,
-    whiten: list[np.ndarray],
-    b_all: list[np.ndarray],
-    consts: np.ndarray,
-    buf: np.ndarray,
-    out: np.ndarray,
-    chunk_size: int,
-) -> None:
-    n, k = out.shape
-    for start in range(0, n, chunk_size):
-        stop = min(start + chunk_size, n)
-        theta = library.transform(Z[start:stop], out=buf[: stop - start])
-        y = Y[start:stop]
-        # one narrow product per regime: (rows, m) outputs stay cheap for BLAS
-        for j in range(k):
-            w = y @ whiten[j]
-            w -= theta @ b_all[j]
-            out[start:stop, j] = consts[j] - 0.5 * np.einsum("ij,ij->i", w, w)
 
 
 def _location_log_likelihood(x: np.ndarray, labels: np.ndarray, k: int) -> np.ndarray:
@@ -263,15 +273,23 @@ def transition_model(
     np.fill_diagonal(prior, sticky)
     if not learn:
         return log_start, np.log(prior)
-    runs = np.split(np.asarray(labels), np.cumsum(lengths)[:-1])
-    counts = switch_counts(runs, k).astype(np.float64)
-    stay = np.bincount(
-        np.concatenate([r[:-1][(r[:-1] == r[1:]) & (r[:-1] >= 0)] for r in runs]).astype(np.int64),
-        minlength=k,
-    )[:k]
-    counts[np.diag_indices(k)] = stay
-    trans = counts + 10.0 * prior
+    trans = pair_counts(labels, lengths, k) + 10.0 * prior
     return log_start, np.log(trans / trans.sum(axis=1, keepdims=True))
+
+
+def pair_counts(labels: np.ndarray, lengths: np.ndarray, k: int) -> np.ndarray:
+    """Counts of consecutive label pairs ``from -> to`` within runs (K x K, stays included).
+
+    Pairs with an unassigned (negative) label are skipped.
+    """
+    labels = np.asarray(labels, dtype=np.int64)
+    # codes of (from + 1, to + 1): one bincount, no masks; unassigned (-1) land in row/col 0
+    codes = (labels[:-1] + 1) * (k + 1) + labels[1:] + 1
+    flat = np.bincount(codes, minlength=(k + 1) ** 2)
+    bounds = np.cumsum(lengths)[:-1]
+    bounds = bounds[(bounds > 0) & (bounds < labels.size)]
+    np.subtract.at(flat, codes[bounds - 1], 1)  # pairs across a run boundary do not count
+    return flat.reshape(k + 1, k + 1)[1:, 1:].astype(np.float64)
 
 
 def path_log_prob(
@@ -300,7 +318,7 @@ def residuals(
     n = Y.shape[0]
     out = np.empty_like(Y, dtype=np.float64)
     buf = np.empty((max(min(chunk_size, n), 1), np.asarray(coef).shape[0]))
-    with threadpool_limits(limits=1, user_api="blas"):
+    with _one_blas_thread():
         for start in range(0, n, chunk_size):
             stop = min(start + chunk_size, n)
             theta = library.transform(Z[start:stop], out=buf[: stop - start])
@@ -322,7 +340,7 @@ def predict_by_label(
     coefs = [np.asarray(c, dtype=np.float64) for c in coefs]
     buf = np.empty((max(min(chunk_size, n), 1), coefs[0].shape[0]))
     sse = np.zeros(m)
-    with threadpool_limits(limits=1, user_api="blas"):
+    with _one_blas_thread():
         for start in range(0, n, chunk_size):
             stop = min(start + chunk_size, n)
             theta = library.transform(Z[start:stop], out=buf[: stop - start])
@@ -425,7 +443,7 @@ def refine(
         location_weight=location_weight,
         covariance=covariance,
         min_samples=max(int(min_samples), len(library.terms_) + 1),
-        floor=cov_floor * (np.var(Y, axis=0) + 1e-300),
+        floor=float(cov_floor),
     )
     Z = np.asarray(Z, dtype=np.float64)
     lengths = np.asarray(lengths, dtype=np.int64)
@@ -440,8 +458,11 @@ def refine(
     work = _Work(Z, Y, lengths, library, notes, engine, runs)
     settled = int(tol * labels.size)
     for it in range(max(1, max_iter)):
-        state = None  # release the previous scores before computing new ones (memory)
-        state = work.score(labels, k, phase_opts)
+        # keep the previous statistics (updated by the changed samples only), release the
+        # previous per-sample scores before computing new ones (memory)
+        previous = None if state is None else (state.labels, state.stats)
+        state = None
+        state = work.score(labels, k, phase_opts, previous=previous)
         labels, k = state.labels, state.k
         new, log_prob = work.decode(state)
         new = enforce_min_dwell(new, lengths, min_dwell)
@@ -458,9 +479,10 @@ def refine(
             monitor.converged = True
             break
     if not monitor.converged or monitor.changes[-1] > 0:
-        # final fits consistent with the final labels
+        # final fits consistent with the final labels (per-sample scores only if needed)
+        previous = (state.labels, state.stats)
         state = None
-        state = work.score(labels, k, opts)
+        state = work.score(labels, k, opts, emissions=False, previous=previous)
         labels, k = state.labels, state.k
         if np.any(labels < 0):
             labels, _ = work.decode(state)
@@ -493,7 +515,7 @@ class _Options:
     location_weight: float
     covariance: str
     min_samples: int
-    floor: np.ndarray
+    floor: float  # relative to each target's variance
 
 
 @dataclass
@@ -522,10 +544,33 @@ class _Work:
             runs = engine.scatter(split_runs(Z, Y, lengths))
         self.runs = runs
 
-    def score(self, labels: np.ndarray, k: int, opts: _Options) -> _State:
+    def score(
+        self,
+        labels: np.ndarray,
+        k: int,
+        opts: _Options,
+        emissions: bool = True,
+        previous: tuple[np.ndarray, list[GramStats]] | None = None,
+    ) -> _State:
+        """Fit the regimes of ``labels``.
+
+        Local path only: ``emissions=False`` skips the per-sample scores unless decoding or
+        the location term needs them; ``previous`` (labels and statistics of the last pass)
+        lets the statistics be updated from the samples whose label changed.
+        """
         if self.engine is None:
+            stats = _updated_stats(self.Z, self.Y, self.library, labels, k, opts, previous)
             return _score_labels(
-                self.Z, self.Y, self.lengths, labels, k, self.library, opts, self.notes
+                self.Z,
+                self.Y,
+                self.lengths,
+                labels,
+                k,
+                self.library,
+                opts,
+                self.notes,
+                emissions,
+                stats,
             )
         return _score_labels_engine(self, labels, k, opts)
 
@@ -536,6 +581,8 @@ class _Work:
 
     def log_prob(self, state: _State, labels: np.ndarray) -> float:
         """Joint log-probability of ``labels`` under the fits and chain of ``state``."""
+        if state.decoded is None and state.log_em is None:
+            return _stats_log_prob(state, labels, self.lengths)
         if state.decoded is None:
             return path_log_prob(
                 state.log_em, labels, self.lengths, state.log_start, state.log_trans
@@ -614,13 +661,23 @@ def _score_labels(
     library: Any,
     opts: _Options,
     notes: list[str],
+    emissions: bool = True,
+    stats: list[GramStats] | None = None,
 ) -> _State:
-    """Steps (a) and (b): drop small regimes, fit each regime, score every sample."""
-    labels, k, dropped = drop_small(labels, k, opts.min_samples)
+    """Steps (a) and (b): drop small regimes, fit each regime, score every sample.
+
+    With ``emissions=False`` the per-sample scores are left out (``log_em`` None) when no
+    sample is unassigned and there is no location term: the fits and the joint
+    log-probability of the labels then come from the statistics alone.  ``stats`` are the
+    statistics of ``labels`` if already known (valid only when no regime is dropped).
+    """
+    labels, new_k, dropped = drop_small(labels, k, opts.min_samples)
     notes += dropped
-    if k == 0:
+    if new_k == 0:
         raise FitError(f"no regime has at least {opts.min_samples} samples; use fewer regimes")
-    stats = accumulate_by_label(library, Z, Y, labels, k)
+    if stats is None or new_k != k:
+        stats = accumulate_by_label(library, Z, Y, labels, new_k)
+    k = new_k
     fits = fit_regimes(
         stats,
         list(library.terms_),
@@ -629,9 +686,73 @@ def _score_labels(
         variables=library.variables_,
     )
     covs = _covariances(stats, fits, opts.floor, opts.covariance)
+    log_start, log_trans = transition_model(labels, lengths, k, opts.sticky, opts.learn)
+    if not emissions and not opts.location_weight and not np.any(labels < 0):
+        return _State(labels, k, stats, fits, covs, None, log_start, log_trans)
     log_em = regime_log_likelihood(library, Z, Y, [f.coef for f in fits], covs)
     if opts.location_weight:
         x = Z[:, : Y.shape[1]]
         log_em += opts.location_weight * _location_log_likelihood(x, labels, k)
-    log_start, log_trans = transition_model(labels, lengths, k, opts.sticky, opts.learn)
     return _State(labels, k, stats, fits, covs, log_em, log_start, log_trans)
+
+
+#: Update the statistics from the changed samples when fewer than this share changed (each
+#: changed sample is accumulated twice, out of its old regime and into its new one).
+_UPDATE_SHARE = 0.25
+
+
+def _updated_stats(
+    Z: np.ndarray,
+    Y: np.ndarray,
+    library: Any,
+    labels: np.ndarray,
+    k: int,
+    opts: _Options,
+    previous: tuple[np.ndarray, list[GramStats]] | None,
+) -> list[GramStats] | None:
+    """Statistics of ``labels`` as the previous ones minus and plus the changed samples.
+
+    None (compute afresh) without a previous pass, when the number of regimes differs, when a
+    regime would be dropped, or when too many samples changed.  The statistics are sums, so
+    the update equals a fresh pass up to round-off.
+    """
+    if previous is None:
+        return None
+    old_labels, old_stats = previous
+    if len(old_stats) != k or old_labels.shape != labels.shape:
+        return None
+    counts = np.bincount(labels + 1, minlength=k + 1)[1:]
+    if k == 0 or counts.min() < opts.min_samples:
+        return None  # drop_small will renumber the regimes
+    changed = np.flatnonzero(old_labels != labels)
+    if changed.size > _UPDATE_SHARE * labels.size:
+        return None
+    if changed.size == 0:
+        return list(old_stats)
+    z, y = Z[changed], Y[changed]
+    leaving = accumulate_by_label(library, z, y, old_labels[changed], k)
+    joining = accumulate_by_label(library, z, y, labels[changed], k)
+    return [s - a + b for s, a, b in zip(old_stats, leaving, joining, strict=True)]
+
+
+def _stats_log_prob(state: _State, labels: np.ndarray, lengths: np.ndarray) -> float:
+    """Joint log-probability of ``labels`` from the statistics: equals :func:`path_log_prob`
+    on the Gaussian residual scores (without a location term), at O(K) cost.
+
+    Per regime, the sum over its samples of log N(r; 0, S) is
+    ``-0.5 tr(S^-1 R) - 0.5 n (m log 2 pi + log det S)`` with ``R`` the residual products.
+    """
+    total = 0.0
+    for stats, fit, cov in zip(state.stats, state.fits, state.covs, strict=True):
+        m = cov.shape[0]
+        chol = np.linalg.cholesky(cov)
+        products = stats.residual_products(np.asarray(fit.coef))
+        inv_chol = np.linalg.inv(chol)
+        quad = float(np.trace(inv_chol @ products @ inv_chol.T))
+        logdet = 2.0 * float(np.log(np.diag(chol)).sum())
+        total += -0.5 * quad - 0.5 * float(stats.n) * (m * np.log(2.0 * np.pi) + logdet)
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
+    starts = starts[starts < labels.size]
+    total += float(state.log_start[labels[starts]].sum())
+    counts = pair_counts(labels, lengths, state.k)
+    return total + float(np.where(counts > 0, counts * state.log_trans, 0.0).sum())

@@ -20,7 +20,8 @@ The held-out tails are labelled by Viterbi with the trained models and chain; th
 one-step prediction under the decoded regime is divided, state by state, by the standard
 deviation of that state's target on the held-out part, and the root mean square over samples
 and states is reported as ``holdout_rmse``.  The K with the smallest BIC is chosen (the
-smaller K on a tie); the held-out error is reported beside it, not used to choose.
+smaller K on a tie, round-off included); the held-out error is reported beside it, not used
+to choose.
 """
 
 from __future__ import annotations
@@ -157,5 +158,9 @@ def select_regimes(
         raise FitError("no number of regimes could be fitted")
     table = pd.DataFrame(rows)
     table["chosen"] = False
-    table.loc[int(np.nanargmin(table["bic"].to_numpy())), "chosen"] = True
+    bic = table["bic"].to_numpy()
+    # the smaller K on a tie, round-off included (1e-9 of the criterion's size): two K that
+    # end with the same regimes can differ in the last digits through their iteration history
+    tie = 1e-9 * max(float(np.nanmax(np.abs(bic))), 1.0)
+    table.loc[int(np.flatnonzero(bic <= np.nanmin(bic) + tie)[0]), "chosen"] = True
     return table, results
