@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from modemap import intake
+from modemap import tables
 from modemap._exceptions import DataError, FitError
 from modemap.engine import (
     DaskEngine,
@@ -331,7 +331,7 @@ def test_parquet_read_by_row_groups_equals_whole_file(tmp_path: Path, monkeypatc
     assert pq.ParquetFile(path).metadata.num_row_groups == 6  # 90 rows / 16 (pyarrow)
     options = {"time": "t", "states": ["x"], "inputs": ["u"], "run": "run"}
     whole = read_data(path, **options)
-    monkeypatch.setattr(intake, "LARGE_PARQUET_ROWS", 10)
+    monkeypatch.setattr(tables, "LARGE_PARQUET_ROWS", 10)
     pieces = read_data(path, **options)
     _same_dataset(whole, pieces)
     assert whole.units["t"] == "s"
@@ -342,7 +342,7 @@ def test_parquet_by_row_groups_reports_missing_values_by_row(tmp_path: Path, mon
     frame.loc[40, "x"] = np.nan
     path = tmp_path / "gap.parquet"
     frame.to_parquet(path, row_group_size=16)
-    monkeypatch.setattr(intake, "LARGE_PARQUET_ROWS", 10)
+    monkeypatch.setattr(tables, "LARGE_PARQUET_ROWS", 10)
     with pytest.raises(DataError, match=r"column 'x': empty or NaN cell at row index 40"):
         read_data(path, time="t", states=["x"], inputs=["u"], run="run")
 
@@ -352,8 +352,8 @@ def test_large_csv_read_in_chunks_equals_one_read(tmp_path: Path, monkeypatch) -
     _frame().to_csv(path, index=False)
     options = {"time": "t", "states": ["x"], "inputs": ["u"], "run": "run"}
     whole = read_data(path, **options)
-    monkeypatch.setattr(intake, "LARGE_FILE_BYTES", 0)
-    monkeypatch.setattr(intake, "CSV_CHUNK_ROWS", 7)
+    monkeypatch.setattr(tables, "LARGE_FILE_BYTES", 0)
+    monkeypatch.setattr(tables, "CSV_CHUNK_ROWS", 7)
     _same_dataset(whole, read_data(path, **options))
 
 
@@ -362,8 +362,8 @@ def test_chunked_csv_error_names_the_line_of_the_file(tmp_path: Path, monkeypatc
     frame.loc[50, "x"] = "oops"
     path = tmp_path / "bad.csv"
     frame.to_csv(path, index=False)
-    monkeypatch.setattr(intake, "LARGE_FILE_BYTES", 0)
-    monkeypatch.setattr(intake, "CSV_CHUNK_ROWS", 7)
+    monkeypatch.setattr(tables, "LARGE_FILE_BYTES", 0)
+    monkeypatch.setattr(tables, "CSV_CHUNK_ROWS", 7)
     # data row 50 (0-based) is line 52 of the file: header on line 1 (text-editor numbering)
     with pytest.raises(DataError, match=r"column 'x', row 52: non-numeric value 'oops'"):
         read_data(path, time="t", states=["x"], inputs=["u"], run="run")

@@ -40,352 +40,37 @@ one of them (another column of the same name would make the choice ambiguous).
 from __future__ import annotations
 
 import itertools
-import os
-import re
 import warnings
 from collections.abc import Sequence
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
 from modemap._exceptions import DataError
 from modemap.dataset import Dataset, Gap, Run
+from modemap.tables import Source, Table, first_rows, load_columns, open_tables, parse_header
 
 __all__ = [
-    "CSV_CHUNK_ROWS",
-    "CSV_SUFFIXES",
     "IRREGULAR_TOLERANCE",
-    "LARGE_FILE_BYTES",
-    "LARGE_PARQUET_ROWS",
-    "PARQUET_SUFFIXES",
     "parse_header",
     "peek_columns",
     "read_data",
     "summarize",
 ]
 
-CSV_SUFFIXES = (".csv", ".csv.gz")
-PARQUET_SUFFIXES = (".parquet", ".pq")
 IRREGULAR_TOLERANCE = 0.01
 """Relative spread of the time step ((max - min) / median) above which sampling is irregular."""
-LARGE_FILE_BYTES = 200 * 1024**2
-"""Files larger than this are read in pieces: CSV in chunks, Parquet by row groups."""
-LARGE_PARQUET_ROWS = 2_000_000
-"""Parquet files with at least this many rows (and several row groups) are read by row group."""
-CSV_CHUNK_ROWS = 1_000_000
-"""Rows per chunk when a large CSV is read in pieces."""
 
-_DATAFRAME = "<DataFrame>"
-_HEADER = re.compile(r"^\s*(?P<name>.*?)\s*\[(?P<unit>[^\[\]]*)\]\s*$")
 _LIST_AT_MOST = 12
 
-Source = str | os.PathLike | pd.DataFrame | Sequence[str | os.PathLike]
-
-
-def parse_header(header: str) -> tuple[str, str]:
-    """Split a column header ``"name [unit]"`` into ``(name, unit)``.
-
-    Parameters
-    ----------
-    header : str
-        Header text.  Without a bracketed unit the unit is ``""``.
-
-    Returns
-    -------
-    name, unit : str
-        Both stripped of surrounding blanks.
-
-    Examples
-    --------
-    >>> parse_header("T [degC]")
-    ('T', 'degC')
-    >>> parse_header("flow")
-    ('flow', '')
-    """
-    match = _HEADER.match(header)
-    if match and match.group("name"):
-        return match.group("name"), match.group("unit").strip()
-    return header.strip(), ""
-
-
-# --------------------------------------------------------------------------- tables
-
-
-@dataclass
-class _Table:
-    """One source of rows (a file or a DataFrame) while it is being read."""
-
-    label: str
-    stem: str
-    kind: str  # "csv", "parquet" or "frame"
-    headers: list[str]
-    path: Path | None = None
-    frame: pd.DataFrame | None = None
-    encoding: str = "utf-8-sig"
-
-    @property
-    def positional(self) -> bool:
-        return self.kind != "csv"
-
-    def at(self, pos: int) -> str:
-        """Where data row ``pos`` (0-based) is, in the words a user understands."""
-        return f"row index {pos}" if self.positional else f"row {pos + 2}"
-
-    def error(self, message: str, column: str | None = None, pos: int | None = None) -> DataError:
-        """A :class:`DataError` naming this source, ``column`` and data row ``pos``."""
-        if column is not None:  # keep messages on one line even for odd quoted headers
-            column = column.replace("\r", "\\r").replace("\n", "\\n")
-        if pos is None:
-            return DataError(message, source=self.label, column=column)
-        if self.positional:
-            return DataError(f"{message} at {self.at(pos)}", source=self.label, column=column)
-        return DataError(message, source=self.label, column=column, row=int(pos) + 2)
+# --------------------------------------------------------------------------- columns
 
 
 def _abbreviate(names: Sequence[str]) -> str:
     shown = ", ".join(repr(n) for n in names[:_LIST_AT_MOST])
     more = len(names) - _LIST_AT_MOST
     return f"{shown}, ... ({more} more)" if more > 0 else (shown or "(none)")
-
-
-def _suffix_kind(path: Path) -> str | None:
-    name = path.name.lower()
-    if name.endswith(CSV_SUFFIXES):
-        return "csv"
-    if name.endswith(PARQUET_SUFFIXES):
-        return "parquet"
-    return None
-
-
-def _stem(path: Path) -> str:
-    name = path.name
-    for suffix in CSV_SUFFIXES + PARQUET_SUFFIXES:
-        if name.lower().endswith(suffix):
-            return name[: -len(suffix)] or name
-    return path.stem
-
-
-def _open_file(item: str | os.PathLike) -> _Table:
-    path = Path(item)
-    label = str(item)
-    kind = _suffix_kind(path)
-    if kind is None:
-        allowed = ", ".join(CSV_SUFFIXES + PARQUET_SUFFIXES)
-        raise DataError(f"unknown file type (expected one of {allowed})", source=label)
-    if not path.exists():
-        raise DataError("file not found", source=label)
-    if not path.is_file():
-        raise DataError("not a regular file", source=label)
-    table = _Table(label=label, stem=_stem(path), kind=kind, headers=[], path=path)
-    table.headers = _csv_headers(table) if kind == "csv" else _parquet_headers(table)
-    return table
-
-
-def _open_frame(frame: pd.DataFrame, time: str | None) -> _Table:
-    if _index_is_time(frame, time):
-        frame = frame.reset_index()
-    headers = [str(c) for c in frame.columns]
-    return _Table(label=_DATAFRAME, stem="0", kind="frame", headers=headers, frame=frame)
-
-
-def _index_is_time(frame: pd.DataFrame, time: str | None) -> bool:
-    """True when the index holds the time column (named like it and not a column)."""
-    name = frame.index.name
-    if name is None or time is None:
-        return False
-    wanted = {time.strip(), parse_header(time)[0]}
-    columns = {parse_header(str(c))[0] for c in frame.columns} | {str(c) for c in frame.columns}
-    named = str(name) in wanted or parse_header(str(name))[0] in wanted
-    return named and not (columns & wanted)
-
-
-def _tables(source: Source, time: str | None) -> tuple[list[_Table], bool]:
-    """Open every source; the flag tells whether run names come from file stems."""
-    if isinstance(source, pd.DataFrame):
-        return [_open_frame(source, time)], False
-    if isinstance(source, str | os.PathLike):
-        return [_open_file(source)], False
-    if isinstance(source, Sequence) and not isinstance(source, bytes):
-        if len(source) == 0:
-            raise DataError("no data files given")
-        tables = [_open_file(item) for item in source]
-        _unique_stems(tables)
-        return tables, True
-    raise DataError(
-        f"cannot read data from a {type(source).__name__}; give a file path or DataFrame"
-    )
-
-
-def _unique_stems(tables: list[_Table]) -> None:
-    seen: dict[str, int] = {}
-    for table in tables:
-        count = seen.get(table.stem, 0) + 1
-        seen[table.stem] = count
-        if count > 1:
-            table.stem = f"{table.stem}-{count}"
-
-
-# --------------------------------------------------------------------------- file readers
-
-
-def _read_csv(table: _Table, **options) -> pd.DataFrame:
-    """``pandas.read_csv`` (C engine) with its failures translated into :class:`DataError`."""
-    for encoding in dict.fromkeys((table.encoding, "latin-1")):
-        try:
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                frame = pd.read_csv(table.path, engine="c", encoding=encoding, **options)
-            table.encoding = encoding
-            return frame
-        except UnicodeDecodeError:
-            continue
-        except pd.errors.EmptyDataError:
-            raise table.error("the file is empty") from None
-        except (pd.errors.ParserError, ValueError, OverflowError, IndexError) as exc:
-            raise table.error(f"cannot parse as CSV: {_one_line(exc)}") from None
-        except OSError as exc:
-            raise table.error(f"cannot read the file: {exc.strerror or exc}") from None
-    raise table.error("cannot decode the file as text")  # pragma: no cover - latin-1 decodes all
-
-
-def _one_line(exc: BaseException) -> str:
-    return " ".join(str(exc).split()) or type(exc).__name__
-
-
-def _csv_headers(table: _Table) -> list[str]:
-    head = _read_csv(
-        table, header=None, nrows=1, dtype=str, keep_default_na=False, skip_blank_lines=False
-    )
-    if head.shape[0] == 0:
-        raise table.error("the file is empty")
-    return [str(h) for h in head.iloc[0].tolist()]
-
-
-def _parquet_headers(table: _Table) -> list[str]:
-    import pyarrow.parquet as pq
-
-    try:
-        schema = pq.read_schema(table.path)
-    except Exception as exc:  # pyarrow raises several unrelated types for bad files
-        raise table.error(f"not a readable Parquet file: {_one_line(exc)}") from None
-    return [str(n) for n in schema.names]
-
-
-def _load(table: _Table, positions: list[int]) -> pd.DataFrame:
-    """The requested columns (by header position), positional row index, raw dtypes."""
-    if table.kind == "frame":
-        frame = table.frame.iloc[:, positions]
-    elif table.kind == "parquet":
-        frame = _load_parquet(table, positions)
-    else:
-        options = {"header": 0, "usecols": positions, "index_col": False}
-        if _is_large(table.path):
-            frame = _read_csv_chunked(table, **options)
-        else:
-            frame = _read_csv(table, skip_blank_lines=False, **options)
-        frame = frame.iloc[:, np.argsort(np.argsort(positions))]  # usecols returns file order
-        frame = _drop_trailing_blank(frame)
-    frame = frame.reset_index(drop=True)
-    frame.columns = range(frame.shape[1])
-    return frame
-
-
-def _is_large(path: Path | None) -> bool:
-    """True for files worth reading piece by piece (see :data:`LARGE_FILE_BYTES`)."""
-    try:
-        return path is not None and path.stat().st_size > LARGE_FILE_BYTES
-    except OSError:
-        return False
-
-
-def _read_csv_chunked(table: _Table, **options) -> pd.DataFrame:
-    """A large CSV read :data:`CSV_CHUNK_ROWS` rows at a time, then joined.
-
-    The parser works on one chunk at a time instead of the whole file; blank lines are kept
-    (as empty rows), so row numbers in messages still match the lines of the file.
-    """
-    for attempt in range(2):
-        reader = _read_csv(table, chunksize=CSV_CHUNK_ROWS, skip_blank_lines=False, **options)
-        try:
-            with reader:
-                chunks = list(reader)
-            break
-        except UnicodeDecodeError:
-            if attempt or table.encoding == "latin-1":
-                raise table.error("cannot decode the file as text") from None
-            table.encoding = "latin-1"
-        except (pd.errors.ParserError, ValueError, OverflowError, IndexError) as exc:
-            raise table.error(f"cannot parse as CSV: {_one_line(exc)}") from None
-    if not chunks:
-        raise table.error("no data rows (only a header)")
-    return pd.concat(chunks, ignore_index=True)
-
-
-def _load_parquet(table: _Table, positions: list[int]) -> pd.DataFrame:
-    columns = [table.headers[p] for p in positions]
-    try:
-        import pyarrow.parquet as pq
-
-        with pq.ParquetFile(table.path) as handle:
-            if handle.metadata.num_row_groups > 1 and (
-                handle.metadata.num_rows >= LARGE_PARQUET_ROWS or _is_large(table.path)
-            ):
-                return _parquet_by_row_groups(handle, columns)
-        frame = pd.read_parquet(table.path, columns=columns)
-    except Exception as exc:  # pyarrow raises several unrelated types for bad files
-        raise table.error(f"not a readable Parquet file: {_one_line(exc)}") from None
-    return frame
-
-
-def _parquet_by_row_groups(handle, columns: list[str]) -> pd.DataFrame:
-    """Columns read one row group at a time; numeric ones land in preallocated arrays.
-
-    Peak memory is the final columns plus one row group, instead of the whole Arrow table
-    next to its pandas copy.  Other columns (text, time stamps) are converted per row group
-    and joined.
-    """
-    import pyarrow as pa
-
-    n = handle.metadata.num_rows
-    schema = handle.schema_arrow
-    numeric = {
-        c: schema.field(c).type.to_pandas_dtype()
-        for c in columns
-        if pa.types.is_integer(schema.field(c).type) or pa.types.is_floating(schema.field(c).type)
-    }
-    arrays = {c: np.empty(n, dtype=dtype) for c, dtype in numeric.items()}
-    others: dict[str, list[pd.Series]] = {c: [] for c in columns if c not in numeric}
-    start = 0
-    for i in range(handle.metadata.num_row_groups):
-        group = handle.read_row_group(i, columns=columns)
-        stop = start + group.num_rows
-        for c in columns:
-            col = group.column(c)
-            if c in arrays and col.null_count == 0:
-                arrays[c][start:stop] = col.to_numpy()
-            elif c in arrays:  # missing values: keep them as NaN (reported by validation)
-                arrays[c] = arrays[c].astype(np.float64, copy=False)
-                arrays[c][start:stop] = col.to_pandas().to_numpy(np.float64, na_value=np.nan)
-            else:
-                others[c].append(col.to_pandas())
-        start = stop
-    data = {
-        c: arrays[c] if c in arrays else pd.concat(others[c], ignore_index=True) for c in columns
-    }
-    return pd.DataFrame(data, columns=columns, copy=False)
-
-
-def _drop_trailing_blank(frame: pd.DataFrame) -> pd.DataFrame:
-    if frame.shape[0] == 0:
-        return frame
-    filled = np.flatnonzero(frame.notna().any(axis=1).to_numpy())
-    last = filled[-1] + 1 if filled.size else 0
-    return frame.iloc[:last]
-
-
-# --------------------------------------------------------------------------- columns
 
 
 @dataclass(frozen=True)
@@ -430,7 +115,7 @@ def _make_spec(time, states, inputs, run) -> _Spec:
     return spec
 
 
-def _resolve(table: _Table, requested: str) -> int:
+def _resolve(table: Table, requested: str) -> int:
     """Position of the header the user means by ``requested`` (bare name or full header)."""
     want = requested.strip()
     hits = [i for i, h in enumerate(table.headers) if h.strip() == want]
@@ -455,7 +140,7 @@ def _separator_hint(headers: list[str]) -> str:
     return ""
 
 
-def _positions(table: _Table, spec: _Spec) -> list[int]:
+def _positions(table: Table, spec: _Spec) -> list[int]:
     positions: list[int] = []
     roles: dict[int, tuple[str, str]] = {}
     for role, name in spec.all:
@@ -479,7 +164,7 @@ def _first(mask: np.ndarray) -> int:
 
 
 def _numbers(
-    table: _Table, series: pd.Series, header: str, is_time: bool
+    table: Table, series: pd.Series, header: str, is_time: bool
 ) -> tuple[np.ndarray, bool]:
     """Float values of one column; True as second item when converted from date-times."""
     dtype = series.dtype
@@ -496,7 +181,7 @@ def _numbers(
     return _parse_text(table, series, header, is_time)
 
 
-def _parse_text(table: _Table, series: pd.Series, header: str, is_time: bool):
+def _parse_text(table: Table, series: pd.Series, header: str, is_time: bool):
     raw = series.astype(object)
     present = raw.notna().to_numpy()
     text_ok = np.ones(int(present.sum()), dtype=bool)
@@ -519,7 +204,7 @@ def _parse_text(table: _Table, series: pd.Series, header: str, is_time: bool):
     raise _non_numeric(table, series, header, _first(bad))
 
 
-def _non_numeric(table: _Table, series: pd.Series, header: str, pos: int) -> DataError:
+def _non_numeric(table: Table, series: pd.Series, header: str, pos: int) -> DataError:
     value = series.iloc[pos]
     shown = repr(value if isinstance(value, str) else str(value))
     if len(shown) > 40:
@@ -549,7 +234,7 @@ def _seconds(stamps: pd.Series) -> np.ndarray:
     )
 
 
-def _check_finite(table: _Table, values: np.ndarray, raw: pd.Series, header: str) -> None:
+def _check_finite(table: Table, values: np.ndarray, raw: pd.Series, header: str) -> None:
     bad = ~np.isfinite(values)
     if bad.any():
         pos = _first(bad)
@@ -558,7 +243,7 @@ def _check_finite(table: _Table, values: np.ndarray, raw: pd.Series, header: str
         raise table.error(what, column=header, pos=pos)
 
 
-def _run_ids(table: _Table, series: pd.Series, header: str) -> tuple[np.ndarray, list[str]]:
+def _run_ids(table: Table, series: pd.Series, header: str) -> tuple[np.ndarray, list[str]]:
     missing = series.isna().to_numpy()
     if missing.any():
         raise table.error("empty run id", column=header, pos=_first(missing))
@@ -584,7 +269,7 @@ class _Piece:
     time: np.ndarray
     values: np.ndarray  # (n, n_states + n_inputs)
     index: np.ndarray
-    table: _Table
+    table: Table
     pos: np.ndarray  # data-row positions in the table, for messages
 
 
@@ -620,7 +305,7 @@ def _group_rows(codes: np.ndarray, n_groups: int) -> list[np.ndarray]:
     return np.split(order, bounds)
 
 
-def _origin(table: _Table, label: str, stems: bool, has_run: bool) -> str:
+def _origin(table: Table, label: str, stems: bool, has_run: bool) -> str:
     if stems:
         return f"{table.stem}/{label}" if has_run else table.stem
     return label
@@ -796,12 +481,12 @@ def read_data(
     """
     spec = _make_spec(time, states, inputs, run)
     _check_options(max_gap, min_samples)
-    tables, stems = _tables(source, spec.time)
+    tables, stems = open_tables(source, spec.time)
     pieces, units, notes, gaps, n_rows = [], {}, [], [], 0
     for table in tables:
         positions = _positions(table, spec)
         headers = [table.headers[p] for p in positions]
-        frame = _load(table, positions)
+        frame = load_columns(table, positions)
         if frame.shape[0] == 0:
             raise table.error("no data rows (only a header)")
         found, dates = _table_pieces(table, frame, spec, headers, n_rows, stems, min_samples)
@@ -841,11 +526,11 @@ def _check_options(max_gap: float, min_samples: int) -> None:
         raise DataError(f"min_samples must be an integer of at least 2, got {min_samples!r}")
 
 
-def _label(tables: list[_Table]) -> str:
+def _label(tables: list[Table]) -> str:
     return ", ".join(t.label for t in tables)
 
 
-def _merge_units(units: dict, table: _Table, spec: _Spec, headers: list[str], dates: bool) -> None:
+def _merge_units(units: dict, table: Table, spec: _Spec, headers: list[str], dates: bool) -> None:
     for j, (_, _requested) in enumerate(spec.numeric):
         name, unit = parse_header(headers[j])
         if j == 0 and dates:
@@ -872,13 +557,8 @@ def peek_columns(source: Source, nrows: int = 200) -> list[tuple[str, bool]]:
     list of (header, numeric) tuples
         Date-time columns count as numeric (they can serve as time).
     """
-    table = _tables(source, None)[0][0]
-    if table.kind == "frame":
-        frame = table.frame
-    elif table.kind == "parquet":
-        frame = _load_parquet(table, list(range(len(table.headers)))).head(nrows)
-    else:
-        frame = _read_csv(table, header=0, nrows=nrows, index_col=False, low_memory=False)
+    table = open_tables(source, None)[0][0]
+    frame = first_rows(table, nrows)
     if frame.shape[0] == 0:
         raise table.error("no data rows (only a header)")
     out = []
