@@ -50,6 +50,7 @@ from modemap.regimes.selection import (
 )
 from modemap.regimes.summary import statistics
 from modemap.regimes.viterbi import viterbi_runs
+from modemap.regimes.windows import window_coefficients, window_lengths
 from modemap.stats import accumulate
 
 __all__ = ["RegimeFinder"]
@@ -308,24 +309,31 @@ class RegimeFinder(BaseEstimator):
     ) -> RefineResult:
         """Proposals then refinement for one number of regimes; the best likelihood wins.
 
-        Two proposals are refined: the HMM on ``[states, motion, inputs]`` and the HMM on the
+        Three proposals are refined: the HMM on ``[states, motion, inputs]``, the HMM on the
         residuals of one model fitted to all rows (regimes that differ by their dynamics show
-        up there even where the states overlap).
+        up there even where the states overlap), and the HMM over the coefficients of local
+        models fitted on short windows of rows (:mod:`.windows`: regimes that differ only in
+        their dynamics, where the first two can settle on a split by level).
         """
         progress(0.0, f"proposing {k} regime(s)")
-        starts = [self._features(Z, Y)]
+        starts = [(self._features(Z, Y), lengths, None)]
         if k > 1:
-            starts.append(self._global_residuals(Z, Y))
+            starts.append((self._global_residuals(Z, Y), lengths, None))
+            per_run, sizes = window_lengths(lengths, self._window())
+            coef = window_coefficients(self._library_fitted, Z, Y, sizes)
+            starts.append((coef, per_run, sizes))
         best = None
-        for i, features in enumerate(starts):
+        for i, (features, runs, sizes) in enumerate(starts):
             labels = propose(
                 features,
-                lengths,
+                runs,
                 k,
                 sticky=float(self.sticky),
                 n_restarts=int(self.n_restarts),
                 seed=int(self.seed),
             )
+            if sizes is not None:  # one label per window -> one per row
+                labels = np.repeat(labels, sizes)
             step = scaled(progress, i / len(starts), (i + 1) / len(starts))
             result = self._refine(Z, Y, lengths, labels, k, step)
             if best is None or result.loglik > best.loglik:
@@ -511,6 +519,10 @@ class RegimeFinder(BaseEstimator):
         if cached is None or cached[0] is not Z or cached[1] is not Y:
             self._scattered = cached = (Z, Y, self._engine.scatter(split_runs(Z, Y, lengths)))
         return cached[2]
+
+    def _window(self) -> int:
+        """Rows per window of the local-model proposal: four per term, at least 12."""
+        return max(12, 4 * int(self._library_fitted.n_terms_))
 
     def _global_residuals(self, Z: np.ndarray, Y: np.ndarray) -> np.ndarray:
         """Residuals of a single model fitted to all rows (a dynamics-aware feature)."""
