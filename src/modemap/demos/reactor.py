@@ -7,13 +7,15 @@ Arrhenius kinetics.  Mass and energy balances of a continuous stirred tank
     dC_A/dt = q/V (C_Af - C_A) - k0 exp(-E_R / T) C_A
     dT/dt   = q/V (T_f - T) + (-dH)/(rho c_p) k0 exp(-E_R / T) C_A - UA/(V rho c_p) (T - Tc)
 
-For coolant temperatures Tc between about 292 K and 309 K there are three steady
+For coolant temperatures Tc between about 292 K and 307 K there are three steady
 states: a low-conversion one and a high-conversion one (both stable) and an
-unstable saddle between them (from about 283 K to 292 K the high-conversion
-state exists but is an unstable focus; no level in that band is used).  The
-coolant temperature is stepped between levels inside and outside that window,
-so the reactor ignites and extinguishes (the ignition transient overshoots to
-about 550 K: the adiabatic temperature rise is -dH C_Af / (rho c_p) = 293 K).  The
+unstable saddle between them; below the window only the low-conversion state
+exists, above it only the high-conversion one.  The plant log is dominated by
+steady operation inside the window (long holds, mostly at the nominal 300 K),
+with brief coolant excursions below or above it that extinguish or ignite the
+reactor.  The adiabatic temperature rise -dH C_Af / (rho c_p) is a moderate
+80 K and the jacket removes heat slowly (UA/(V rho c_p) = 0.21 1/min), so the
+ignition overshoots the high branch by a few kelvin only (to about 383 K).  The
 true model is not polynomial (it contains exp(-E_R/T)); the truth sidecar also
 gives each regime's linearisation at its stable steady state (affine terms).
 """
@@ -38,18 +40,22 @@ PARAMS: dict[str, float] = {
     "q": 100.0,  # L/min feed
     "V": 100.0,  # L
     "C_Af": 1.0,  # mol/L feed concentration
-    "T_f": 320.0,  # K feed temperature
+    "T_f": 321.0,  # K feed temperature
     "k0": 7.2e10,  # 1/min
     "E_R": 8750.0,  # K (activation energy / gas constant)
-    "dH": -7.0e4,  # J/mol (exothermic)
+    "dH": -1.912e4,  # J/mol (exothermic; adiabatic rise -dH C_Af / rho_cp = 80 K)
     "rho_cp": 239.0,  # J/(L K)
-    "UA": 5.0e4,  # J/(min K)
+    "UA": 5.0e3,  # J/(min K)
 }
 TC_NOMINAL = 300.0
-TC_LEVELS = (276.0, 296.0, 300.0, 305.0, 312.0)  # K; 276 and 312 lie outside the bistable window
+TC_LEVELS = (276.0, 296.0, 300.0, 304.0, 320.0)  # K; 276 and 320 lie outside the bistable window
 X_SPLIT = 0.5  # conversion separating the two regimes
 _STEP_MIN = 0.05
-_DURATION_MIN = 90.0
+_DURATION_MIN = 200.0
+_FIRST_HOLD_MIN = (15.0, 20.0)  # start-up hold at the nominal level
+_HOLD_MIN = (25.0, 35.0)  # steady operation at the nominal level
+_SIDE_HOLD_MIN = (14.0, 20.0)  # steady operation at a neighbouring level inside the window
+_EXCURSION_MIN = (6.5, 7.9)  # brief excursion outside it: ignites or extinguishes
 _DEFAULT_RUNS = 4
 _NOISE_STD = {"C_A": 0.003, "T": 0.2}
 TIME = column("t", "min")
@@ -134,27 +140,31 @@ def _describe(x: np.ndarray, p: dict[str, float]) -> dict[str, Any]:
     }
 
 
-def _tc_schedule(rng: np.random.Generator, t: np.ndarray) -> np.ndarray:
-    """Coolant level per sample: holds of 10-18 min alternating inside / outside the window.
+def _tc_schedule(rng: np.random.Generator, t: np.ndarray, high_first: bool) -> np.ndarray:
+    """Coolant level per sample: long holds inside the window, brief excursions outside.
 
-    Outside holds alternate between the coldest and the hottest level (random
-    first), so every run both ignites and extinguishes; inside holds are drawn
-    from the bistable levels and show that the branch depends on history.
+    A start-up hold at the nominal level, then cycles of: a brief excursion to the
+    coldest or the hottest level (alternating; the first one leaves the starting
+    branch, cold from the high branch, hot from the low one, so every excursion
+    extinguishes or ignites the reactor), a long hold at the nominal level and a
+    shorter one at a neighbouring level inside the window.  Steady operation on
+    either branch dominates the log, mostly at the nominal level, and holds at the
+    same level on both branches show that the branch depends on history.
     """
-    inside = [v for v in TC_LEVELS[1:-1] if v != TC_NOMINAL] + [TC_NOMINAL]
-    extreme = int(rng.integers(2))
-    tc = np.empty(t.size)
-    i, level, hold_index = 0, TC_NOMINAL, 0
+    sides = [v for v in TC_LEVELS[1:-1] if v != TC_NOMINAL]
+    extreme = 0 if high_first else 1
+    tc = np.full(t.size, TC_NOMINAL)
+    i = round(rng.uniform(*_FIRST_HOLD_MIN) / _STEP_MIN)
     while i < t.size:
-        hold = round(rng.uniform(10.0, 18.0) / _STEP_MIN)
-        tc[i : i + hold] = level
-        i += hold
-        hold_index += 1
-        if hold_index % 2:
-            level = (TC_LEVELS[0], TC_LEVELS[-1])[extreme]
-            extreme = 1 - extreme
-        else:
-            level = float(rng.choice(inside))
+        for level, span in (
+            ((TC_LEVELS[0], TC_LEVELS[-1])[extreme], _EXCURSION_MIN),
+            (TC_NOMINAL, _HOLD_MIN),
+            (float(rng.choice(sides)), _SIDE_HOLD_MIN),
+        ):
+            hold = round(rng.uniform(*span) / _STEP_MIN)
+            tc[i : i + hold] = level
+            i += hold
+        extreme = 1 - extreme
     return tc
 
 
@@ -165,6 +175,9 @@ def _integrate(x0: np.ndarray, t: np.ndarray, tc: np.ndarray) -> np.ndarray:
     x = np.asarray(x0, dtype=float)
     for lo, hi in itertools.pairwise(edges):
         end = t[hi] if hi < t.size else t[-1]
+        if end <= t[lo]:  # a last hold of one sample: nothing to integrate
+            out[lo:hi] = x
+            continue
         sol = solve_ivp(
             lambda _s, y, level=tc[lo]: rhs(y, level),
             (t[lo], end),
@@ -203,8 +216,8 @@ def simulate(
     nominal = steady_states(TC_NOMINAL)
     frames, run_truth = [], []
     for r in range(1, runs + 1):
-        tc = _tc_schedule(rng, t)
         start = nominal[0] if r % 2 else nominal[-1]  # alternate the starting branch
+        tc = _tc_schedule(rng, t, high_first=not r % 2)
         x0 = np.array([start["C_A"], start["T"]]) * (1.0 + 0.01 * rng.standard_normal(2))
         x = _integrate(x0, t, tc)
         label = (1.0 - x[:, 0] / PARAMS["C_Af"] > X_SPLIT).astype(np.int64)
@@ -270,8 +283,9 @@ def _truth(
         "note": INVENTED_NOTE,
         "description": (
             "Fictional 100 L jacketed pilot-plant CSTR, first-order exothermic A -> B with "
-            "Arrhenius kinetics; coolant temperature stepped across a bistable window so the "
-            "reactor ignites (high conversion) and extinguishes (low conversion)."
+            "Arrhenius kinetics; long holds of the coolant temperature inside a bistable "
+            "window with brief excursions outside it, so the reactor ignites (high "
+            "conversion) and extinguishes (low conversion) and steady operation dominates."
         ),
         "form": "continuous",
         "time": {"column": TIME, "name": "t", "unit": "min", "step": _STEP_MIN},
@@ -314,13 +328,23 @@ def _truth(
             "rho_cp": "J/(L*K)",
             "UA": "J/(min*K)",
         },
-        "inputs_profile": f"Tc held 10-18 min (uniform) at levels {list(TC_LEVELS)} K, "
-        "each hold at a level different from the previous; first hold at the nominal 300 K.",
+        "inputs_profile": f"Tc levels {list(TC_LEVELS)} K: a start-up hold at the nominal "
+        f"{TC_NOMINAL:g} K ({_span(_FIRST_HOLD_MIN)} min), then cycles of an excursion to "
+        f"{TC_LEVELS[0]:g} or {TC_LEVELS[-1]:g} K ({_span(_EXCURSION_MIN)} min; the first one "
+        "leaves the starting branch, then they alternate, so each extinguishes or ignites), "
+        f"a hold at {TC_NOMINAL:g} K ({_span(_HOLD_MIN)} min) and a hold at "
+        f"{TC_LEVELS[1]:g} or {TC_LEVELS[3]:g} K ({_span(_SIDE_HOLD_MIN)} min); "
+        "hold lengths uniform.",
         "simulation": "scipy.integrate.solve_ivp (DOP853, rtol 1e-10, atol 1e-12) on each "
-        "constant-Tc interval; Tc steps on the sample grid; 90 min per run.",
+        "constant-Tc interval; Tc steps on the sample grid; "
+        f"{_DURATION_MIN:g} min per run.",
         "noise": {"enabled": noise, "std": dict(_NOISE_STD), "inputs": "noise-free"},
         "runs": run_truth,
     }
+
+
+def _span(bounds: tuple[float, float]) -> str:
+    return f"{bounds[0]:g}-{bounds[1]:g}"
 
 
 @functools.cache
