@@ -58,6 +58,7 @@ __all__ = [
 ]
 
 _CHUNK = 65536
+_CACHE_BYTES = 1 << 20
 
 
 @functools.cache
@@ -192,8 +193,9 @@ def regime_log_likelihood(
 ) -> np.ndarray:
     """Gaussian log-likelihood of each sample's residual under each regime: (n, K).
 
-    The term matrix is built chunk by chunk into one buffer, and the whitened residuals of
-    all regimes for that chunk come from one matrix product.
+    The term matrix is built chunk by chunk (at most ``chunk_size`` rows, fewer when the
+    buffers would outgrow about 1 MiB) into one buffer, and the whitened residuals of all
+    regimes for that chunk come from one matrix product.
     """
     n, m = Y.shape
     k = len(coefs)
@@ -205,6 +207,8 @@ def regime_log_likelihood(
     b_all = [np.asarray(c, dtype=np.float64) @ w for c, w in zip(coefs, whiten, strict=True)]
     p = b_all[0].shape[0]
     weights = np.vstack([-np.hstack(b_all), np.hstack(whiten)])  # (p + m, K m)
+    # rows per chunk: the two buffers stay near 1 MiB, in cache between the products
+    chunk_size = max(256, min(chunk_size, _CACHE_BYTES // (8 * (p + m + k * m))))
     rows = max(min(chunk_size, n), 1)
     buf = np.empty((rows, p + m))
     white = np.empty((rows, k * m))
