@@ -116,6 +116,37 @@ def test_reactor_regimes_with_location(reactor) -> None:
 
 @pytest.mark.xfail(
     strict=True,
+    reason="measured (K = 2, Arrhenius library, first-order map): every regime misses, e.g. "
+    "the C_A constant +1231 % / +687 %, Tc in dT/dt -100 % (dropped) in both; within one "
+    "branch the states barely move, so the five terms are not identifiable from a regime's "
+    "own samples (one continuous-form model on all rows, noise-free: within 0.2 % for "
+    "dC_A/dt, about 5 % for dT/dt)",
+)
+def test_reactor_coefficients_with_the_arrhenius_term(reactor) -> None:
+    finder, _, truth, ds = reactor
+    p = truth["parameters"]
+    dilution, cooling = p["q"] / p["V"], p["UA"] / (p["V"] * p["rho_cp"])
+    # the CSTR balances of the truth sidecar (both regimes share them), term by term
+    true = {
+        "C_A": {"1": dilution * p["C_Af"], "C_A": -dilution, "C_A*exp(-8750/T)": -p["k0"]},
+        "T": {
+            "1": dilution * p["T_f"],
+            "T": -dilution - cooling,
+            "Tc": cooling,
+            "C_A*exp(-8750/T)": -p["dH"] / p["rho_cp"] * p["k0"],
+        },
+    }
+    for fit in finder.local_fits_:
+        for j, state in enumerate(ds.state_names):
+            cont = fit.coef[:, j].copy()
+            cont[fit.terms.index(state)] -= 1.0
+            cont /= ds.step  # first-order map x[k+1] = x + dt f(x)
+            for term, value in true[state].items():
+                assert cont[fit.terms.index(term)] == pytest.approx(value, rel=0.03)
+
+
+@pytest.mark.xfail(
+    strict=True,
     reason="measured: with identical dynamics in both regimes, BIC with the location term "
     "keeps adding regimes up to 6 (6 kept; 69 % accuracy): steady holds make tight state "
     "clusters and a Gaussian location per regime buys a regime for the excursion "
