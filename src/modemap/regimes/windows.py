@@ -82,17 +82,22 @@ def window_coefficients(
     starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
     gram = np.empty((sizes.size, p, p))
     cross = np.empty((sizes.size, p, m))
-    # windows in groups of about _CHUNK_ROWS rows: one term matrix per group, then the
-    # per-window sums of the row outer products (np.add.reduceat over window starts)
+    # windows in groups of about _CHUNK_ROWS rows: one term matrix per group, its rows laid
+    # out as (window, row in window, [terms | targets]) with zero padding (a window holds at
+    # most twice the regular count), then one batched product gives every window's sums
     first = 0
     while first < sizes.size:
         last = int(np.searchsorted(starts, starts[first] + _CHUNK_ROWS, side="right"))
         last = max(last, first + 1)
         lo, hi = starts[first], starts[last - 1] + sizes[last - 1]
-        theta = library.transform(Z[lo:hi])
-        local = starts[first:last] - lo
-        gram[first:last] = np.add.reduceat(np.einsum("ni,nj->nij", theta, theta), local)
-        cross[first:last] = np.add.reduceat(np.einsum("ni,nj->nij", theta, Y[lo:hi]), local)
+        local = sizes[first:last]
+        window = np.repeat(np.arange(local.size), local)
+        offset = np.arange(hi - lo) - np.repeat(starts[first:last] - lo, local)
+        padded = np.zeros((local.size, int(local.max()), p + m))
+        padded[window, offset, :p] = library.transform(Z[lo:hi])
+        padded[window, offset, p:] = Y[lo:hi]
+        sums = np.matmul(padded.transpose(0, 2, 1), padded)
+        gram[first:last], cross[first:last] = sums[:, :p, :p], sums[:, :p, p:]
         first = last
     total_gram, total_cross = gram.sum(axis=0), cross.sum(axis=0)
     n = max(int(sizes.sum()), 1)
