@@ -240,3 +240,24 @@ def test_choosing_k_on_windows_of_a_long_record_gives_the_same_regimes() -> None
         np.testing.assert_allclose(a.coef, b.coef, rtol=1e-6, atol=1e-9)
     assert any("contiguous windows" in note for note in part.notes_)
     assert not any("contiguous windows" in note for note in full.notes_)
+
+
+def test_segment_targets_are_exact_within_stretches() -> None:
+    # a tent signal: x = t while u = 0, then falls with slope -1 while u = 1 (analytic
+    # derivative +1 / -1); a whole-run smoothing derivative blurs the corner, the targets
+    # re-estimated within each stretch must be exact (labels given as the truth)
+    from modemap.local import prepare_regression
+
+    t = np.arange(0.0, 20.0, 0.1)
+    up = t < 10.0
+    rng = np.random.default_rng(0)
+    x = np.where(up, t, 20.0 - t) + 1e-9 * rng.standard_normal(t.size)
+    frame = pd.DataFrame({"t": t, "x": x, "u": (~up).astype(float)})
+    ds = read_data(frame, time="t", states=["x"], inputs=["u"])
+    finder = RegimeFinder(form="continuous", model="affine", n_regimes=2).fit(ds)
+    reg = prepare_regression(ds, form="continuous", derivative=finder.regression_.derivative)
+    truth = np.where(up, 1.0, -1.0)[np.asarray(reg.sample_index)]
+    labels = (truth < 0).astype(np.int64)
+    whole = np.asarray(reg.Y)[:, 0]
+    assert np.abs(whole - truth).max() > 0.1  # blurred at the corner
+    np.testing.assert_allclose(finder.segment_targets(reg, labels)[:, 0], truth, atol=1e-6)

@@ -30,7 +30,6 @@ from modemap.guards import SwitchingSurfaces, place_equilibria
 from modemap.hybrid import HybridModel, RegimeModel
 from modemap.local import prepare_regression
 from modemap.regimes import RegimeFinder
-from modemap.regimes.segments import segment_derivatives
 from modemap.terms import TermLibrary
 from modemap.validation import one_step_quality, split_holdout, validate
 
@@ -197,17 +196,7 @@ class HybridIdentifier(BaseEstimator):
         """
         reg = prepare_regression(test, form=self.form, derivative=finder.regression_.derivative)
         rows = np.concatenate(test_labels)[np.asarray(reg.sample_index)]
-        Y = np.asarray(reg.Y, dtype=float)
-        if self.form == "continuous":
-            Y = segment_derivatives(
-                np.asarray(reg.time),
-                np.asarray(reg.Z)[:, : test.n_states],
-                Y,
-                np.asarray(reg.lengths),
-                rows,
-                dict(finder.regression_.derivative or {}),
-            )
-        return one_step_quality(model, np.asarray(reg.Z), Y, rows)
+        return one_step_quality(model, np.asarray(reg.Z), finder.segment_targets(reg, rows), rows)
 
     def _assemble(self, ds, finder, surfaces, z, labels) -> tuple[HybridModel, list]:
         n_states = ds.n_states
