@@ -261,3 +261,17 @@ def test_segment_targets_are_exact_within_stretches() -> None:
     whole = np.asarray(reg.Y)[:, 0]
     assert np.abs(whole - truth).max() > 0.1  # blurred at the corner
     np.testing.assert_allclose(finder.segment_targets(reg, labels)[:, 0], truth, atol=1e-6)
+
+
+def test_few_rows_for_many_regimes_still_fit() -> None:
+    # 120 rows, 10 terms, K = 3 asked for: too few windows of rows for the window proposal
+    # (it used to reach k-means with 2 windows for 3 clusters and fail with a ValueError)
+    rng = np.random.default_rng(0)
+    n = 120
+    frame = pd.DataFrame({"t": np.arange(n * 1.0)})
+    for name in "abc":
+        frame[name] = rng.normal(size=n)
+    ds = read_data(frame, time="t", states=["a", "b", "c"])
+    finder = RegimeFinder(form="discrete", n_regimes=3, min_samples=5).fit(ds)
+    assert 1 <= finder.n_regimes_ <= 3
+    assert [lab.size for lab in finder.labels_] == [n]

@@ -56,6 +56,7 @@ from modemap.stats import accumulate
 __all__ = ["RegimeFinder"]
 
 _FORMS = ("continuous", "discrete")
+_WINDOWS_PER_REGIME = 5  # the window proposal needs at least this many windows per regime
 _WINDOW = 5_000  # typical window length (rows) when K is chosen on part of a long record
 _MODELS = ("sparse", "affine")
 
@@ -313,15 +314,17 @@ class RegimeFinder(BaseEstimator):
         residuals of one model fitted to all rows (regimes that differ by their dynamics show
         up there even where the states overlap), and the HMM over the coefficients of local
         models fitted on short windows of rows (:mod:`.windows`: regimes that differ only in
-        their dynamics, where the first two can settle on a split by level).
+        their dynamics, where the first two can settle on a split by level), when there are
+        at least five windows per regime.
         """
         progress(0.0, f"proposing {k} regime(s)")
         starts = [(self._features(Z, Y), lengths, None)]
         if k > 1:
             starts.append((self._global_residuals(Z, Y), lengths, None))
             per_run, sizes = window_lengths(lengths, self._window())
-            coef = window_coefficients(self._library_fitted, Z, Y, sizes)
-            starts.append((coef, per_run, sizes))
+            if sizes.size >= _WINDOWS_PER_REGIME * k:  # enough windows to tell K groups apart
+                coef = window_coefficients(self._library_fitted, Z, Y, sizes)
+                starts.append((coef, per_run, sizes))
         best = None
         for i, (features, runs, sizes) in enumerate(starts):
             labels = propose(
