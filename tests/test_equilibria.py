@@ -199,3 +199,39 @@ def test_errors() -> None:
         find_equilibria(library, coef, n_states=1, input_values=[0.0], bounds=[[1, 0]])
     with pytest.raises(FitError, match="form"):
         classify(np.array([-1.0]), "hybrid")
+
+
+@pytest.mark.parametrize("form", ["continuous", "discrete"])
+def test_equilibrium_stderr_matches_the_delta_method_for_a_ratio(form: str) -> None:
+    # scalar affine model y = c + a x: the equilibrium is x* = -c / a (continuous) or
+    # c / (1 - a) (discrete); its delta-method variance g' Cov(c, a) g with the gradient g
+    # of that ratio (common practice) and Cov(c, a) from statsmodels OLS (reference library)
+    import statsmodels.api as sm
+
+    from modemap.equilibria import equilibrium_stderr
+    from modemap.stats import GramStats
+    from modemap.terms import TermLibrary
+
+    rng = np.random.default_rng(5)
+    x = rng.uniform(2.0, 6.0, size=300)
+    a_true = -0.8 if form == "continuous" else 0.6
+    y = 3.0 + a_true * x + 0.2 * rng.standard_normal(300)
+    library = TermLibrary.from_terms(["1", "x"], ["x"])
+    theta = library.transform(x[:, None])
+    ols = sm.OLS(y, theta).fit()
+    c, a = ols.params
+    if form == "continuous":
+        point, grad = -c / a, np.array([-1.0 / a, c / a**2])
+    else:
+        point, grad = c / (1.0 - a), np.array([1.0 / (1.0 - a), c / (1.0 - a) ** 2])
+    ref = float(np.sqrt(grad @ ols.cov_params() @ grad))
+    se = equilibrium_stderr(
+        library,
+        ols.params[:, None],
+        GramStats.from_arrays(theta, y),
+        np.ones((2, 1), dtype=bool),
+        np.array([point]),
+        1,
+        form=form,
+    )
+    assert se[0] == pytest.approx(ref, rel=1e-6)

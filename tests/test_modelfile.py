@@ -125,6 +125,7 @@ def assert_models_equal(a: HybridModel, b: HybridModel) -> None:
                 eb.note,
             )
             assert ea.time_constants == eb.time_constants
+            assert ea.stderr == eb.stderr
     assert len(a.guards) == len(b.guards)
     for ga, gb in zip(a.guards, b.guards, strict=True):
         assert (ga.source, ga.target, ga.terms, ga.offset, ga.text) == (
@@ -194,6 +195,10 @@ def hybrid_models(draw: st.DrawFn) -> HybridModel:
             time_constants=draw(st.lists(FLOATS, max_size=n_states)),
             period=draw(st.none() | FLOATS),
             note=draw(st.text(max_size=10, alphabet=st.characters(codec="utf-8"))),
+            stderr=draw(
+                st.none()
+                | st.fixed_dictionaries({s: st.floats(0, 1e6) | st.just(math.inf) for s in states})
+            ),
         )
 
     k = draw(st.integers(1, 4))
@@ -409,6 +414,9 @@ BAD_FILES = {
     "null_offset.json": "guards[0].offset: expected a number, got null",
     "empty_regimes.json": "regimes: expected at least one regime",
     "latin1.json": "not UTF-8 text",
+    "negative_equilibrium_stderr.json": (
+        "regimes[0].equilibria[0].stderr.T: a standard error cannot be negative"
+    ),
 }
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import statsmodels.api as sm
 from scipy.signal import lfilter
 
@@ -56,3 +57,27 @@ def test_bootstrap_inclusion_true_vs_spurious() -> None:
     dev = np.abs(out["coef_mean"][true, 0] - fit.coef[true, 0])
     assert np.all(dev <= 3 * out["coef_std"][true, 0] + 1e-12)
     assert np.all(out["coef_std"][true, 0] > 0)
+
+
+def test_fitted_value_variance_matches_statsmodels_prediction() -> None:
+    # reference: statsmodels OLS, standard error of the mean prediction at a point
+    from modemap.uncertainty import fitted_value_covariance
+
+    rng = np.random.default_rng(3)
+    x = rng.uniform(50.0, 60.0, size=400)  # far from 0: a badly conditioned Gram matrix
+    theta = np.column_stack([np.ones_like(x), x, x**2])
+    e = rng.normal(size=(400, 2)) @ np.array([[0.3, 0.0], [0.2, 0.1]])
+    y = np.column_stack([1.0 + 0.5 * x, 2.0 - 0.01 * x**2]) + e
+    coef = np.linalg.lstsq(theta, y, rcond=None)[0]
+    point = np.array([1.0, 57.0, 57.0**2])
+    cov = fitted_value_covariance(
+        GramStats.from_arrays(theta, y), coef, np.ones(coef.shape, dtype=bool), point
+    )
+    for j in range(2):
+        ref = sm.OLS(y[:, j], theta).fit().get_prediction(point[None, :]).se_mean[0]
+        assert np.sqrt(cov[j, j]) == pytest.approx(ref, rel=1e-6)
+    # same support for both states: the fitted values correlate like the residuals
+    resid = y - theta @ coef
+    assert cov[0, 1] / np.sqrt(cov[0, 0] * cov[1, 1]) == pytest.approx(
+        np.corrcoef(resid.T)[0, 1], rel=1e-6
+    )

@@ -30,7 +30,13 @@ from scipy.stats import qmc
 from modemap._exceptions import FitError
 from modemap.hybrid import FORMS, Equilibrium
 
-__all__ = ["affine_equilibrium", "classify", "find_equilibria", "jacobian"]
+__all__ = [
+    "affine_equilibrium",
+    "classify",
+    "equilibrium_stderr",
+    "find_equilibria",
+    "jacobian",
+]
 
 SEARCH_MARGIN = 0.25  # search box = data box widened by this fraction of its width, each side
 MERGE_TOLERANCE = 1e-5
@@ -55,6 +61,57 @@ def jacobian(library: Any, coef: np.ndarray, z: np.ndarray, n_states: int) -> np
     """
     partials = library.partials(np.asarray(z, dtype=np.float64)[None, :])[0]
     return np.asarray(coef, dtype=np.float64).T @ partials[:, :n_states]
+
+
+def equilibrium_stderr(
+    library: Any,
+    coef: np.ndarray,
+    stats: Any,
+    support: np.ndarray,
+    z: np.ndarray,
+    n_states: int,
+    form: str = "continuous",
+) -> np.ndarray:
+    """Standard errors of an equilibrium's coordinates, by the delta method.
+
+    The equilibrium solves ``h(x) = 0`` with ``h = f`` (continuous) or ``h = g - x``
+    (discrete).  A change ``dh`` of the fitted right-hand side at the point moves it by
+    ``dx = -J^-1 dh`` (``J = dh/dx``), so ``Cov(x) = J^-1 Cov(h) J^-T`` with ``Cov(h)`` the
+    covariance of the fitted right-hand sides there
+    (:func:`modemap.uncertainty.fitted_value_covariance`).  The delta method: "Asymptotic
+    Statistics", Cambridge University Press, 1998, chapter 3.
+
+    Parameters
+    ----------
+    library : fitted TermLibrary
+    coef : ndarray of shape (p, n_states)
+    stats : GramStats
+        The regime's normal-equation statistics (what ``coef`` was fitted from).
+    support : ndarray of bool, shape (p, n_states)
+    z : ndarray of shape (n_vars,)
+        The equilibrium's states, then the inputs held there.
+    n_states : int
+    form : {"continuous", "discrete"}
+
+    Returns
+    -------
+    ndarray of shape (n_states,)
+        ``inf`` where the data do not bound the point: a singular Jacobian (the point moves
+        freely along a direction, a fold of the fitted model) or unknown variances.
+    """
+    from modemap.uncertainty import fitted_value_covariance
+
+    _check_form(form)
+    z = np.asarray(z, dtype=np.float64)
+    jac = jacobian(library, coef, z, n_states)
+    if form == "discrete":
+        jac = jac - np.eye(n_states)
+    values = library.transform(z[None, :])[0]
+    cov_h = fitted_value_covariance(stats, coef, support, values)
+    if not np.all(np.isfinite(cov_h)) or np.linalg.cond(jac) > 1e12:
+        return np.full(n_states, np.inf)
+    inv = np.linalg.inv(jac)
+    return np.sqrt(np.clip(np.diag(inv @ cov_h @ inv.T), 0.0, None))
 
 
 def classify(eigenvalues: np.ndarray, form: str = "continuous", tol: float = 1e-7) -> str:

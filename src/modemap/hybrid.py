@@ -49,6 +49,11 @@ class Equilibrium:
         ``-dt/ln|mu|`` in discrete form.
     period : float or None
         Oscillation period ``2*pi/|Im(lambda)|`` of the slowest oscillatory mode.
+    note : str
+    stderr : dict or None
+        State name -> standard error of that coordinate (delta method from the
+        coefficients' covariance, :func:`modemap.equilibria.equilibrium_stderr`);
+        ``inf`` at a fold of the fitted model; None when not computed.
     """
 
     point: dict[str, float]
@@ -58,6 +63,7 @@ class Equilibrium:
     time_constants: list[float] = field(default_factory=list)
     period: float | None = None
     note: str = ""
+    stderr: dict[str, float] | None = None
 
 
 @dataclass

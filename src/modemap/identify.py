@@ -25,7 +25,7 @@ from modemap._exceptions import FitError
 from modemap._progress import ProgressCallback, null_progress, scaled
 from modemap._version import __version__
 from modemap.dataset import Dataset
-from modemap.equilibria import find_equilibria
+from modemap.equilibria import equilibrium_stderr, find_equilibria
 from modemap.guards import SwitchingSurfaces, place_equilibria
 from modemap.hybrid import HybridModel, RegimeModel
 from modemap.local import prepare_regression
@@ -188,6 +188,15 @@ class HybridIdentifier(BaseEstimator):
         if not 0 <= self.holdout < 1:
             raise FitError(f"holdout must be in [0, 1), got {self.holdout!r}")
 
+    def _equilibrium_errors(self, equilibria, library, fit, stats, u_typ, ds) -> None:
+        """Standard errors of each equilibrium's coordinates (delta method), in place."""
+        for e in equilibria:
+            z = np.concatenate([[e.point[s] for s in ds.state_names], np.asarray(u_typ)])
+            se = equilibrium_stderr(
+                library, fit.coef, stats, fit.support, z, ds.n_states, form=self.form
+            )
+            e.stderr = {s: float(v) for s, v in zip(ds.state_names, se, strict=True)}
+
     def _one_step(self, model, finder, test: Dataset, test_labels) -> dict:
         """One-step quality on the held-out samples, each under its decoded regime.
 
@@ -221,6 +230,7 @@ class HybridIdentifier(BaseEstimator):
                 seed=self.seed,
                 state_names=list(ds.state_names),
             )
+            self._equilibrium_errors(eq, library, fit, finder.regime_stats_[k], u_typ, ds)
             regimes.append(
                 RegimeModel(
                     id=k,

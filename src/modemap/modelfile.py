@@ -235,6 +235,7 @@ class _Writer:
             "time_constants": _opt_list(e.time_constants),
             "period": _opt(e.period),
             "note": str(e.note),
+            **({} if e.stderr is None else {"stderr": {s: _opt(e.stderr[s]) for s in states}}),
         }
 
     def guard(self, g: Guard, path: str) -> dict[str, Any]:
@@ -664,6 +665,18 @@ class _Reader:
             d.get("time_constants", []), f"{path}.time_constants", None, "", nullable=True
         )
         period = self.number(d.get("period"), f"{path}.period", nullable=True)
+        stderr = None
+        if d.get("stderr") is not None:
+            raw = self.obj(d["stderr"], f"{path}.stderr")
+            for key in raw:
+                if key not in states:
+                    self.fail(f"{path}.stderr", f"unknown state '{key}'")
+            stderr = {}
+            for s in states:
+                value = self.number(raw.get(s), f"{path}.stderr.{s}", nullable=True)
+                if value < 0:
+                    self.fail(f"{path}.stderr.{s}", "a standard error cannot be negative")
+                stderr[s] = math.inf if math.isnan(value) else value
         return Equilibrium(
             point={s: self.number(point[s], f"{path}.point.{s}") for s in states},
             eigenvalues=np.array([complex(a, b) for a, b in ev], dtype=complex),
@@ -672,6 +685,7 @@ class _Reader:
             time_constants=[math.inf if math.isnan(t) else float(t) for t in tcs],
             period=None if math.isnan(period) else period,
             note=self.text(d.get("note", ""), f"{path}.note"),
+            stderr=stderr,
         )
 
     def guard(self, value: Any, path: str, ids: list[int], variables: list[str]) -> Guard:

@@ -300,7 +300,7 @@ def _equilibria_text(model: HybridModel, equilibria: list[Equilibrium]) -> str:
         where = "reachable" if e.inside else "virtual"
         rows.append(
             [
-                *(e.point.get(s) for s in model.states),
+                *(_with_error(e.point.get(s), (e.stderr or {}).get(s)) for s in model.states),
                 e.stability,
                 eig,
                 [_num(t) for t in e.time_constants] or "–",
@@ -312,7 +312,21 @@ def _equilibria_text(model: HybridModel, equilibria: list[Equilibrium]) -> str:
         "Reachable: the point lies where this regime is active, so the system can settle "
         "there. Virtual: the system leaves the regime before getting there."
     )
+    if any(e.stderr for e in equilibria):
+        legend += (
+            " ± is the standard error of the coordinate from the noise in the fitted "
+            "coefficients (delta method); it leaves out the error of the model's form and "
+            "the serial correlation of the residuals, so read it as a lower bound. "
+            "Unbounded (∞): the fitted model folds there (a singular Jacobian)."
+        )
     return f"{title}\n\n{_table(header, rows)}\n\n{legend}"
+
+
+def _with_error(value: Any, error: float | None) -> Any:
+    """``value ± error`` as text, or the bare value when there is no error."""
+    if error is None or value is None:
+        return value
+    return f"{_num(value)} ± {_num(error) if np.isfinite(error) else '∞'}"
 
 
 def _complex(z: complex) -> str:

@@ -29,7 +29,12 @@ import numpy as np
 from modemap.sparse import _inverse_diag, fit_sparse
 from modemap.stats import GramStats, _Transformer, accumulate_by_label
 
-__all__ = ["block_bootstrap", "default_block_length", "standard_errors"]
+__all__ = [
+    "block_bootstrap",
+    "default_block_length",
+    "fitted_value_covariance",
+    "standard_errors",
+]
 
 _SUB = 4  # sub-blocks per block: block starts are on a grid of block/4
 _MAX_SUBBLOCKS = 4096  # caps memory at 4096 * p^2 floats
@@ -64,6 +69,68 @@ def standard_errors(stats: GramStats, coef: np.ndarray, support: np.ndarray) -> 
         var = _inverse_diag(gn[np.ix_(idx, idx)]) / scale[idx] ** 2
         out[idx, j] = np.sqrt(np.clip(var, 0.0, None) * sigma2)
     return out
+
+
+def fitted_value_covariance(
+    stats: GramStats, coef: np.ndarray, support: np.ndarray, values: np.ndarray
+) -> np.ndarray:
+    """Covariance of the fitted right-hand sides at one point: (m, m).
+
+    For state ``j`` fitted by least squares on its support ``S_j``, the fitted value at a
+    point with term values ``x`` is ``x_S' c_j``; its variance is ``s_jj x_S' G_jj^-1 x_S``
+    (the variance of the fitted mean response, textbook least squares), and two states'
+    fitted values covary as ``s_jk x_Sj' G_jj^-1 G_jk G_kk^-1 x_Sk`` (equations fitted one
+    by one with correlated residuals, common practice).  ``s_jk`` divides the residual
+    products by ``n - (k_j + k_k) / 2``, so ``s_jj`` is the variance behind
+    :func:`standard_errors`.  The quadratic forms are computed through a Cholesky factor of
+    the normalised Gram matrix (a sum of squares, never negative); cross terms are kept
+    within correlation +-1.
+
+    Parameters
+    ----------
+    stats : GramStats
+    coef : ndarray of shape (p, m)
+    support : ndarray of bool, shape (p, m)
+    values : ndarray of shape (p,)
+        Term values at the point.
+
+    Returns
+    -------
+    ndarray of shape (m, m)
+        NaN where ``n`` does not exceed the terms or a Gram block is singular.
+    """
+    coef = np.asarray(coef, dtype=np.float64).reshape(stats.n_terms, -1)
+    support = np.asarray(support, dtype=bool).reshape(coef.shape)
+    m = coef.shape[1]
+    scale = stats.column_scale()
+    gn = stats.gram / np.outer(scale, scale)
+    xn = np.asarray(values, dtype=np.float64) / scale
+    products, k, n = stats.residual_products(coef), support.sum(axis=0), float(stats.n)
+    idx = [np.flatnonzero(support[:, j]) for j in range(m)]
+    u = []  # G_jj^-1 x_S (normalised), with the squared norm of the whitened vector
+    for i in idx:
+        if i.size == 0:
+            u.append((np.zeros(0), 0.0))
+            continue
+        try:
+            chol = np.linalg.cholesky(gn[np.ix_(i, i)])
+        except np.linalg.LinAlgError:
+            u.append((np.full(i.size, np.nan), np.nan))
+            continue
+        w = np.linalg.solve(chol, xn[i])
+        u.append((np.linalg.solve(chol.T, w), float(w @ w)))
+    out = np.empty((m, m))
+    for j in range(m):
+        for q in range(m):
+            dof = n - 0.5 * (k[j] + k[q])
+            s = products[j, q] / dof if dof > 0 else np.nan
+            if j == q:
+                out[j, j] = s * u[j][1]
+            else:
+                out[j, q] = s * (u[j][0] @ gn[np.ix_(idx[j], idx[q])] @ u[q][0])
+    var = np.sqrt(np.clip(np.diag(out), 0.0, None))
+    bound = np.outer(var, var)
+    return np.where(np.eye(m, dtype=bool), out, np.clip(out, -bound, bound))
 
 
 def default_block_length(lengths: Sequence[int] | np.ndarray) -> int:

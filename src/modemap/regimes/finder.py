@@ -117,6 +117,8 @@ class RegimeFinder(BaseEstimator):
     notes_ : list of str
     convergence_ : ConvergenceRecord of the final refinement
     covariances_ : ndarray of shape (K, m, m)
+    regime_stats_ : list of GramStats
+        Each regime's normal-equation statistics (what its local fit was computed from).
     """
 
     def __init__(
@@ -644,6 +646,7 @@ class RegimeFinder(BaseEstimator):
         self.regression_labels_ = labels
         self.n_regimes_ = k
         self.local_fits_ = [result.fits[i] for i in order]
+        self.regime_stats_ = [result.stats[i] for i in order]
         self.covariances_ = result.covariances[order]
         self.selection_ = table
         self.statistics_ = statistics(full, k, float(ds.step) if np.isfinite(ds.step) else 1.0)
