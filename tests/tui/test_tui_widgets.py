@@ -172,6 +172,25 @@ def test_plain_equations():
     assert lines == ["x[k+1] = (0.5 ± 0.1) + (-2 ± 0.2)·x", "v[k+1] = (1 ± 0.05)·x"]
 
 
+def test_equilibrium_line_shows_standard_errors():
+    from modemap.hybrid import Equilibrium
+    from modemap.tui.widgets.tables import _equilibrium_line
+
+    ds = make_dataset()
+    model = make_model(2, ds, make_labels(ds, 2))
+    states = list(model.states)
+    eq = Equilibrium(
+        point={s: 1.5 for s in states},
+        eigenvalues=np.array([-1.0] * len(states), dtype=complex),
+        stability="stable node",
+        stderr={s: (0.02 if i == 0 else np.inf) for i, s in enumerate(states)},
+    )
+    text = _equilibrium_line(eq, model, "s").plain
+    unit = model.units.get(states[0], "")
+    assert f"{states[0]}=1.5 ± 0.02{' ' + unit if unit else ''}" in text
+    assert f"{states[1]}=1.5 ± ∞" in text
+
+
 def test_source_spec_reads_the_recorded_data_file(tmp_path):
     from modemap.tui.app import _source_spec
 

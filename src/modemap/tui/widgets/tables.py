@@ -58,8 +58,18 @@ def _regime_label(k: int) -> Text:
     )
 
 
+def _coordinate(name: str, value: float, eq: Equilibrium, model: HybridModel) -> str:
+    """``name=value ± error unit`` (the error when the model carries one)."""
+    unit = model.units.get(name, "")
+    error = (eq.stderr or {}).get(name)
+    if error is None:
+        return f"{name}={_with_unit(value, unit)}"
+    spread = _num(error) if np.isfinite(error) else "∞"
+    return f"{name}={_num(value)} ± {_with_unit(spread, unit) if spread != '∞' else spread}"
+
+
 def _equilibrium_line(eq: Equilibrium, model: HybridModel, tunit: str) -> Text:
-    point = ", ".join(f"{n}={_with_unit(v, model.units.get(n, ''))}" for n, v in eq.point.items())
+    point = ", ".join(_coordinate(n, v, eq, model) for n, v in eq.point.items())
     where = "reachable" if eq.inside else "virtual"
     line = Text(f"    {'●' if eq.inside else '○'} {point}  ")
     line.append(eq.stability, style="bold")
