@@ -317,7 +317,9 @@ def _equilibria_text(model: HybridModel, equilibria: list[Equilibrium]) -> str:
             " ± is the standard error of the coordinate from the noise in the fitted "
             "coefficients (delta method); it leaves out the error of the model's form and "
             "the serial correlation of the residuals, so read it as a lower bound. "
-            "Unbounded (∞): the fitted model folds there (a singular Jacobian)."
+            "Zero: no selected term moves the point (e.g. the origin of a model without a "
+            "constant term). Unbounded (∞): the fitted model folds there (a singular "
+            "Jacobian)."
         )
     return f"{title}\n\n{_table(header, rows)}\n\n{legend}"
 
