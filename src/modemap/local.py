@@ -33,6 +33,7 @@ from modemap.derivatives import differentiate
 from modemap.equations import format_equations
 from modemap.equilibria import find_equilibria
 from modemap.hybrid import RegimeModel
+from modemap.increments import fit_on_increments
 from modemap.sparse import CRITERIA, fit_sparse
 from modemap.stats import accumulate, accumulate_by_label
 from modemap.terms import TermLibrary
@@ -272,6 +273,7 @@ class LocalDynamics(BaseEstimator):
                 criterion="bic" if self.criterion == "cv" else self.criterion,
                 ridge=self.ridge,
                 seed=self.seed,
+                states=ds.state_names if self.form == "discrete" else None,
             )
             self.inclusion_ = boot["inclusion"]
         return self
@@ -285,15 +287,28 @@ class LocalDynamics(BaseEstimator):
                 np.arange(reg.n_samples) * _CV_BLOCKS // reg.n_samples, _CV_BLOCKS - 1
             )
             stats = accumulate_by_label(library, reg.Z, reg.Y, blocks, _CV_BLOCKS)
-            return fit_sparse(stats, terms, threshold="auto", ridge=self.ridge, criterion="cv")
-        return fit_sparse_centred(
-            accumulate(library, reg.Z, reg.Y),
-            terms,
-            library.variables_,
-            threshold=self.threshold,
-            ridge=self.ridge,
-            criterion=self.criterion,
-        )
+
+            def select(s):
+                return fit_sparse(s, terms, threshold="auto", ridge=self.ridge, criterion="cv")
+        else:
+            stats = accumulate(library, reg.Z, reg.Y)
+
+            def select(s):
+                return fit_sparse_centred(
+                    s,
+                    terms,
+                    library.variables_,
+                    threshold=self.threshold,
+                    ridge=self.ridge,
+                    criterion=self.criterion,
+                )
+
+        if self.form == "discrete":  # select on x[k+1] - x[k] (modemap.increments)
+            states = library.variables_[: reg.Y.shape[1]]
+            fit = fit_on_increments(select, stats, terms, states)
+            if fit is not None:
+                return fit
+        return select(stats)
 
     def _set_results(self, ds: Dataset, reg: RegressionData, library: TermLibrary, fit) -> None:
         _, states, inputs, _ = ds.concat()

@@ -26,6 +26,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
+from modemap.increments import fit_on_increments
 from modemap.sparse import _inverse_diag, fit_sparse
 from modemap.stats import GramStats, _Transformer, accumulate_by_label
 
@@ -192,6 +193,7 @@ def block_bootstrap(
     ridge: float = 0.0,
     seed: int = 0,
     chunk_size: int = 65536,
+    states: Sequence[str] | None = None,
 ) -> dict[str, np.ndarray | int]:
     """Moving-block bootstrap of the sparse fit, from per-sub-block statistics.
 
@@ -210,6 +212,10 @@ def block_bootstrap(
         Passed to :func:`modemap.sparse.fit_sparse` for every replicate.
     seed : int, default 0
     chunk_size : int, default 65536
+    states : sequence of str, optional
+        Discrete form: the state names in target order; every replicate then selects its
+        terms on the increments (:func:`modemap.increments.fit_on_increments`), as the fit
+        itself does.
 
     Returns
     -------
@@ -233,11 +239,16 @@ def block_bootstrap(
     stacked["n"] = np.array([float(s.n) for s in parts])
     terms = list(getattr(library, "terms_", [f"t{i}" for i in range(parts[0].n_terms)]))
     rng = np.random.default_rng(seed)
+
+    def select(rep):
+        return fit_sparse(rep, terms, threshold=threshold, criterion=criterion, ridge=ridge)
+
     coefs = np.empty((n_boot, *parts[0].cross.shape))
     chosen = np.empty(coefs.shape, dtype=bool)
     for b in range(n_boot):
         rep = _weighted(stacked, _coverage(rng, runs, total))
-        fit = fit_sparse(rep, terms, threshold=threshold, criterion=criterion, ridge=ridge)
+        fit = None if states is None else fit_on_increments(select, rep, terms, states)
+        fit = select(rep) if fit is None else fit
         coefs[b], chosen[b] = fit.coef, fit.support
     return {
         "inclusion": chosen.mean(axis=0),

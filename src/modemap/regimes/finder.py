@@ -541,6 +541,7 @@ class RegimeFinder(BaseEstimator):
             min_dwell=int(self.min_dwell),
             max_iter=int(self.max_iter),
             settle_dense=settle_dense,
+            increments=self.form == "discrete",
             progress=progress,
             engine=self._engine,
             runs=self._runs(Z, Y, lengths),
@@ -570,6 +571,7 @@ class RegimeFinder(BaseEstimator):
             model=self.model,
             threshold=self.threshold,
             variables=self._library_fitted.variables_,
+            increments=self.form == "discrete",
         )[0]
         return residuals(self._library_fitted, Z, Y, np.asarray(fit.coef))
 

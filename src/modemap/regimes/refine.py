@@ -141,25 +141,40 @@ def fit_regimes(
     model: str = "sparse",
     threshold="auto",
     variables: Sequence[str] | None = None,
+    increments: bool = False,
 ) -> list[Any]:
     """One local fit per regime from its statistics (``model``: "sparse" or "affine").
 
     With ``variables`` the sparse selection runs on centred variables
-    (:func:`modemap.centring.fit_sparse_centred`), the estimate on raw ones.
+    (:func:`modemap.centring.fit_sparse_centred`), the estimate on raw ones.  With
+    ``increments`` (discrete form; the targets are the next states, the first variables)
+    the selection runs on the increments (:mod:`modemap.increments`).
     """
     if model == "affine":
         from modemap.affine import fit_affine
 
         return [fit_affine(s, list(terms)) for s in stats]
+    from modemap.sparse import fit_sparse
+
     if variables is not None:
         from modemap.centring import fit_sparse_centred
 
-        return [
-            fit_sparse_centred(s, list(terms), list(variables), threshold=threshold) for s in stats
-        ]
-    from modemap.sparse import fit_sparse
+        def select(s):
+            return fit_sparse_centred(s, list(terms), list(variables), threshold=threshold)
+    else:
 
-    return [fit_sparse(s, list(terms), threshold=threshold) for s in stats]
+        def select(s):
+            return fit_sparse(s, list(terms), threshold=threshold)
+
+    if not increments or variables is None:
+        return [select(s) for s in stats]
+    from modemap.increments import fit_on_increments
+
+    fits = []
+    for s in stats:
+        fit = fit_on_increments(select, s, list(terms), list(variables)[: s.n_targets])
+        fits.append(select(s) if fit is None else fit)
+    return fits
 
 
 def _covariances(
@@ -376,6 +391,7 @@ def refine(
     cov_floor: float = 1e-6,
     tol: float = 1e-5,
     settle_dense: bool = True,
+    increments: bool = False,
     progress: ProgressCallback | None = None,
     engine: Any = None,
     runs: Sequence[Any] | None = None,
@@ -421,6 +437,9 @@ def refine(
         With the sparse model, first let the labels settle under plain least-squares fits
         (so early, unsettled labels do not prune terms); False skips that phase when the
         starting labels come from already fitted models.
+    increments : bool
+        Discrete form (``Y`` holds the next states): select the sparse terms on the
+        increments ``Y - x`` (:mod:`modemap.increments`).
     progress : callable, optional
         ``progress(fraction, message)``, called once per iteration.
     engine : Engine, optional
@@ -448,6 +467,7 @@ def refine(
         covariance=covariance,
         min_samples=max(int(min_samples), len(library.terms_) + 1),
         floor=float(cov_floor),
+        increments=bool(increments),
     )
     Z = np.asarray(Z, dtype=np.float64)
     lengths = np.asarray(lengths, dtype=np.int64)
@@ -520,6 +540,7 @@ class _Options:
     covariance: str
     min_samples: int
     floor: float  # relative to each target's variance
+    increments: bool = False  # discrete form: select terms on x[k+1] - x[k]
 
 
 @dataclass
@@ -625,6 +646,7 @@ def _score_labels_engine(
             model=opts.model,
             threshold=opts.threshold,
             variables=work.library.variables_,
+            increments=opts.increments,
         )
         covs = _covariances(stats, fits, opts.floor, opts.covariance)
         log_start, log_trans = transition_model(labels, work.lengths, k, opts.sticky, opts.learn)
@@ -688,6 +710,7 @@ def _score_labels(
         model=opts.model,
         threshold=opts.threshold,
         variables=library.variables_,
+        increments=opts.increments,
     )
     covs = _covariances(stats, fits, opts.floor, opts.covariance)
     log_start, log_trans = transition_model(labels, lengths, k, opts.sticky, opts.learn)
