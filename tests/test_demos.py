@@ -114,19 +114,31 @@ def heaters() -> tuple[pd.DataFrame, dict]:
 
 
 def _thermostat_reference(truth: dict, run: pd.DataFrame, t_end: float) -> tuple[np.ndarray, list]:
-    """Re-integrate with solve_ivp + threshold events from the documented coefficient maps."""
+    """Re-integrate with solve_ivp + threshold events from the documented coefficient maps.
+
+    The documented rule: the heater is on when the thermostat relay is closed and no shed is
+    in force; the relay closes when T falls to T_low (also during a shed) and opens when T
+    rises to T_high.
+    """
     maps = [r["coefficients"]["T"] for r in truth["regimes"]]
     low, high = truth["switching"]["T_low"], truth["switching"]["T_high"]
     t = run["t [s]"].to_numpy()
-    w = run["w [L/min]"].to_numpy()
+    w, shed = run["w [L/min]"].to_numpy(), run["shed"].to_numpy()
     keep = t <= t_end
-    t, w = t[keep], w[keep]
+    t, w, shed = t[keep], w[keep], shed[keep]
     out, switches = np.empty(t.size), []
     temp, on, now = run["T [degC]"].iloc[0], int(run["true_regime"].iloc[0]), 0.0
-    edges = [*np.flatnonzero(np.diff(w)) + 1, t.size]
+    assert shed[0] == 0  # no shed at the start of a run in this demo
+    relay = bool(on)
+    edges = [*np.flatnonzero((np.diff(w) != 0) | (np.diff(shed) != 0)) + 1, t.size]
     lo = 0
     for hi in edges:
         end = t[hi] if hi < t.size else t[-1]
+        locked = bool(shed[lo])
+        heater = int(relay and not locked)
+        if heater != on:
+            switches.append((now, on, "shed start" if locked else "shed end"))
+            on = heater
         while True:
 
             def f(_s: float, y: np.ndarray, on: int = on, level: float = w[lo]) -> list[float]:
@@ -137,8 +149,9 @@ def _thermostat_reference(truth: dict, run: pd.DataFrame, t_end: float) -> tuple
 
             hit.terminal, hit.direction = True, (1 if on else -1)
             sel = (t >= now) & (t <= end) & (np.arange(t.size) >= lo) & (np.arange(t.size) < hi)
+            events = None if locked else hit
             sol = solve_ivp(
-                f, (now, end), [temp], rtol=1e-10, atol=1e-10, events=hit, dense_output=True
+                f, (now, end), [temp], rtol=1e-10, atol=1e-10, events=events, dense_output=True
             )
             stop = sol.t[-1]
             inside = sel & (t < stop) if sol.status == 1 else sel
@@ -146,8 +159,11 @@ def _thermostat_reference(truth: dict, run: pd.DataFrame, t_end: float) -> tuple
             temp, now = sol.y[0, -1], stop
             if sol.status != 1:
                 break
-            switches.append((stop, on))
+            switches.append((stop, on, "thermostat"))
             on = 1 - on
+            relay = bool(on)
+        if locked and temp <= low:
+            relay = True
         lo = hi
     return out, switches
 
@@ -155,15 +171,17 @@ def _thermostat_reference(truth: dict, run: pd.DataFrame, t_end: float) -> tuple
 def test_heaters_match_solve_ivp_with_events(heaters: tuple[pd.DataFrame, dict]) -> None:
     data, truth = heaters
     run = data[data["run"] == 1]
-    t_end = 6 * 3600.0
+    t_end = 12 * 3600.0  # through the morning shed
     reference, switches = _thermostat_reference(truth, run, t_end)
     generated = run["T [degC]"].to_numpy()[: reference.size]
     # solve_ivp reference at rtol 1e-10 (scipy): agreement to well under the 0.001 degC print step
     np.testing.assert_allclose(generated, reference, atol=2e-6)
     documented = [s for s in truth["runs"][0]["switches"] if s[0] < t_end]
     assert len(switches) == len(documented) >= 10
+    assert any(d[4] == "shed end" for d in documented)
     np.testing.assert_allclose([s[0] for s in switches], [d[0] for d in documented], atol=1e-3)
     assert [s[1] for s in switches] == [d[1] for d in documented]
+    assert [s[2] for s in switches] == [d[4] for d in documented]
 
 
 def test_heaters_switch_at_thresholds_with_hysteresis(heaters: tuple[pd.DataFrame, dict]) -> None:
@@ -171,21 +189,33 @@ def test_heaters_switch_at_thresholds_with_hysteresis(heaters: tuple[pd.DataFram
     low, high = truth["switching"]["T_low"], truth["switching"]["T_high"]
     for run_id, run in data.groupby("run"):
         temp, label = run["T [degC]"].to_numpy(), run["true_regime"].to_numpy()
+        shed = run["shed"].to_numpy()
         step = np.abs(np.diff(temp)).max()
-        # hysteresis thermostat (common practice): off never below T_low, on never above T_high
-        assert temp[label == 0].min() >= low - 1e-9
+        # hysteresis thermostat (common practice): off never below T_low unless shed, on
+        # never above T_high, never on during a shed
+        assert temp[(label == 0) & (shed == 0)].min() >= low - 1e-9
         assert temp[label == 1].max() <= high + 1e-9
+        assert not np.any(label[shed == 1])
+        assert temp[shed == 1].min() < low - 20.0, run_id  # the sheds cool the tank well down
         changes = np.flatnonzero(np.diff(label)) + 1
         assert changes.size >= 40, run_id  # >= 20 on/off cycles per run
-        turned_on = changes[label[changes] == 1]
-        turned_off = changes[label[changes] == 0]
+        by_thermostat = changes[shed[changes] == shed[changes - 1]]
+        turned_on = by_thermostat[label[by_thermostat] == 1]
+        turned_off = by_thermostat[label[by_thermostat] == 0]
         assert np.all(np.abs(temp[turned_on - 1] - low) <= step)
         assert np.all(np.abs(temp[turned_off - 1] - high) <= step)
-        # documented switches alternate off->on at T_low and on->off at T_high, in time order
-        switches = np.array(truth["runs"][run_id - 1]["switches"])
-        assert np.all(np.diff(switches[:, 0]) > 0)
-        assert np.all(switches[1:, 1] == switches[:-1, 2])
-        np.testing.assert_allclose(switches[:, 3], np.where(switches[:, 2] == 1, low, high))
+        # documented switches alternate, in time order; thermostat ones at the thresholds,
+        # shed ones at the documented shed edges
+        switches = truth["runs"][run_id - 1]["switches"]
+        times = np.array([s[0] for s in switches])
+        assert np.all(np.diff(times) > 0)
+        assert all(b[1] == a[2] for a, b in itertools.pairwise(switches))
+        edges = {e for pair in truth["runs"][run_id - 1]["sheds"] for e in pair}
+        for when, _, to, at, cause in switches:
+            if cause == "thermostat":
+                assert at == pytest.approx(low if to == 1 else high)
+            else:
+                assert when in edges and to == (1 if cause == "shed end" else 0)
 
 
 def test_heater_truth_equations_are_the_energy_balance(heaters: tuple[pd.DataFrame, dict]) -> None:

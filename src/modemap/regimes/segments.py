@@ -16,10 +16,11 @@ A step of a piecewise-constant input (a draw switched on, a coolant set point
 moved) puts a kink in the states just as a regime change does, so stretches are
 also cut where such an input changes.  An input counts as stepped when it
 changes at no more than a quarter of the samples (a sampled continuous signal
-changes at almost every sample and is left alone).  Measured on the invented
-water-heater demo with its true labels: without these cuts the heater-off fit
-carries spurious ``T^2`` and ``w^2`` terms (the draw steps every 12 samples on
-average, inside a 9-sample smoothing window); with them it keeps ``T`` and
+changes at almost every sample and is left alone).  Measured on an earlier
+version of the invented water-heater demo (30 s samples, draws held 6 min on
+average) with its true labels: without these cuts the heater-off fit carried
+spurious ``T^2`` and ``w^2`` terms (the draw stepped every 12 samples on
+average, inside a 9-sample smoothing window); with them it kept ``T`` and
 ``T*w`` only.
 """
 
