@@ -1,6 +1,7 @@
 """Derivatives re-estimated within regime stretches (modemap.regimes.segments)."""
 
 import numpy as np
+import pytest
 
 from modemap.derivatives import differentiate
 from modemap.regimes.segments import segment_derivatives
@@ -46,3 +47,23 @@ def test_input_steps_also_cut_stretches() -> None:
     out = segment_derivatives(t, x, whole, np.array([t.size]), labels, settings, inputs=u[:, None])
     np.testing.assert_allclose(out[: k - 1, 0], 1.0, atol=1e-9)
     np.testing.assert_allclose(out[k + 1 :, 0], -2.0, atol=1e-9)
+
+
+def test_a_sample_between_an_input_step_and_a_label_change_takes_the_step_side() -> None:
+    # The input steps at sample k and the slope follows it (dx/dt = u, exact per linear piece).
+    # Labels one sample late (change at k + 1) leave sample k alone between the step and the
+    # label change: its derivative comes from the stretch after the step, not the whole-run
+    # estimate smeared across the kink.  Labels one sample early: from the stretch before.
+    t = np.arange(0.0, 10.0, 0.05)
+    k = t.size // 2
+    u = np.where(np.arange(t.size) < k, 1.0, -2.0)
+    x = np.concatenate([[0.0], np.cumsum(u[:-1] * 0.05)])[:, None]
+    settings = {"method": "savgol", "window": 21, "order": 3}
+    whole, _ = differentiate(t, x, **settings)
+    assert abs(whole[k, 0] + 2.0) > 0.5 and abs(whole[k - 1, 0] - 1.0) > 0.1
+    late = (np.arange(t.size) > k).astype(int)
+    out = segment_derivatives(t, x, whole, np.array([t.size]), late, settings, inputs=u[:, None])
+    assert out[k, 0] == pytest.approx(-2.0, abs=1e-9)
+    early = (np.arange(t.size) >= k - 1).astype(int)
+    out = segment_derivatives(t, x, whole, np.array([t.size]), early, settings, inputs=u[:, None])
+    assert out[k - 1, 0] == pytest.approx(1.0, abs=1e-9)

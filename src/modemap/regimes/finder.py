@@ -478,10 +478,10 @@ class RegimeFinder(BaseEstimator):
     def _segment(self, time, Z, Y, lengths, labels, settings) -> np.ndarray:
         """Derivatives re-estimated within stretches of constant label and stepped inputs."""
         m = Y.shape[1]
-        # inputs that select the regime already cut stretches through the labels
-        names = list(self._library_fitted.variables_)[m:]
-        keep = [m + j for j, name in enumerate(names) if name not in self.switching_inputs_]
-        stepped = Z[:, keep] if keep else None
+        # every stepped input cuts, those that select the regime too: the labels cut there
+        # only once they are right, and a sample left on the wrong side of a step keeps a
+        # derivative that agrees with its wrong label
+        stepped = Z[:, m:] if Z.shape[1] > m else None
         return segment_derivatives(time, Z[:, :m], Y, lengths, labels, settings, stepped)
 
     def segment_targets(self, reg: Any, labels: np.ndarray) -> np.ndarray:

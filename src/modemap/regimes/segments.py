@@ -80,9 +80,21 @@ def segment_derivatives(
         lab = labels[offset:stop]
         cuts = np.flatnonzero((lab[1:] != lab[:-1]) | steps[offset + 1 : stop]) + 1
         edges = np.concatenate([[0], cuts, [lab.size]]) + offset
-        for a, b in pairwise(edges):
+        for i, (a, b) in enumerate(pairwise(edges)):
             if b - a >= 2:
                 out[a:b] = _stretch(time[a:b], states[a:b], run_settings)
+                continue
+            # one sample between an input step and a label change: the step is a fact, the
+            # label change a hypothesis, so take the sample's derivative from the stretch on
+            # the side without the step (else it would keep the smeared whole-run value)
+            left_step = a > offset and steps[a]
+            right_step = b < stop and steps[b]
+            if left_step and not right_step and b < stop:
+                c = edges[i + 2]
+                out[a] = _stretch(time[a:c], states[a:c], run_settings)[0]
+            elif right_step and not left_step and a > offset:
+                c = edges[i - 1]
+                out[a] = _stretch(time[c:b], states[c:b], run_settings)[-1]
         offset = stop
     return out
 
