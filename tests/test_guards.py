@@ -202,3 +202,34 @@ def test_guard_text_half_plane_with_units():
     g = Guard(1, 2, ["T", "w"], np.array([0.83, -0.56]), -12.1 * np.hypot(0.83, 0.56))
     text = guard_text(g, {"T": "degC", "w": "L/min"}, {"T": 20.0, "w": 5.0})
     assert text == "switch 1 -> 2 when 0.829 T[degC] - 0.559 w[L/min] > 12.1"
+
+
+def test_a_rare_cause_of_switching_is_kept_in_the_guard() -> None:
+    # A thermostat whose heating is also stopped by a load-shed flag (an override; switching
+    # rule of the simulated truth): heating -> cooling when T > 65 or shed = 1, cooling ->
+    # heating when T < 55 and shed = 0.  Shed-caused switches are a few among ~100
+    # thermostat ones, so a threshold on T alone scores almost as well in balanced accuracy;
+    # it must not replace the guard, since it would never stop heating for a shed.
+    heat = regime(0, ["1", "T"], [8.0, -0.1])
+    cool = regime(1, ["1", "T"], [2.0, -0.1])
+    guards = [
+        Guard(0, 1, ["T", "shed"], np.array([1.0, 100.0]), -65.0),
+        Guard(1, 0, ["T", "shed"], np.array([-1.0, -100.0]), 55.0),
+    ]
+    model = HybridModel(
+        states=["T"], inputs=["shed"], form="continuous", regimes=[heat, cool], guards=guards,
+        data_range={"T": (20.0, 80.0), "shed": (0.0, 1.0)}, units={"T": "degC"},
+    )  # fmt: skip
+    t = np.arange(0.0, 300.0, 0.1)
+    shed = np.zeros((t.size, 1))
+    for start in (40.0, 130.0, 220.0):
+        shed[(t >= start) & (t < start + 6.0)] = 1.0
+    Z, labels, lengths = labelled_runs(model, [[50.0], [58.0], [62.0]], t, inputs=shed)
+    surf = SwitchingSurfaces(kind="per-source").fit(Z, labels, lengths, ["T", "shed"])
+    stop = next(g for g in surf.guards_ if g.source == 0)
+
+    def fires(temp: float, flag: float) -> bool:
+        w = dict(zip(stop.terms, np.asarray(stop.weights), strict=True))
+        return w.get("T", 0.0) * temp + w.get("shed", 0.0) * flag + stop.offset > 0
+
+    assert fires(60.0, 1.0) and fires(66.0, 0.0) and not fires(60.0, 0.0)

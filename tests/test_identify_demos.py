@@ -155,11 +155,14 @@ def test_heaters_thermostat_thresholds_and_hysteresis(heaters) -> None:
     assert crossing(guards[off], shed=0.0, w=w) == pytest.approx(rules["T_low"], abs=0.3)
     assert _guard_value(guards[on], T=rules["T_high"] + 1.0, w=w, shed=0.0) > 0
     assert crossing(guards[on], shed=0.0, w=w) == pytest.approx(rules["T_high"], abs=0.3)
-    # during a shed the heater does not come on, down to the coldest logged temperature
+    # during a shed the heater does not come on, down to the coldest logged temperature,
+    # and a shed start turns a running heater off at any temperature of the thermostat band
     cold = float(frame["T [degC]"].min())
     for w in (0.0, 6.0):
         for temp in (cold, rules["T_low"] - 1.0):
             assert _guard_value(guards[off], T=temp, w=w, shed=1.0) < 0, (w, temp)
+        for temp in (rules["T_low"] - 3.0, rules["T_high"] - 0.5):
+            assert _guard_value(guards[on], T=temp, w=w, shed=1.0) > 0, (w, temp)
 
 
 def test_heaters_resimulated_duty_cycle(heaters) -> None:
