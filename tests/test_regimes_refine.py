@@ -171,3 +171,48 @@ def test_reported_loglik_equals_per_sample_path_score() -> None:
             assert ours.n == ref.n
             np.testing.assert_allclose(ours.gram, ref.gram, rtol=1e-10)
             np.testing.assert_allclose(ours.cross, ref.cross, rtol=1e-10)
+
+
+def test_interior_fits_leave_out_the_rows_that_hold_a_switch() -> None:
+    # Discrete form of a process that switches between samples: the row whose interval holds
+    # the switch follows neither map (here half of each: an invented mixed row).  Noise-free,
+    # the fits on stretch interiors recover both generating maps exactly; fits on every row
+    # do not.  With noise, each interior fit equals statsmodels' OLS on the regime's rows
+    # without the stretch ends.
+    import statsmodels.api as sm
+
+    from modemap.regimes.refine import fit_regimes, interior_stats, stretch_ends
+
+    rng = np.random.default_rng(3)
+    n = 4000
+    s = np.repeat(np.arange(40) % 2, 100)
+    y = np.zeros(n + 1)
+    for t in range(n):
+        a, c = PARAMS[s[t]]
+        y[t + 1] = a * y[t] + c + rng.normal(0.0, 0.5)  # excitation along the way
+    x = y[:-1]
+    nxt = PARAMS[s, 0] * x + PARAMS[s, 1]
+    ends = stretch_ends(s, np.array([n]))
+    assert ends.size == 39
+    other = 1 - s[ends]
+    nxt[ends] = 0.5 * nxt[ends] + 0.5 * (PARAMS[other, 0] * x[ends] + PARAMS[other, 1])
+    library = TermLibrary(degree=1).fit(["y"])
+    Z, lengths = x[:, None], np.array([n])
+    stats = accumulate_by_label(library, Z, nxt[:, None], s, 2)
+    inside = interior_stats(Z, nxt[:, None], lengths, s, 2, library, stats)
+    for given, exact in ((inside, True), (stats, False)):
+        coef = np.array([f.coef[:, 0] for f in fit_regimes(given, library.terms_, model="affine")])
+        error = np.abs(coef - PARAMS[:, ::-1]).max()  # rows (c, a)
+        assert error < 1e-9 if exact else error > 1e-3
+
+    noisy = nxt + 0.05 * rng.standard_normal(n)
+    res = refine(
+        Z, noisy[:, None], lengths, s, library, n_regimes=2, model="affine", max_iter=1,
+        interior=True,
+    )  # fmt: skip
+    keep = np.ones(n, dtype=bool)
+    keep[stretch_ends(res.labels, lengths)] = False
+    for j in range(2):
+        rows = keep & (res.labels == j)
+        ols = sm.OLS(noisy[rows], sm.add_constant(x[rows])).fit()
+        np.testing.assert_allclose(res.fits[j].coef[:, 0], ols.params, rtol=1e-8)

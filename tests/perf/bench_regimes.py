@@ -1,8 +1,10 @@
 """Benchmark of the regime refinement (marker ``perf``; run with ``pytest tests/perf -m perf -s``).
 
 K = 3 regimes, 3 states, 10^6 samples; affine local models, and sparse models on the degree-2
-polynomial terms (the default).  Reported as ratios against floors measured in the same run,
-each time the shortest of three calls (the machine is shared):
+polynomial terms (the default); affine models again with the discrete form's fits on stretch
+interiors (``interior=True``: the last row of each stretch left out of the fits).  Reported as
+ratios against floors measured in the same run, each time the shortest of three calls (the
+machine is shared):
 
 * time of the full refinement / time of one ``accumulate`` pass over the same data and terms
   (target <= 10);
@@ -53,8 +55,11 @@ def _best_of(repeat: int, func) -> tuple[float, object]:
     return best, out
 
 
-@pytest.mark.parametrize(("model", "degree"), [("affine", 1), ("sparse", 2)])
-def test_refinement_speed_and_memory(model: str, degree: int) -> None:
+@pytest.mark.parametrize(
+    ("model", "degree", "interior"),
+    [("affine", 1, False), ("sparse", 2, False), ("affine", 1, True)],
+)
+def test_refinement_speed_and_memory(model: str, degree: int, interior: bool) -> None:
     z, y, truth, start = _data()
     library = TermLibrary(degree=degree).fit(["a", "b", "c"])
     lengths = np.array([N // 4] * 4)
@@ -64,7 +69,9 @@ def test_refinement_speed_and_memory(model: str, degree: int) -> None:
     t_viterbi, _ = _best_of(3, lambda: viterbi(emissions, *chain))
 
     def run():
-        return refine(z, y, lengths, start, library, n_regimes=K, model=model, max_iter=30)
+        return refine(
+            z, y, lengths, start, library, n_regimes=K, model=model, max_iter=30, interior=interior
+        )
 
     elapsed, result = _best_of(3, run)
     # memory in a separate, traced run: tracemalloc slows every allocation, so it is not timed
@@ -75,7 +82,8 @@ def test_refinement_speed_and_memory(model: str, degree: int) -> None:
     accuracy = np.mean(result.labels == truth)
     per_iteration = elapsed / result.monitor.iterations / floor
     print(
-        f"\n{model}, {library.n_terms_} terms: accumulate pass {floor:.3f} s; viterbi "
+        f"\n{model}{', interior' if interior else ''}, {library.n_terms_} terms: accumulate "
+        f"pass {floor:.3f} s; viterbi "
         f"{t_viterbi:.3f} s; refinement {elapsed:.3f} s ({result.monitor.iterations} iterations, "
         f"ratio {elapsed / floor:.1f}, per iteration {per_iteration:.1f}); peak memory "
         f"{peak / 1e6:.0f} MB = {peak / z.nbytes:.2f} x input ({z.nbytes / 1e6:.0f} MB); "

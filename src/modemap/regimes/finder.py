@@ -542,6 +542,7 @@ class RegimeFinder(BaseEstimator):
             max_iter=int(self.max_iter),
             settle_dense=settle_dense,
             increments=self.form == "discrete",
+            interior=self.form == "discrete",
             progress=progress,
             engine=self._engine,
             runs=self._runs(Z, Y, lengths),
