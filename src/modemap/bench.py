@@ -542,6 +542,7 @@ def run(args: argparse.Namespace) -> int:
     results: dict[str, Any] = {"machine": machine_info(), "sizes": []}
     with contextlib.ExitStack() as stack:
         workdir = args.workdir or stack.enter_context(tempfile.TemporaryDirectory())
+        Path(workdir).mkdir(parents=True, exist_ok=True)  # a new folder is made, as for --out
         for n in args.sizes:
             path = Path(workdir) / f"invented-{n}.parquet"
             frame, regimes = invented_system(n, args.seed)
@@ -564,10 +565,13 @@ def run(args: argparse.Namespace) -> int:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of ``python -m modemap.bench``."""
-    parser = argparse.ArgumentParser(prog="modemap bench", description=__doc__.splitlines()[0])
-    add_arguments(parser)
-    return run(parser.parse_args(argv))
+    """Entry point of ``python -m modemap.bench``: the same as ``modemap bench`` (errors are
+    one line with exit code 2; ``--debug`` first shows the traceback)."""
+    from modemap.cli import main as cli_main
+
+    argv = sys.argv[1:] if argv is None else list(argv)
+    debug = [a for a in argv if a == "--debug"]
+    return cli_main([*debug, "bench", *(a for a in argv if a != "--debug")])
 
 
 if __name__ == "__main__":
