@@ -48,6 +48,8 @@ def drop_small(
         for k in range(n_regimes)
         if 0 < counts[k] < min_samples
     ]
+    if keep.size == n_regimes:
+        return labels, n_regimes, notes  # nothing dropped: no relabelling copy (large arrays)
     mapping = np.full(n_regimes + 1, -1, dtype=np.int64)
     mapping[keep] = np.arange(keep.size)
     return mapping[labels], int(keep.size), notes

@@ -277,13 +277,19 @@ def location_density(x: np.ndarray, means: np.ndarray, chols: np.ndarray) -> np.
 
 
 def transition_model(
-    labels: np.ndarray, lengths: np.ndarray, k: int, sticky: float, learn: bool = True
+    labels: np.ndarray,
+    lengths: np.ndarray,
+    k: int,
+    sticky: float,
+    learn: bool = True,
+    counts: np.ndarray | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Log start and log transition matrix for the relabelling Viterbi pass.
 
     With ``learn`` the rows are the counts of consecutive pairs within runs (self-transitions
-    included) plus pseudo-counts ``10 * (sticky on the diagonal, the rest spread evenly)``;
-    otherwise the fixed sticky matrix.  The start distribution is uniform.
+    included; ``counts`` if already computed by :func:`pair_counts`) plus pseudo-counts
+    ``10 * (sticky on the diagonal, the rest spread evenly)``; otherwise the fixed sticky
+    matrix.  The start distribution is uniform.
     """
     log_start = np.full(k, -np.log(k))
     if k == 1:
@@ -292,7 +298,9 @@ def transition_model(
     np.fill_diagonal(prior, sticky)
     if not learn:
         return log_start, np.log(prior)
-    trans = pair_counts(labels, lengths, k) + 10.0 * prior
+    if counts is None:
+        counts = pair_counts(labels, lengths, k)
+    trans = counts + 10.0 * prior
     return log_start, np.log(trans / trans.sum(axis=1, keepdims=True))
 
 
@@ -563,6 +571,7 @@ class _State:
     log_trans: np.ndarray
     decoded: tuple[np.ndarray, float, float] | None = None  # engine path: path, best, current
     location: Any = None  # engine path: (weight, means, Cholesky factors) or None
+    pairs: np.ndarray | None = None  # pair_counts of ``labels`` (local path)
 
 
 class _Work:
@@ -708,8 +717,11 @@ def _score_labels(
     log-probability of the labels then come from the statistics alone.  ``stats`` are the
     statistics of ``labels`` if already known (valid only when no regime is dropped).
     """
-    labels, new_k, dropped = drop_small(labels, k, opts.min_samples)
-    notes += dropped
+    if stats is not None and len(stats) == k:
+        new_k = k  # _updated_stats found every regime at min_samples or more: none to drop
+    else:
+        labels, new_k, dropped = drop_small(labels, k, opts.min_samples)
+        notes += dropped
     if new_k == 0:
         raise FitError(f"no regime has at least {opts.min_samples} samples; use fewer regimes")
     if stats is None or new_k != k:
@@ -725,14 +737,17 @@ def _score_labels(
         increments=opts.increments,
     )
     covs = _covariances(stats, fits, opts.floor, opts.covariance)
-    log_start, log_trans = transition_model(labels, lengths, k, opts.sticky, opts.learn)
+    pairs = pair_counts(labels, lengths, k)
+    log_start, log_trans = transition_model(
+        labels, lengths, k, opts.sticky, opts.learn, counts=pairs
+    )
     if not emissions and not opts.location_weight and not np.any(labels < 0):
-        return _State(labels, k, stats, fits, covs, None, log_start, log_trans)
+        return _State(labels, k, stats, fits, covs, None, log_start, log_trans, pairs=pairs)
     log_em = regime_log_likelihood(library, Z, Y, [f.coef for f in fits], covs)
     if opts.location_weight:
         x = Z[:, : Y.shape[1]]
         log_em += opts.location_weight * _location_log_likelihood(x, labels, k)
-    return _State(labels, k, stats, fits, covs, log_em, log_start, log_trans)
+    return _State(labels, k, stats, fits, covs, log_em, log_start, log_trans, pairs=pairs)
 
 
 #: Update the statistics from the changed samples when fewer than this share changed (each
@@ -836,5 +851,6 @@ def _stats_log_prob(state: _State, labels: np.ndarray, lengths: np.ndarray) -> f
     starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
     starts = starts[starts < labels.size]
     total += float(state.log_start[labels[starts]].sum())
-    counts = pair_counts(labels, lengths, state.k)
+    same = state.pairs is not None and labels is state.labels
+    counts = state.pairs if same else pair_counts(labels, lengths, state.k)
     return total + float(np.where(counts > 0, counts * state.log_trans, 0.0).sum())
