@@ -73,6 +73,17 @@ def test_buck_two_regimes_with_textbook_matrices(buck) -> None:
                 assert abs(reg.coefficients[reg.terms.index(term), j]) < 0.03 * 10.0
 
 
+def test_buck_held_out_labels_follow_the_gate(buck) -> None:
+    # the gate steps on the sample grid and the true regime is the gate (truth sidecar); the
+    # held-out run is labelled by predict, whose derivatives are not taken across the gate's
+    # steps (measured: 100 % of the held-out samples; 97.6 % with whole-run derivatives)
+    ident, _, frame, _ = buck
+    _, match = _matching(ident.labels_["regime"].to_numpy(), frame["true_regime"].to_numpy())
+    held = frame["run"].astype(str).isin([str(r.origin) for r in ident.test_.runs]).to_numpy()
+    ours = np.vectorize(match.get)(ident.labels_["regime"].to_numpy()[held])
+    assert np.mean(ours == frame["true_regime"].to_numpy()[held]) >= 0.999
+
+
 def test_buck_guards_switch_on_the_gate(buck) -> None:
     ident, _, _, _ = buck
     guards = ident.model_.guards

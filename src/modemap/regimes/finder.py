@@ -588,9 +588,10 @@ class RegimeFinder(BaseEstimator):
         """Regime of every sample of ``ds`` under the fitted regimes.
 
         The regression rows of ``ds`` are built with the same form and derivative
-        settings as in :meth:`fit`; each run is decoded by Viterbi with the fitted
-        residual likelihoods and transition matrix (the optional location term is
-        not used: it belongs to the training labels).
+        settings as in :meth:`fit` (continuous form: derivatives never taken across a
+        step of a stepped input, see :mod:`modemap.regimes.segments`); each run is
+        decoded by Viterbi with the fitted residual likelihoods and transition matrix
+        (the optional location term is not used: it belongs to the training labels).
 
         Returns
         -------
@@ -610,10 +611,14 @@ class RegimeFinder(BaseEstimator):
             )
         reg = prepare_regression(ds, form=self.form, derivative=self.regression_.derivative)
         k = self.n_regimes_
+        Y = np.asarray(reg.Y, dtype=np.float64)
+        if self.form == "continuous" and self.resegment:
+            # no labels yet, but the steps of the inputs are known: no derivative across them
+            Y = self.segment_targets(reg, np.zeros(Y.shape[0], dtype=np.int64))
         log_em = regime_log_likelihood(
             self.library_,
             np.asarray(reg.Z, dtype=np.float64),
-            np.asarray(reg.Y, dtype=np.float64),
+            Y,
             [np.asarray(f.coef) for f in self.local_fits_],
             self.covariances_,
         )
