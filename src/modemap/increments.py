@@ -95,15 +95,16 @@ def fit_on_increments(
     stats: GramStats | list[GramStats],
     terms: Sequence[str],
     states: Sequence[str],
-) -> LocalFit | None:
+) -> LocalFit:
     """Select terms on the increments, refit on the next states with the own terms kept.
 
     Parameters
     ----------
     select : callable
         A sparse fit taking statistics (one object, or a list of per-block statistics
-        when ``stats`` is a list) and returning a :class:`~modemap.sparse.LocalFit`;
-        only its ``support``, ``threshold`` and ``path`` are used.
+        when ``stats`` is a list) and returning a :class:`~modemap.sparse.LocalFit`; of
+        its result on the increments only ``support``, ``threshold`` and ``path`` are
+        used.
     stats : GramStats or list of GramStats
         Statistics of the next states (per block for a cross-validated choice).
     terms : sequence of str
@@ -112,14 +113,14 @@ def fit_on_increments(
 
     Returns
     -------
-    LocalFit or None
-        None when a state's own linear term is not in ``terms`` (use the plain fit).
+    LocalFit
+        ``select(stats)`` itself when a state's own linear term is not in ``terms``.
     """
     blocks = isinstance(stats, list)
     first = stats[0] if blocks else stats
     E = persistence_matrix(terms, states)
     if E is None or E.shape[1] != first.n_targets:
-        return None
+        return select(stats)
     moved = [increment_stats(s, E) for s in stats] if blocks else increment_stats(stats, E)
     chosen = select(moved)
     total = sum(stats) if blocks else stats

@@ -304,10 +304,7 @@ class LocalDynamics(BaseEstimator):
                 )
 
         if self.form == "discrete":  # select on x[k+1] - x[k] (modemap.increments)
-            states = library.variables_[: reg.Y.shape[1]]
-            fit = fit_on_increments(select, stats, terms, states)
-            if fit is not None:
-                return fit
+            return fit_on_increments(select, stats, terms, library.variables_[: reg.Y.shape[1]])
         return select(stats)
 
     def _set_results(self, ds: Dataset, reg: RegressionData, library: TermLibrary, fit) -> None:

@@ -247,8 +247,7 @@ def block_bootstrap(
     chosen = np.empty(coefs.shape, dtype=bool)
     for b in range(n_boot):
         rep = _weighted(stacked, _coverage(rng, runs, total))
-        fit = None if states is None else fit_on_increments(select, rep, terms, states)
-        fit = select(rep) if fit is None else fit
+        fit = select(rep) if states is None else fit_on_increments(select, rep, terms, states)
         coefs[b], chosen[b] = fit.coef, fit.support
     return {
         "inclusion": chosen.mean(axis=0),

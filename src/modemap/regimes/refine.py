@@ -170,11 +170,8 @@ def fit_regimes(
         return [select(s) for s in stats]
     from modemap.increments import fit_on_increments
 
-    fits = []
-    for s in stats:
-        fit = fit_on_increments(select, s, list(terms), list(variables)[: s.n_targets])
-        fits.append(select(s) if fit is None else fit)
-    return fits
+    states = list(variables)[: stats[0].n_targets] if stats else []
+    return [fit_on_increments(select, s, list(terms), states) for s in stats]
 
 
 def _covariances(
