@@ -67,3 +67,20 @@ def test_a_sample_between_an_input_step_and_a_label_change_takes_the_step_side()
     early = (np.arange(t.size) >= k - 1).astype(int)
     out = segment_derivatives(t, x, whole, np.array([t.size]), early, settings, inputs=u[:, None])
     assert out[k - 1, 0] == pytest.approx(1.0, abs=1e-9)
+
+
+def test_an_input_held_for_one_sample_gives_that_interval_s_slope() -> None:
+    # dx/dt = u with u = 1, then -2 for one sample only, then 1 again: the sample between the
+    # two steps has no stretch to smooth over; its derivative is the mean slope of its own
+    # interval, exact for these linear pieces (elementary calculus)
+    t = np.arange(0.0, 10.0, 0.05)
+    k = t.size // 2
+    u = np.ones(t.size)
+    u[k] = -2.0
+    x = np.concatenate([[0.0], np.cumsum(u[:-1] * 0.05)])[:, None]
+    labels = np.zeros(t.size, dtype=int)
+    settings = {"method": "savgol", "window": 21, "order": 3}
+    whole, _ = differentiate(t, x, **settings)
+    assert abs(whole[k, 0] + 2.0) > 0.5
+    out = segment_derivatives(t, x, whole, np.array([t.size]), labels, settings, inputs=u[:, None])
+    assert out[k, 0] == pytest.approx(-2.0, abs=1e-9)

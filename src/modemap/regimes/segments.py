@@ -9,8 +9,11 @@ samples are a large share of the data and look like extra regimes.
 Once labels exist, the derivative is therefore re-estimated inside each
 stretch of constant label, exactly as derivatives are never taken across run
 boundaries.  The method and its options are the ones recorded for the run;
-stretches too short for them fall back to central differences, and a
-one-sample stretch keeps its whole-run value.
+stretches too short for them fall back to central differences.  A one-sample
+stretch next to an input step takes the estimate of the stretch on the step's
+other side (the step is a fact, the label change a hypothesis); between two
+input steps it takes the mean slope of its own interval; between two label
+changes it keeps its whole-run value.
 
 A step of a piecewise-constant input (a draw switched on, a coolant set point
 moved) puts a kink in the states just as a regime change does, so stretches are
@@ -95,6 +98,9 @@ def segment_derivatives(
             elif right_step and not left_step and a > offset:
                 c = edges[i - 1]
                 out[a] = _stretch(time[c:b], states[c:b], run_settings)[-1]
+            elif left_step and right_step:
+                # the input holds for this one interval only: its mean slope
+                out[a] = (states[b] - states[a]) / (time[b] - time[a])
         offset = stop
     return out
 
