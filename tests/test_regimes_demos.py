@@ -99,8 +99,8 @@ def test_water_heaters_regimes(heaters) -> None:
 def test_water_heaters_coefficients(heaters_continuous) -> None:
     # the demo's sheds take the tank from 60 down to 15-25 degC and the recoveries back up,
     # so the constant, T, w and T*w terms are separable in both regimes (measured, seed 0:
-    # worst 1.76 %, the heater-off constant; at K = 2 generator seeds 0-7 gave 0.94-4.13 %,
-    # and auto chose 2 on seven of them, 5 on seed 2)
+    # worst 1.78 %, the heater-off constant; at K = 2 generator seeds 0-7 gave 0.86-4.09 %,
+    # and auto chose 2 on all eight)
     finder, truth_labels, truth, _ = heaters_continuous
     assert finder.n_regimes_ == 2
     acc, match = _matching(np.concatenate(finder.labels_), truth_labels)
