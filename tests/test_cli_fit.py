@@ -121,3 +121,17 @@ def test_extra_candidate_terms_reach_the_model(tmp_path) -> None:
     for r in model["regimes"]:
         assert r["coefficients"]["x"][r["terms"].index("exp(-x)")] == 0.0
     assert main([*args[:-2], "--term", "exp(-q)", "--out", str(tmp_path / "bad")]) == 2
+
+
+def test_final_fit_option_reaches_the_fit(tmp_path) -> None:
+    data = tmp_path / "relay.csv"
+    relay_frame(n_runs=2, duration=12.0).to_csv(data, index=False)
+    for choice in ("derivative", "integral"):
+        out = tmp_path / choice
+        args = ["fit", str(data), *COLUMNS, "--regimes", "2", "--final-fit", choice]
+        assert main([*args, "--out", str(out)]) == 0
+        model = json.loads((out / "model.json").read_text())
+        assert model["metadata"]["options"]["final_fit"] == choice
+    with pytest.raises(SystemExit) as info:  # argparse's usage error
+        main(["fit", str(data), *COLUMNS, "--final-fit", "twice", "--out", str(tmp_path / "x")])
+    assert info.value.code == 2

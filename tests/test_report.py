@@ -226,6 +226,10 @@ def test_derivative_and_metadata() -> None:
     assert "method 'savgol'" in text and "| window | 9 |" in text
     assert "| modemap version | 0.1.0 |" in text and "| seed | 7 |" in text
     assert "| degree | 2 |" in text and "- regime 2 merged into regime 1" in text
+    assert "integral" not in text  # no final fit recorded (a model file from before the option)
+    model = two_regime_model()
+    model.metadata["options"]["final_fit"] = "integral"
+    assert "estimated again on the integral of its equations" in render_report(model)
 
 
 def test_one_regime_without_guards_or_validation() -> None:

@@ -295,6 +295,13 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
         help="derivative estimator in continuous form (default: auto)",
     )
     group.add_argument(
+        "--final-fit",
+        default="integral",
+        choices=("integral", "derivative"),
+        help="continuous form: re-choose and re-estimate each regime's terms on the "
+        "integral form once the regimes are found (default: integral)",
+    )
+    group.add_argument(
         "--guards",
         default="auto",
         choices=("auto", "per-source", "memoryless"),
@@ -368,6 +375,7 @@ def identifier_from_args(args: argparse.Namespace):
         custom_terms=tuple(args.terms),
         threshold=_threshold(args.threshold),
         derivative=args.derivative,
+        final_fit=args.final_fit,
         guard_kind=args.guards,
         holdout=args.holdout,
         min_dwell=args.min_dwell,

@@ -57,6 +57,10 @@ class HybridIdentifier(BaseEstimator):
         Sparsity threshold on normalised coefficients.
     derivative : str, default="auto"
         Derivative estimator (continuous form).
+    final_fit : {"integral", "derivative"}, default="integral"
+        Continuous form: re-choose and re-estimate each regime's terms on the integral
+        form once the regimes are found (:mod:`modemap.integral`), or keep the fit on
+        the derivative estimates.
     guard_kind : {"auto", "per-source", "memoryless"}, default="auto"
     guard_degree : int, default=1
     holdout : float, default=0.25
@@ -92,6 +96,7 @@ class HybridIdentifier(BaseEstimator):
         custom_terms: tuple[str, ...] | list[str] = (),
         threshold: str | float = "auto",
         derivative: str = "auto",
+        final_fit: str = "integral",
         guard_kind: str = "auto",
         guard_degree: int = 1,
         holdout: float = 0.25,
@@ -109,6 +114,7 @@ class HybridIdentifier(BaseEstimator):
         self.custom_terms = custom_terms
         self.threshold = threshold
         self.derivative = derivative
+        self.final_fit = final_fit
         self.guard_kind = guard_kind
         self.guard_degree = guard_degree
         self.holdout = holdout
@@ -137,6 +143,7 @@ class HybridIdentifier(BaseEstimator):
             custom=tuple(self.custom_terms),
             threshold=self.threshold,
             derivative=self.derivative,
+            final_fit=self.final_fit,
             min_dwell=self.min_dwell,
             seed=self.seed,
             engine=self.engine,

@@ -527,6 +527,19 @@ def _derivative_section(model: HybridModel) -> str:
             out.append(_table(["training run", *keys], rows))
     else:
         out.append("The derivative method was not recorded.")
+    options = (model.metadata or {}).get("options")
+    if (
+        model.form != "discrete"
+        and isinstance(options, dict)
+        and options.get("final_fit") == "integral"
+    ):
+        out.append(
+            "The rates of change served to find the regimes. Each regime's terms and "
+            "coefficients were then chosen and estimated again on the integral of its "
+            "equations over short windows inside its stretches, which needs no derivative, "
+            "with the measurement noise in the terms compensated (docs/method.md, "
+            "integral-form refit)."
+        )
     return "\n\n".join(out)
 
 

@@ -90,3 +90,39 @@ def test_refinement_speed_and_memory(model: str, degree: int, interior: bool) ->
         f"label accuracy {accuracy:.4f}"
     )
     assert accuracy > 0.99
+
+
+def test_integral_refit_speed_and_memory() -> None:
+    """The continuous form's final refit (modemap.integral): windows of 16 intervals,
+    noise compensation and re-selection of the degree-2 terms, on the true labels; reported
+    against one ``accumulate`` pass, like the refinement (no target: measured figures are in
+    docs/performance.md)."""
+    from modemap.integral import integral_refit
+    from modemap.regimes.refine import fit_regimes
+    from modemap.stats import accumulate_by_label
+
+    z, y, truth, _ = _data()
+    library = TermLibrary(degree=2).fit(["a", "b", "c"])
+    lengths = np.array([N // 4] * 4)
+    time_ = 0.01 * np.arange(N)
+    floor, _ = _best_of(3, lambda: accumulate(library, z, y))
+    stats = accumulate_by_label(library, z, y, truth, K)
+    fits = fit_regimes(stats, library.terms_, variables=library.variables_)
+
+    def select(s):
+        return fit_regimes([s], library.terms_, variables=library.variables_)[0]
+
+    def run():
+        return integral_refit(library, z, M, time_, lengths, truth, fits, stats, select=select)
+
+    elapsed, result = _best_of(3, run)
+    tracemalloc.start()
+    run()
+    _, peak = tracemalloc.get_traced_memory()
+    tracemalloc.stop()
+    print(
+        f"\nintegral refit, {library.n_terms_} terms, {int(result.n_windows.sum())} windows: "
+        f"accumulate pass {floor:.3f} s; refit {elapsed:.3f} s (ratio {elapsed / floor:.1f}); "
+        f"peak memory {peak / 1e6:.0f} MB = {peak / z.nbytes:.2f} x input"
+    )
+    assert np.all(np.isfinite(np.concatenate([f.coef.ravel() for f in result.fits])))
