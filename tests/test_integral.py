@@ -184,3 +184,42 @@ def test_reactor_noise_in_the_terms_biases_the_plain_estimate(reactor_true_label
     run, true, _ = reactor_true_labels
     high = run(compensate=False).fits[1]
     assert high.coef[3, 1] / true[3, 1] - 1.0 > 0.03
+
+
+def test_regime_without_windows_keeps_its_fit_and_short_runs_are_skipped() -> None:
+    # regime 1 only ever lasts one sample: no window, so its fit is returned unchanged; a
+    # run of one sample has no interval at all
+    t, Z = _lag(2.0, 3.0, 0.05, 400, seed=5, noise=0.001)
+    labels = np.zeros(t.size, dtype=np.int64)
+    labels[50::97] = 1
+    library = TermLibrary.from_terms(["x", "u"], ["x", "u"])
+    t = np.append(t, 0.0)
+    Z = np.vstack([Z, Z[:1]])
+    labels = np.append(labels, 0)
+    old = [_start_fit(["x", "u"], 1, 1) for _ in range(2)]
+    old[1].coef[:] = [[-7.0], [7.0]]
+    dstats = [GramStats.from_arrays(library.transform(Z), np.zeros((t.size, 1)))] * 2
+    done = integral_refit(library, Z, 1, t, [t.size - 1, 1], labels, old, dstats)
+    assert done.n_windows[1] == 0
+    np.testing.assert_array_equal(done.fits[1].coef, old[1].coef)
+    assert done.fits[0].coef[0, 0] == pytest.approx(-2.0, rel=0.01)
+    assert done.fits[0].coef[1, 0] == pytest.approx(3.0, rel=0.01)
+
+
+def test_uneven_sampling_uses_each_interval_length() -> None:
+    # the same lag sampled at uneven instants (exact solution over each interval)
+    rng = np.random.default_rng(2)
+    a, b = 2.0, 3.0
+    dt = rng.uniform(0.02, 0.08, 3000)
+    u = np.repeat(rng.uniform(0.0, 2.0, 3000 // 40 + 1), 40)[:3000]
+    x = np.empty(3001)
+    x[0] = 1.0
+    for k in range(3000):
+        phi = np.exp(-a * dt[k])
+        x[k + 1] = phi * x[k] + (1.0 - phi) * b / a * u[k]
+    t = np.concatenate([[0.0], np.cumsum(dt)])
+    Z = np.column_stack([x, np.append(u, u[-1])])
+    library = TermLibrary.from_terms(["x", "u"], ["x", "u"])
+    done = _refit(library, Z, t, [t.size], np.zeros(t.size, dtype=np.int64), 1)
+    assert done.fits[0].coef[0, 0] == pytest.approx(-a, rel=3e-3)
+    assert done.fits[0].coef[1, 0] == pytest.approx(b, rel=3e-3)

@@ -322,3 +322,19 @@ def test_few_rows_for_many_regimes_still_fit() -> None:
     finder = RegimeFinder(form="discrete", n_regimes=3, min_samples=5).fit(ds)
     assert 1 <= finder.n_regimes_ <= 3
     assert [lab.size for lab in finder.labels_] == [n]
+
+
+def test_final_fit_leaves_the_discrete_form_alone() -> None:
+    frame, _ = _switching_ar(n=600, seed=4)
+    ds = read_data(frame, time="t", states=["y"])
+    coefs = [
+        [
+            f.coef
+            for f in RegimeFinder(form="discrete", n_regimes=2, final_fit=choice)
+            .fit(ds)
+            .local_fits_
+        ]
+        for choice in ("integral", "derivative")
+    ]
+    for a, b in zip(*coefs, strict=True):
+        np.testing.assert_array_equal(a, b)
