@@ -19,7 +19,8 @@ import pytest
 import statsmodels.api as sm
 
 from modemap.demos import make_demo
-from modemap.integral import integral_refit, right_ends, stepped_columns, window_bounds
+from modemap.integral import integral_refit, right_ends, window_bounds
+from modemap.regimes.segments import stepped_columns
 from modemap.sparse import LocalFit
 from modemap.stats import GramStats
 from modemap.terms import TermLibrary
@@ -188,10 +189,11 @@ def test_reactor_noise_in_the_terms_biases_the_plain_estimate(reactor_true_label
 
 def test_regime_without_windows_keeps_its_fit_and_short_runs_are_skipped() -> None:
     # regime 1 only ever lasts one sample: no window, so its fit is returned unchanged; a
-    # run of one sample has no interval at all
+    # run of one sample has no interval at all; unassigned samples (-1) give no window
     t, Z = _lag(2.0, 3.0, 0.05, 400, seed=5, noise=0.001)
     labels = np.zeros(t.size, dtype=np.int64)
     labels[50::97] = 1
+    labels[300:320] = -1  # unassigned samples are left out
     library = TermLibrary.from_terms(["x", "u"], ["x", "u"])
     t = np.append(t, 0.0)
     Z = np.vstack([Z, Z[:1]])
@@ -201,6 +203,9 @@ def test_regime_without_windows_keeps_its_fit_and_short_runs_are_skipped() -> No
     dstats = [GramStats.from_arrays(library.transform(Z), np.zeros((t.size, 1)))] * 2
     done = integral_refit(library, Z, 1, t, [t.size - 1, 1], labels, old, dstats)
     assert done.n_windows[1] == 0
+    # the label-0 windows: those of the stretches of zeros alone
+    zeros = window_bounds([t.size - 1, 1], np.where(labels == 0, 0, 1), 16)
+    assert done.n_windows[0] == np.sum(labels[zeros[0]] == 0)
     np.testing.assert_array_equal(done.fits[1].coef, old[1].coef)
     assert done.fits[0].coef[0, 0] == pytest.approx(-2.0, rel=0.01)
     assert done.fits[0].coef[1, 0] == pytest.approx(3.0, rel=0.01)

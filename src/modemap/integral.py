@@ -56,15 +56,13 @@ import numpy as np
 import scipy.linalg as sla
 
 from modemap.derivatives import estimate_noise
+from modemap.regimes.segments import stepped_columns
 from modemap.sparse import LocalFit
 from modemap.stats import GramStats
 from modemap.uncertainty import standard_errors
 
-__all__ = ["IntegralRefit", "integral_refit", "right_ends", "stepped_columns", "window_bounds"]
+__all__ = ["IntegralRefit", "integral_refit", "right_ends", "window_bounds"]
 
-#: An input that changes at no more than this share of its samples is stepped
-#: (the rule of :mod:`modemap.regimes.segments`).
-MAX_STEP_SHARE = 0.25
 _CHUNK_ROWS = 65536
 #: Blocks for the standard errors: this many window lengths of one stretch.
 _BLOCK_WINDOWS = 10
@@ -93,28 +91,11 @@ class IntegralRefit:
     notes: list[str] = field(default_factory=list)
 
 
-def stepped_columns(inputs: np.ndarray) -> np.ndarray:
-    """Which input columns are stepped: they change at no more than a quarter of the samples.
-
-    Parameters
-    ----------
-    inputs : ndarray of shape (n, n_inputs)
-
-    Returns
-    -------
-    ndarray of bool, shape (n_inputs,)
-    """
-    inputs = np.asarray(inputs)
-    if inputs.ndim != 2 or inputs.shape[0] < 2:
-        return np.zeros(inputs.shape[-1] if inputs.ndim == 2 else 0, dtype=bool)
-    return (inputs[1:] != inputs[:-1]).mean(axis=0) <= MAX_STEP_SHARE
-
-
 def right_ends(Z: np.ndarray, n_states: int, lengths: Sequence[int]) -> np.ndarray:
     """Variables at the right end of every sample interval ``[t_k, t_k+1]``.
 
-    Row ``k`` holds the states of sample ``k + 1`` and the inputs of sample ``k + 1``,
-    except stepped inputs (:func:`stepped_columns`), which keep sample ``k``'s value over
+    Row ``k`` holds the states and inputs of sample ``k + 1``, except stepped inputs
+    (:func:`modemap.regimes.segments.stepped_columns`), which keep sample ``k``'s value over
     the interval.  The last row of each run has no interval and repeats its own values.
 
     Parameters
@@ -228,13 +209,15 @@ class _Windows:
     stepped input changes there (or a run ends): only those rows are evaluated apart.
     """
 
-    def __init__(self, library, Z, n_states, time, lengths, labels, window):
+    def __init__(self, library, Z, n_states, time, lengths, labels, window, n_regimes):
         self.library, self.Z, self.m, self.time = library, Z, n_states, time
         self.right = right_ends(Z, n_states, lengths)
         # own[k]: the right end of interval k - 1 is sample k itself
         self.own = np.ones(Z.shape[0], dtype=bool)
         self.own[1:] = np.all(self.right[:-1] == Z[1:], axis=1)
-        self.start, self.end, stretch = window_bounds(lengths, labels, window)
+        start, end, stretch = window_bounds(lengths, labels, window)
+        keep = (labels[start] >= 0) & (labels[start] < n_regimes)  # unassigned samples: none
+        self.start, self.end, stretch = start[keep], end[keep], stretch[keep]
         self.regime = labels[self.start].astype(np.int64)
         self.block = _blocks(self.start, stretch, _BLOCK_WINDOWS * window)
         self.chunks = _chunks(self.start, self.block)
@@ -277,7 +260,7 @@ def integral_refit(
     compensate: bool = True,
     select: Callable[[GramStats], LocalFit] | None = None,
 ) -> IntegralRefit:
-    """Re-estimate every regime's coefficients on its support from the integral form.
+    """Re-estimate every regime's coefficients (and terms) from the integral form.
 
     See the module notes for the method.
 
@@ -292,9 +275,9 @@ def integral_refit(
     lengths : sequence of int
         Samples per run.
     labels : ndarray of int, shape (n,)
-        Regime of every sample.
+        Regime of every sample (negative: unassigned, left out).
     fits : sequence of LocalFit
-        One per regime; their supports are kept.
+        One per regime; their supports are kept unless ``select`` is given.
     derivative_stats : sequence of GramStats
         The statistics ``fits`` came from (derivative targets); they give each new
         fit's residual covariance and residual sums of squares.
@@ -318,7 +301,7 @@ def integral_refit(
     k, p = len(fits), library.n_terms_
     if int(window) < 1:
         raise ValueError(f"window must be >= 1, got {window!r}")
-    windows = _Windows(library, Z, n_states, time, lengths, labels, int(window))
+    windows = _Windows(library, Z, n_states, time, lengths, labels, int(window), k)
     noise_var = _noise_variance(Z[:, :n_states], lengths) if compensate else np.zeros(n_states)
     stats = [GramStats.zeros(p, n_states) for _ in range(k)]
     bias = np.zeros((k, p, p))
@@ -412,7 +395,7 @@ def _add_noise_bias(
     weight = half_b**2 * starts + half_a**2 * ends + (half_a + half_b) ** 2 * inside
     weight[apart] = 0.0
     cross_w = half_a * ends - half_b * starts
-    for g in np.unique(labels):
+    for g in np.unique(labels[(labels >= 0) & (labels < bias.shape[0])]):
         rows = labels == g
         root = np.sqrt(np.where(rows, weight, 0.0))[:, None]
         sel = apart[rows[apart]]

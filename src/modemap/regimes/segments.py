@@ -36,7 +36,7 @@ import numpy as np
 
 from modemap.derivatives import differentiate
 
-__all__ = ["segment_derivatives"]
+__all__ = ["segment_derivatives", "stepped_columns"]
 
 _MIN_SMOOTH = 7  # shortest stretch given to the recorded (smoothing) method
 _MAX_STEP_SHARE = 0.25  # an input changing at more samples than this is not "stepped"
@@ -105,15 +105,31 @@ def segment_derivatives(
     return out
 
 
+def stepped_columns(inputs: np.ndarray) -> np.ndarray:
+    """Which input columns are stepped: they change at no more than a quarter of the samples.
+
+    Parameters
+    ----------
+    inputs : ndarray of shape (n, n_inputs)
+
+    Returns
+    -------
+    ndarray of bool, shape (n_inputs,)
+    """
+    inputs = np.asarray(inputs)
+    if inputs.ndim != 2 or inputs.shape[0] < 2:
+        return np.zeros(inputs.shape[-1] if inputs.ndim == 2 else 0, dtype=bool)
+    return (inputs[1:] != inputs[:-1]).mean(axis=0) <= _MAX_STEP_SHARE
+
+
 def _input_steps(inputs: np.ndarray | None, n: int) -> np.ndarray:
     """``steps[i]``: a stepped input changes between samples ``i - 1`` and ``i``."""
     steps = np.zeros(n, dtype=bool)
     if inputs is None or np.size(inputs) == 0 or n < 2:
         return steps
-    change = np.asarray(inputs).reshape(n, -1)
-    change = change[1:] != change[:-1]
-    stepped = change.mean(axis=0) <= _MAX_STEP_SHARE
-    steps[1:] = change[:, stepped].any(axis=1)
+    inputs = np.asarray(inputs).reshape(n, -1)
+    change = inputs[1:] != inputs[:-1]
+    steps[1:] = change[:, stepped_columns(inputs)].any(axis=1)
     return steps
 
 
