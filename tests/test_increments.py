@@ -13,6 +13,7 @@ import pandas as pd
 import pytest
 import statsmodels.api as sm
 
+from lag_data import held_lag
 from modemap import read_data
 from modemap.centring import fit_sparse_centred
 from modemap.increments import fit_on_increments, increment_stats, persistence_matrix
@@ -27,11 +28,7 @@ def _slow_tank(seed: int = 0, n: int = 6000, noise: float = 2e-5) -> pd.DataFram
     """A first-order lag sampled 10^4 times faster than its time constant (invented)."""
     rng = np.random.default_rng(seed)
     u = np.repeat(rng.uniform(0.0, 2.0, n // 200 + 1), 200)[:n]
-    phi = np.exp(-A * DT)
-    x = np.empty(n)
-    x[0] = 30.0
-    for k in range(n - 1):
-        x[k + 1] = phi * x[k] + (1.0 - phi) * B / A * u[k]
+    x = held_lag(30.0, u[:-1], DT, A, B)
     t = DT * np.arange(n)
     return pd.DataFrame({"t": t, "x": x + noise * rng.standard_normal(n), "u": u})
 

@@ -2,9 +2,9 @@
 
 References:
 
-* the exact discretisation of a first-order linear system under a zero-order hold,
-  ``x[k+1] = e^(-a dt) x[k] + (1 - e^(-a dt)) (b / a) u[k]`` (textbook: the
-  matrix-exponential solution of a linear ODE with piecewise-constant input);
+* the exact discretisation of a first-order linear system under a zero-order hold
+  (tests/lag_data.py; textbook: the matrix-exponential solution of a linear ODE with
+  piecewise-constant input);
 * statsmodels' ordinary least squares with cluster-robust covariance
   (``OLS.fit(cov_type="cluster")``): the sandwich ``(X'X)^-1 (sum_g s_g s_g') (X'X)^-1``
   over groups of rows, which is what the standard errors over blocks of windows are;
@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
+from lag_data import held_lag
 from modemap.demos import make_demo
 from modemap.integral import integral_refit, right_ends, window_bounds
 from modemap.regimes.segments import stepped_columns
@@ -30,11 +31,7 @@ def _lag(a: float, b: float, dt: float, n: int, seed: int = 0, noise: float = 0.
     """First-order lag ``x' = -a x + b u`` under a stepped input, exact at the samples."""
     rng = np.random.default_rng(seed)
     u = np.repeat(rng.uniform(0.0, 2.0, n // 40 + 1), 40)[:n]
-    phi = np.exp(-a * dt)
-    x = np.empty(n)
-    x[0] = 1.0
-    for k in range(n - 1):
-        x[k + 1] = phi * x[k] + (1.0 - phi) * b / a * u[k]
+    x = held_lag(1.0, u[:-1], dt, a, b)
     t = dt * np.arange(n)
     return t, np.column_stack([x + noise * rng.standard_normal(n), u])
 
@@ -217,11 +214,7 @@ def test_uneven_sampling_uses_each_interval_length() -> None:
     a, b = 2.0, 3.0
     dt = rng.uniform(0.02, 0.08, 3000)
     u = np.repeat(rng.uniform(0.0, 2.0, 3000 // 40 + 1), 40)[:3000]
-    x = np.empty(3001)
-    x[0] = 1.0
-    for k in range(3000):
-        phi = np.exp(-a * dt[k])
-        x[k + 1] = phi * x[k] + (1.0 - phi) * b / a * u[k]
+    x = held_lag(1.0, u, dt, a, b)
     t = np.concatenate([[0.0], np.cumsum(dt)])
     Z = np.column_stack([x, np.append(u, u[-1])])
     library = TermLibrary.from_terms(["x", "u"], ["x", "u"])

@@ -9,6 +9,7 @@ from scipy.linalg import expm
 from scipy.optimize import linear_sum_assignment
 from statsmodels.datasets import nile
 
+from lag_data import held_lag
 from modemap._exceptions import FitCancelled, FitError
 from modemap.intake import read_data
 from modemap.regimes import RegimeFinder
@@ -229,18 +230,14 @@ def test_bad_parameters_raise_fit_error() -> None:
 def _switched_lags(n: int = 6000, dt: float = 0.05, seed: int = 0) -> pd.DataFrame:
     """Two first-order lags chosen by a stepped input ``s`` (invented).
 
-    Exact at the samples: ``x[k+1] = e^(-a dt) x[k] + (1 - e^(-a dt)) (b u[k] + c) / a``, the
-    zero-order-hold solution of ``x' = -a x + b u + c`` (textbook).
+    Exact at the samples: the zero-order-hold solution of ``x' = -a x + b u + c``
+    (tests/lag_data.py, textbook).
     """
     rng = np.random.default_rng(seed)
     u = np.repeat(rng.uniform(0.0, 2.0, n // 50 + 1), 50)[:n]
     s = np.repeat(rng.integers(0, 2, n // 230 + 1), 230)[:n]
-    x = np.empty(n)
-    x[0] = 1.0
-    for k in range(n - 1):
-        a, b, c = _LAGS[s[k]]
-        phi = np.exp(-a * dt)
-        x[k + 1] = phi * x[k] + (1.0 - phi) * (b * u[k] + c) / a
+    a, b, c = np.array([_LAGS[v] for v in s[:-1]]).T
+    x = held_lag(1.0, u[:-1], dt, a, b, c)
     noisy = x + 0.01 * rng.standard_normal(n)
     return pd.DataFrame({"t": dt * np.arange(n), "x": noisy, "u": u, "s": s})
 
