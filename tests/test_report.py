@@ -232,6 +232,17 @@ def test_derivative_and_metadata() -> None:
     assert "estimated again on the integral of its equations" in render_report(model)
 
 
+def test_equilibrium_error_legend_says_what_the_errors_leave_out() -> None:
+    model = two_regime_model()
+    model.regimes[0].equilibria[0].stderr = {"T": 0.1, "P": 0.05}
+    plain = render_report(model)
+    assert "| 4 ± 0.1 |" in plain
+    assert "leaves out the error of the model's form and the serial correlation" in plain
+    model.metadata["options"]["final_fit"] = "integral"  # sandwich errors over windows
+    text = render_report(model)
+    assert "allows for the serial correlation of the residuals but leaves out" in text
+
+
 def test_one_regime_without_guards_or_validation() -> None:
     text = render_report(one_regime_model())
     assert CAUTION in text

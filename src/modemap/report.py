@@ -313,10 +313,17 @@ def _equilibria_text(model: HybridModel, equilibria: list[Equilibrium]) -> str:
         "there. Virtual: the system leaves the regime before getting there."
     )
     if any(e.stderr for e in equilibria):
+        left_out = (
+            "it allows for the serial correlation of the residuals but leaves out the error "
+            "of the model's form, so read it as a lower bound where the terms only "
+            "approximate the true equations"
+            if _integral_final_fit(model)
+            else "it leaves out the error of the model's form and the serial correlation of "
+            "the residuals, so read it as a lower bound"
+        )
         legend += (
             " ± is the standard error of the coordinate from the noise in the fitted "
-            "coefficients (delta method); it leaves out the error of the model's form and "
-            "the serial correlation of the residuals, so read it as a lower bound. "
+            f"coefficients (delta method); {left_out}. "
             "Zero: no selected term moves the point (e.g. the origin of a model without a "
             "constant term). Unbounded (∞): the fitted model folds there (a singular "
             "Jacobian)."
@@ -527,12 +534,7 @@ def _derivative_section(model: HybridModel) -> str:
             out.append(_table(["training run", *keys], rows))
     else:
         out.append("The derivative method was not recorded.")
-    options = (model.metadata or {}).get("options")
-    if (
-        model.form != "discrete"
-        and isinstance(options, dict)
-        and options.get("final_fit") == "integral"
-    ):
+    if _integral_final_fit(model):
         out.append(
             "The rates of change served to find the regimes. Each regime's terms and "
             "coefficients were then chosen and estimated again on the integral of its "
@@ -541,6 +543,16 @@ def _derivative_section(model: HybridModel) -> str:
             "integral-form refit)."
         )
     return "\n\n".join(out)
+
+
+def _integral_final_fit(model: HybridModel) -> bool:
+    """Whether the coefficients come from the integral-form final fit (recorded option)."""
+    options = (model.metadata or {}).get("options")
+    return (
+        model.form != "discrete"
+        and isinstance(options, dict)
+        and options.get("final_fit") == "integral"
+    )
 
 
 def _metadata_section(model: HybridModel) -> str:
