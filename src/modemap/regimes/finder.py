@@ -130,7 +130,9 @@ class RegimeFinder(BaseEstimator):
     convergence_ : ConvergenceRecord of the final refinement
     covariances_ : ndarray of shape (K, m, m)
     regime_stats_ : list of GramStats
-        Each regime's normal-equation statistics (what its local fit was computed from).
+        Each regime's normal-equation statistics (what its local fit was computed from;
+        with the integral final fit, the window statistics scaled to the effective number
+        of windows, see :mod:`modemap.integral`).
     """
 
     def __init__(
