@@ -106,12 +106,20 @@ def test_plain_estimate_and_errors_equal_statsmodels_cluster_robust() -> None:
     labels = (np.arange(t.size) // 700 % 2).astype(np.int64)  # two labels in long stretches
     library = TermLibrary.from_terms(["1", "x", "u"], ["x", "u"])
     done = _refit(library, Z, t, [t.size], labels, 2, window=window, compensate=False)
-    # the windows rebuilt here: trapezoidal integral of [1, x, u] with u held from the left
+    # the windows rebuilt here: trapezoidal integral of [1, x, u] with u held from the left,
+    # plus the end correction h/24 (theta[i+1] - theta[i-1]) (Euler-Maclaurin) at each end
+    # of a window of 3 intervals or more where the neighbours share the label and u
     start, end, stretch = window_bounds([t.size], labels, window)
     x, u = Z[:, 0], Z[:, 1]
     area = 0.5 * dt * np.column_stack([2.0 * np.ones(t.size - 1), x[:-1] + x[1:], 2.0 * u[:-1]])
     cum = np.vstack([np.zeros(3), np.cumsum(area, axis=0)])
     X, y = cum[end] - cum[start], x[end] - x[start]
+    theta = np.column_stack([np.ones(t.size), x, u])
+    for w, (i, k) in enumerate(zip(start, end, strict=True)):
+        for at, sign in ((i, 1.0), (k, -1.0)):
+            near = slice(at - 1, at + 2)
+            if k - i >= 3 and 0 < at < t.size - 1 and np.ptp(labels[near]) == np.ptp(u[near]) == 0:
+                X[w] += sign * dt / 24.0 * (theta[at + 1] - theta[at - 1])
     # blocks: each stretch cut into pieces of ten window lengths (by window start)
     first = np.r_[True, stretch[1:] != stretch[:-1]]
     origin = np.maximum.accumulate(np.where(first, start, 0))
@@ -169,16 +177,16 @@ def test_reactor_coefficients_within_3_percent_with_the_noise_compensated(
     done = run(compensate=True)
     # the noise estimate from fourth differences recovers the demo's 0.003 mol/L and 0.2 K
     np.testing.assert_allclose(done.noise, [0.003, 0.2], rtol=0.05)
-    for fit in done.fits:  # measured: worst 0.18 % low branch, 1.25 % high branch
+    for fit in done.fits:  # measured: worst 0.18 % low branch, 1.13 % high branch
         rel = fit.coef[support] / true[support] - 1.0
         assert np.abs(rel).max() <= 0.03
-        # the truth lies within three standard errors of every estimate (measured: 1.35)
+        # the truth lies within three standard errors of every estimate (measured: 1.21)
         assert np.all(np.abs(fit.coef[support] - true[support]) <= 3.0 * fit.stderr[support])
 
 
 def test_reactor_noise_in_the_terms_biases_the_plain_estimate(reactor_true_labels) -> None:
     # without the compensation, 0.003 mol/L of noise in C_A attenuates the Arrhenius term
-    # on the high branch and Tc takes up the difference (measured: +4.64 %)
+    # on the high branch and Tc takes up the difference (measured: +4.71 %)
     run, true, _ = reactor_true_labels
     high = run(compensate=False).fits[1]
     assert high.coef[3, 1] / true[3, 1] - 1.0 > 0.03
@@ -221,3 +229,35 @@ def test_uneven_sampling_uses_each_interval_length() -> None:
     done = _refit(library, Z, t, [t.size], np.zeros(t.size, dtype=np.int64), 1)
     assert done.fits[0].coef[0, 0] == pytest.approx(-a, rel=3e-3)
     assert done.fits[0].coef[1, 0] == pytest.approx(b, rel=3e-3)
+
+
+def test_noise_products_equal_the_exact_covariance_of_the_windows() -> None:
+    # the windows' terms (1, x, x*u) are linear in the state's noise, so their noise parts
+    # are W eps for a matrix W read off by unit perturbations, with covariance sigma^2 W W'
+    # (textbook); the products from the partial derivatives must equal it.  u steps every
+    # 40 samples, so held inputs and corrected window ends are both covered
+    from modemap.integral import _add_noise_bias, _Windows
+
+    t, Z = _lag(2.0, 3.0, 0.05, 300, seed=4)
+    labels = (np.arange(t.size) // 110 % 2).astype(np.int64)
+    library = TermLibrary.from_terms(["1", "x", "x*u"], ["x", "u"])
+    windows = _Windows(library, Z, 1, t, [t.size], labels, 8, 2)
+    sigma = 0.01
+    bias, cross = np.zeros((2, 3, 3)), np.zeros((2, 3, 1))
+    ((i, j),) = windows.chunks
+    lo, hi, X0, Y0 = windows.chunk(i, j)
+    _, _, s, e = windows.bounds(i, j)
+    _add_noise_bias(windows, lo, hi, s, e, labels[lo:hi], np.array([sigma**2]), bias, cross)
+    dx, dy = np.zeros((t.size, *X0.shape)), np.zeros((t.size, *Y0.shape))
+    for q in range(t.size):
+        z = Z.copy()
+        z[q, 0] += 1.0
+        windows.Z, windows.right = z, right_ends(z, 1, [t.size])
+        _, _, X, Y = windows.chunk(i, j)
+        dx[q], dy[q] = X - X0, Y - Y0
+    for g in range(2):
+        rows = windows.regime == g
+        exact = sigma**2 * np.einsum("qwa,qwb->ab", dx[:, rows], dx[:, rows])
+        exact_cross = sigma**2 * np.einsum("qwa,qwb->ab", dx[:, rows], dy[:, rows])
+        np.testing.assert_allclose(bias[g], exact, rtol=1e-9, atol=1e-15)
+        np.testing.assert_allclose(cross[g], exact_cross, rtol=1e-9, atol=1e-15)

@@ -1,12 +1,12 @@
-"""Continuous form: re-estimate each regime's coefficients on the integral of its model.
+"""Continuous form: choose and estimate each regime's terms again on the integral of its model.
 
-The continuous form selects terms against estimated derivatives (see
+The continuous form finds the regimes on estimated derivatives (see
 :mod:`modemap.derivatives`).  A smoothing derivative trades noise for bias: on
 a regime whose time constants span only a few samples, a Savitzky-Golay window
 of twenty samples flattens the transients that carry the information, and the
 coefficients come out biased by tens of percent.  Once the labels are settled,
-the coefficients on each regime's selected terms are re-estimated from the
-integral form instead, which needs no derivative::
+each regime's coefficients are estimated again from the integral form, which
+needs no derivative::
 
     x(t_e) - x(t_s) = integral from t_s to t_e of Theta(x(t), u(t)) dt . c
 
@@ -16,14 +16,16 @@ integral terms", Physical Review E 96, 023302, 2017, DOI
 10.1103/PhysRevE.96.023302).  The integral is the trapezoidal rule over the
 sample intervals, with a stepped input (see :mod:`modemap.regimes.segments`)
 held at its value from the start of each interval, which is how such an input
-acts.  Noise in the target enters only through the window's two end points,
-and is not amplified by a division by the step.
+acts; a window end where the sampling is even and the integrand smooth gets the
+rule's end correction (:func:`_end_correction`).  Noise in the target enters
+only through the window's two end points, and is not amplified by a division by
+the step.
 
-**Windows.**  Each stretch of one label within a run is cut into windows of
-``window`` sample intervals, one sample apart, so no measurement is shared
-by two windows; a stretch's remainder forms one shorter window.  With white
-measurement noise, the windows' noise is then independent and the ordinary
-least-squares standard errors hold.
+**Windows.**  Every stretch of one label within a run has a window of
+``window`` sample intervals starting at each of its samples (shorter stretches:
+one window over all of it).  Windows that overlap have correlated residuals, so
+the standard errors are a sandwich over blocks of ``_BLOCK_WINDOWS`` window
+lengths (batch means, common practice).
 
 **Noise in the regressors.**  The integrated terms are computed from noisy
 states, which biases least squares towards zero on every term that carries
@@ -39,10 +41,12 @@ from memory).  Where subtracting it would leave the normal matrix not
 positive definite (noise comparable with the signal), the plain integral
 estimate is kept for that state and a note says so.
 
-Standard errors come from the window residuals and the uncompensated normal
-matrix (the compensation changes it by a small fraction when it applies).  The
-residual covariance of each fit stays that of the derivative targets, which is
-what the regime decoding and the reports use.
+**Selection.**  Given a selection function, the terms are chosen again on the
+window statistics scaled to an effective number of independent windows (the
+largest ratio of a sandwich variance to the plain least-squares one); those
+scaled statistics are also what is handed on for the equilibria's standard
+errors.  The residual covariance of each fit stays that of the derivative
+targets, which the decoding of new data and the reports use.
 """
 
 from __future__ import annotations
@@ -66,6 +70,8 @@ __all__ = ["IntegralRefit", "integral_refit", "right_ends", "window_bounds"]
 _CHUNK_ROWS = 65536
 #: Blocks for the standard errors: this many window lengths of one stretch.
 _BLOCK_WINDOWS = 10
+#: Windows shorter than this many intervals keep the plain trapezoidal rule.
+_MIN_CORRECTED = 3
 
 
 @dataclass
@@ -207,6 +213,8 @@ class _Windows:
 
     The right end of interval ``k`` holds sample ``k + 1``'s variables except where a
     stepped input changes there (or a run ends): only those rows are evaluated apart.
+    A window end where the sampling is even and the integrand smooth on both sides
+    (``smooth``) gets the trapezoidal rule's end correction (see :func:`_end_correction`).
     """
 
     def __init__(self, library, Z, n_states, time, lengths, labels, window, n_regimes):
@@ -215,6 +223,7 @@ class _Windows:
         # own[k]: the right end of interval k - 1 is sample k itself
         self.own = np.ones(Z.shape[0], dtype=bool)
         self.own[1:] = np.all(self.right[:-1] == Z[1:], axis=1)
+        self.smooth = _smooth_samples(time, lengths, labels, self.own)
         start, end, stretch = window_bounds(lengths, labels, window)
         keep = (labels[start] >= 0) & (labels[start] < n_regimes)  # unassigned samples: none
         self.start, self.end, stretch = start[keep], end[keep], stretch[keep]
@@ -233,17 +242,63 @@ class _Windows:
             out[other] = func(self.right[lo + other - 1])
         return out
 
+    def bounds(self, i: int, j: int) -> tuple[int, int, np.ndarray, np.ndarray]:
+        """Sample range ``[lo, hi)`` of windows ``i:j`` (one sample beyond each end, for the
+        end corrections) and the windows' first and last samples as offsets from ``lo``."""
+        lo = max(int(self.start[i]) - 1, 0)
+        hi = min(int(self.end[i:j].max()) + 2, self.Z.shape[0])
+        return lo, hi, self.start[i:j] - lo, self.end[i:j] - lo
+
+    def corrected(self, lo: int, s: np.ndarray, e: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Which windows get the end correction at their start, and at their end."""
+        long = e - s >= _MIN_CORRECTED
+        return long & self.smooth[lo + s], long & self.smooth[lo + e]
+
     def chunk(self, i: int, j: int) -> tuple[int, int, np.ndarray, np.ndarray]:
         """Sample range ``[lo, hi)`` of windows ``i:j``, their integrated terms and changes."""
-        lo, hi = int(self.start[i]), int(self.end[i:j].max()) + 1
-        s, e = self.start[i:j] - lo, self.end[i:j] - lo
+        lo, hi, s, e = self.bounds(i, j)
         theta = self.library.transform(self.Z[lo:hi])
         right = self.at_right(self.library.transform, theta, lo, hi)
         dt = np.diff(self.time[lo:hi])
         cum = np.zeros((hi - lo, theta.shape[1]))
         np.cumsum(0.5 * dt[:, None] * (theta[:-1] + right[1:]), axis=0, out=cum[1:])
+        X = cum[e] - cum[s]
+        at_s, at_e = self.corrected(lo, s, e)
+        X[at_s] += _end_correction(theta, dt, s[at_s])
+        X[at_e] -= _end_correction(theta, dt, e[at_e])
         x = self.Z[lo:hi, : self.m]
-        return lo, hi, cum[e] - cum[s], x[e] - x[s]
+        return lo, hi, X, x[e] - x[s]
+
+
+def _smooth_samples(
+    time: np.ndarray, lengths: Sequence[int], labels: np.ndarray, own: np.ndarray
+) -> np.ndarray:
+    """Samples with a neighbour on each side in the same run and stretch, no stepped input
+    change between them, and even sampling (the two intervals equal within 1e-9)."""
+    n = time.size
+    smooth = np.zeros(n, dtype=bool)
+    if n < 3:
+        return smooth
+    link = (labels[1:] == labels[:-1]) & own[1:]  # sample k joined to k + 1
+    link[np.cumsum(np.asarray(lengths, dtype=np.int64))[:-1] - 1] = False  # run ends
+    dt = np.diff(time)
+    even = np.abs(dt[1:] - dt[:-1]) <= 1e-9 * np.abs(dt[1:])
+    smooth[1:-1] = link[:-1] & link[1:] & even
+    return smooth
+
+
+def _end_correction(theta: np.ndarray, dt: np.ndarray, at: np.ndarray) -> np.ndarray:
+    """``h^2/12`` times the terms' slope at samples ``at``, by central differences.
+
+    The trapezoidal rule over a window ``[s, e]`` of even steps ``h`` errs by
+    ``-h^2/12 (f'(e) - f'(s))`` to leading order (the Euler-Maclaurin formula, common
+    practice); adding ``h/24 (theta[s+1] - theta[s-1])`` and subtracting the same at ``e``
+    leaves an error of order ``h^4``.  The result is the four-point rule with weights
+    ``(-1, 13, 13, -1) h/24`` applied to every interval of the window.
+    """
+    if at.size == 0:
+        return np.zeros((0, theta.shape[1]))
+    return (dt[at] / 24.0)[:, None] * (theta[at + 1] - theta[at - 1])
 
 
 def integral_refit(
@@ -313,7 +368,7 @@ def integral_refit(
             rows = r == g
             stats[g] = stats[g] + GramStats.from_arrays(X[rows], Y[rows])
         if np.any(noise_var > 0):
-            s, e = windows.start[i:j] - lo, windows.end[i:j] - lo
+            _, _, s, e = windows.bounds(i, j)
             _add_noise_bias(windows, lo, hi, s, e, labels[lo:hi], noise_var, bias, bias_cross)
     fits = list(fits)
     solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
@@ -392,15 +447,25 @@ def _add_noise_bias(
         if apart.size
         else np.zeros((m, 0, left.shape[2]))
     )
-    weight = half_b**2 * starts + half_a**2 * ends + (half_a + half_b) ** 2 * inside
+    # end corrections: +h/24 on the sample after a corrected start (and before a corrected
+    # end), inside the window; -h/24 on the sample just outside it (left partials)
+    at_s, at_e = windows.corrected(lo, s, e)
+    extra = np.where(half_b > 0, 2.0 * half_b, 2.0 * half_a) / 24.0
+    near = np.bincount(s[at_s] + 1, minlength=n) + np.bincount(e[at_e] - 1, minlength=n)
+    beyond = np.bincount(s[at_s] - 1, minlength=n) + np.bincount(e[at_e] + 1, minlength=n)
+    interior = half_a + half_b
+    weight = half_b**2 * starts + half_a**2 * ends + interior**2 * inside
+    weight += near * ((interior + extra) ** 2 - interior**2)
     weight[apart] = 0.0
+    weight += beyond * extra**2
     cross_w = half_a * ends - half_b * starts
     for g in np.unique(labels[(labels >= 0) & (labels < bias.shape[0])]):
         rows = labels == g
         root = np.sqrt(np.where(rows, weight, 0.0))[:, None]
         sel = apart[rows[apart]]
         pick = rows[apart]
-        a, b = half_a[sel, None], half_b[sel, None]
+        a, b, c = half_a[sel, None], half_b[sel, None], extra[sel, None]
+        plain, fixed = inside[sel] - near[sel], near[sel]
         for j in range(m):
             mat = left[j] * root
             total = mat.T @ mat
@@ -408,7 +473,8 @@ def _add_noise_bias(
             for part in (
                 p_l * (b * np.sqrt(starts[sel])[:, None]),
                 p_r * (a * np.sqrt(ends[sel])[:, None]),
-                (p_r * a + p_l * b) * np.sqrt(inside[sel])[:, None],
+                (p_r * a + p_l * b) * np.sqrt(plain)[:, None],
+                (p_r * a + p_l * (b + c)) * np.sqrt(fixed)[:, None],
             ):
                 total += part.T @ part
             bias[g] += noise_var[j] * total
