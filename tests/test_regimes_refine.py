@@ -216,3 +216,30 @@ def test_interior_fits_leave_out_the_rows_that_hold_a_switch() -> None:
         rows = keep & (res.labels == j)
         ols = sm.OLS(noisy[rows], sm.add_constant(x[rows])).fit()
         np.testing.assert_allclose(res.fits[j].coef[:, 0], ols.params, rtol=1e-8)
+
+
+def test_shared_location_covariance_is_the_pooled_within_regime_scatter() -> None:
+    # scikit-learn's LinearDiscriminantAnalysis(store_covariance=True).covariance_ is the
+    # within-class scatter divided by n (reference library); ours divides by n - K (the
+    # unbiased pooled covariance), so the two differ by that factor only
+    from sklearn.discriminant_analysis import LinearDiscriminantAnalysis
+
+    from modemap.regimes.refine import location_parameters
+
+    rng = np.random.default_rng(3)
+    labels = np.repeat([0, 1, 2], [120, 60, 200])
+    x = rng.standard_normal((labels.size, 2)) @ np.array([[1.0, 0.3], [0.0, 0.5]])
+    x += np.array([[0.0, 0.0], [4.0, 1.0], [-3.0, 2.0]])[labels]
+    means, chols = location_parameters(x, labels, 3, "tied")
+    lda = LinearDiscriminantAnalysis(store_covariance=True).fit(x, labels)
+    n, k = labels.size, 3
+    total_var = np.var(x, axis=0) + 1e-12
+    for j in range(k):
+        cov = chols[j] @ chols[j].T - np.diag(1e-6 * total_var)
+        np.testing.assert_allclose(cov * (n - k) / n, lda.covariance_, rtol=1e-10)
+        np.testing.assert_allclose(means[j], lda.means_[j], rtol=1e-12)
+    # one per regime: each regime's own sample covariance
+    _, full = location_parameters(x, labels, 3, "full")
+    for j in range(k):
+        cov = full[j] @ full[j].T - np.diag(1e-6 * total_var)
+        np.testing.assert_allclose(cov, np.cov(x[labels == j], rowvar=False), rtol=1e-10)

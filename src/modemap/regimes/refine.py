@@ -238,25 +238,43 @@ def regime_log_likelihood(
     return out
 
 
-def _location_log_likelihood(x: np.ndarray, labels: np.ndarray, k: int) -> np.ndarray:
+def _location_log_likelihood(
+    x: np.ndarray, labels: np.ndarray, k: int, kind: str = "tied"
+) -> np.ndarray:
     """Gaussian log-density of the states under each regime's mean and covariance."""
-    return location_density(x, *location_parameters(x, labels, k))
+    return location_density(x, *location_parameters(x, labels, k, kind))
 
 
-def location_parameters(x: np.ndarray, labels: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray]:
+def location_parameters(
+    x: np.ndarray, labels: np.ndarray, k: int, kind: str = "tied"
+) -> tuple[np.ndarray, np.ndarray]:
     """Mean and Cholesky factor of the states' covariance per regime: (K, d), (K, d, d).
 
-    A regime with fewer than two samples gets NaN factors (its density is then left at 0).
+    ``kind="tied"``: one covariance shared by all regimes, pooled from the scatter of each
+    regime's samples about its own mean (as in linear discriminant analysis, common
+    practice); ``"full"``: one per regime.  With one per regime, a regime whose samples sit
+    in a tight cluster (long steady holds) gives samples a little outside it a density so
+    low that the other regime takes them, however far from it they are: measured on the
+    reactor demo (both regimes one vector field, only the location tells them apart), the
+    ignition and extinction transients went to the low-conversion regime (95 % of labels
+    right at K = 2; 98.9 % tied).  A regime with fewer than two samples gets NaN factors
+    (its density is then left at 0).
     """
     d = x.shape[1]
     means, chols = np.zeros((k, d)), np.full((k, d, d), np.nan)
     total_var = np.var(x, axis=0) + 1e-12
+    covs, counts = {}, {}
     for j in range(k):
         sel = x[labels == j]
         if sel.shape[0] < 2:
             continue
-        cov = np.atleast_2d(np.cov(sel, rowvar=False)) + np.diag(1e-6 * total_var)
-        means[j], chols[j] = sel.mean(axis=0), np.linalg.cholesky(cov)
+        means[j] = sel.mean(axis=0)
+        covs[j], counts[j] = np.atleast_2d(np.cov(sel, rowvar=False)), sel.shape[0] - 1
+    if kind == "tied" and covs:
+        pooled = sum(counts[j] * covs[j] for j in covs) / sum(counts.values())
+        covs = dict.fromkeys(covs, pooled)
+    for j, cov in covs.items():
+        chols[j] = np.linalg.cholesky(cov + np.diag(1e-6 * total_var))
     return means, chols
 
 
@@ -667,7 +685,7 @@ def _score_labels_engine(
         )
         covs = _covariances(stats, fits, opts.floor, opts.covariance)
         log_start, log_trans = transition_model(labels, work.lengths, k, opts.sticky, opts.learn)
-        location = _engine_location(work, labels, k, opts.location_weight)
+        location = _engine_location(work, labels, k, opts.location_weight, opts.covariance)
     else:
         stats, fits, covs = fitted.stats, fitted.fits, fitted.covs
         log_start, log_trans, location = fitted.log_start, fitted.log_trans, fitted.location
@@ -688,10 +706,12 @@ def _score_labels_engine(
     return state
 
 
-def _engine_location(work: _Work, labels: np.ndarray, k: int, weight: float) -> Any:
+def _engine_location(
+    work: _Work, labels: np.ndarray, k: int, weight: float, kind: str = "tied"
+) -> Any:
     if not weight:
         return None
-    means, chols = location_parameters(work.Z[:, : work.Y.shape[1]], labels, k)
+    means, chols = location_parameters(work.Z[:, : work.Y.shape[1]], labels, k, kind)
     return (float(weight), means, chols)
 
 
@@ -743,7 +763,7 @@ def _score_labels(
     log_em = regime_log_likelihood(library, Z, Y, [f.coef for f in fits], covs)
     if opts.location_weight:
         x = Z[:, : Y.shape[1]]
-        log_em += opts.location_weight * _location_log_likelihood(x, labels, k)
+        log_em += opts.location_weight * _location_log_likelihood(x, labels, k, opts.covariance)
     return _State(labels, k, stats, fits, covs, log_em, log_start, log_trans, pairs=pairs)
 
 

@@ -14,7 +14,8 @@ labelling and the parameters counted honestly:
 * ``m (m + 1) / 2`` residual covariance entries per regime (``m`` states), or once in all
   when the covariance is shared (``covariance="tied"``, the default),
 * ``K (K - 1)`` transition probabilities and ``K - 1`` initial probabilities,
-* with a location term, a mean (``m``) and a covariance (``m (m + 1) / 2``) per regime.
+* with a location term, a mean (``m``) per regime and its covariance (``m (m + 1) / 2``),
+  shared or per regime like the residual covariance.
 
 The held-out tails are labelled by Viterbi with the trained models and chain; the error of the
 one-step prediction under the decoded regime is divided, state by state, by the standard
@@ -54,7 +55,7 @@ def count_parameters(result: RefineResult, n_targets: int) -> int:
     coefs = sum(int(np.count_nonzero(f.coef)) for f in result.fits)
     n_cov = 1 if result.covariance == "tied" else k
     cov = n_targets * (n_targets + 1) // 2
-    location = k * (n_targets + cov) if result.location_weight else 0
+    location = (k * n_targets + n_cov * cov) if result.location_weight else 0
     return coefs + n_cov * cov + location + k * (k - 1) + (k - 1)
 
 
