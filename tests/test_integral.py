@@ -261,3 +261,22 @@ def test_noise_products_equal_the_exact_covariance_of_the_windows() -> None:
         exact_cross = sigma**2 * np.einsum("qwa,qwb->ab", dx[:, rows], dy[:, rows])
         np.testing.assert_allclose(bias[g], exact, rtol=1e-9, atol=1e-15)
         np.testing.assert_allclose(cross[g], exact_cross, rtol=1e-9, atol=1e-15)
+
+
+def test_compensation_is_skipped_where_it_would_break_the_normal_matrix() -> None:
+    # a state that alternates by +-0.05 from sample to sample: fourth differences read it
+    # as noise of about 0.14, but it cancels inside every window, so subtracting that much
+    # noise from the normal matrix leaves it indefinite; the plain estimate is kept and
+    # the result says so
+    n = 2000
+    t = 0.1 * np.arange(n)
+    x = 5.0 + 0.05 * (-1.0) ** np.arange(n) + 0.01 * np.sin(t / 7.0)
+    Z = np.column_stack([x, np.zeros(n)])
+    library = TermLibrary.from_terms(["1", "x"], ["x", "u"])
+    labels = np.zeros(n, dtype=np.int64)
+    done = _refit(library, Z, t, [n], labels, 1)
+    plain = _refit(library, Z, t, [n], labels, 1, compensate=False)
+    assert done.noise[0] > 0.1
+    assert not done.compensated[0, 0]
+    np.testing.assert_allclose(done.fits[0].coef, plain.fits[0].coef, rtol=1e-8)
+    assert plain.compensated.all()

@@ -53,7 +53,7 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -87,14 +87,17 @@ class IntegralRefit:
     n_windows : ndarray of int, shape (K,)
     noise : ndarray of shape (n_states,)
         Noise standard deviation of each state used for the compensation.
-    notes : list of str
+    compensated : ndarray of bool, shape (K, n_states)
+        False where subtracting the noise products would have left the normal matrix not
+        positive definite (noise comparable with the signal): the plain integral
+        estimate was kept for that regime and state.
     """
 
     fits: list[LocalFit]
     stats: list[GramStats]
     n_windows: np.ndarray
     noise: np.ndarray
-    notes: list[str] = field(default_factory=list)
+    compensated: np.ndarray
 
 
 def right_ends(Z: np.ndarray, n_states: int, lengths: Sequence[int]) -> np.ndarray:
@@ -387,19 +390,14 @@ def integral_refit(
                 )
         solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
         spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
-    new_fits, new_stats, notes = [], [], []
-    for g, (coef, normal, kept) in enumerate(solved):
-        if not kept.all():
-            names = ", ".join(str(v) for v in np.flatnonzero(~kept))
-            notes.append(
-                f"regime {g}: measurement noise too large against the signal to compensate "
-                f"(target column(s) {names}); plain integral estimate kept"
-            )
+    new_fits, new_stats = [], []
+    for g, (coef, normal, _) in enumerate(solved):
         fit, scaled = _local_fit(fits[g], coef, normal, spread[g], stats[g], derivative_stats[g])
         new_fits.append(fit)
         new_stats.append(scaled)
     counts = np.bincount(windows.regime, minlength=k)[:k]
-    return IntegralRefit(new_fits, new_stats, counts, np.sqrt(noise_var), notes)
+    compensated = np.array([kept for _, _, kept in solved], dtype=bool).reshape(k, n_states)
+    return IntegralRefit(new_fits, new_stats, counts, np.sqrt(noise_var), compensated)
 
 
 def _add_noise_bias(

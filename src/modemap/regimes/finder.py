@@ -293,6 +293,7 @@ class RegimeFinder(BaseEstimator):
         self._library_fitted = library
         self._selection_note = None
         self._reg_time = reg.time
+        self._state_names = list(ds.state_names)
         self._reg_lengths = lengths
         self._derivative_settings = dict(reg.derivative or {})
         if self.n_regimes == "auto":
@@ -354,7 +355,18 @@ class RegimeFinder(BaseEstimator):
             window=INTEGRAL_WINDOW,
             select=select,
         )
-        notes = list(result.notes) + done.notes
+        notes = list(result.notes)
+        if not done.compensated.all():  # ids as reported: ordered like _set_results does
+            _, order = order_regimes(result.labels, Z[:, 0], result.n_regimes)
+            states = list(self._state_names)
+            for new, old in enumerate(order):
+                if not done.compensated[old].all():
+                    names = ", ".join(states[j] for j in np.flatnonzero(~done.compensated[old]))
+                    notes.append(
+                        f"regime {new}: measurement noise too large against the signal to "
+                        f"compensate in the integral-form fit of {names}; the plain integral "
+                        "estimate was kept"
+                    )
         return dataclasses.replace(result, fits=done.fits, stats=done.stats, notes=notes)
 
     def _fit_k(
