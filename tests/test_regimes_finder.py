@@ -196,6 +196,16 @@ def test_progress_and_cancel() -> None:
         ds, progress=lambda f, m: seen.append(f)
     )
     assert seen and seen[-1] == 1.0 and all(0.0 <= f <= 1.0 for f in seen)
+    # continuous form: the integral final fit has the last stretch of the bar to itself
+    frame = _switched_lags(n=1500)
+    lags = read_data(frame, time="t", states=["x"], inputs=["u", "s"])
+    steps: list[tuple[float, str]] = []
+    RegimeFinder(terms=["1", "x", "u"], n_regimes=2).fit(
+        lags, progress=lambda f, m: steps.append((f, m))
+    )
+    at = next(i for i, (_, m) in enumerate(steps) if "integral" in m)
+    assert steps[at][0] == 0.95 and all(f <= 0.95 for f, _ in steps[:at])
+    assert steps[-1][0] == 1.0
 
     def stop(fraction: float, message: str) -> None:
         raise FitCancelled("stopped")

@@ -296,6 +296,8 @@ class RegimeFinder(BaseEstimator):
         self._state_names = list(ds.state_names)
         self._reg_lengths = lengths
         self._derivative_settings = dict(reg.derivative or {})
+        integral = self.form == "continuous" and self.final_fit == "integral"
+        overall, progress = progress, scaled(progress, 0.0, 0.95) if integral else progress
         if self.n_regimes == "auto":
             kmax = max(1, min(int(self.max_regimes), Z.shape[0] // self._min_samples))
             sub = self._selection_rows(lengths)
@@ -318,15 +320,11 @@ class RegimeFinder(BaseEstimator):
         else:
             result = self._fit_k(Z, Y, lengths, int(self.n_regimes), scaled(progress, 0.0, 1.0))
             table = self._single_row(result, Y.shape[1], Z.shape[0])
-        if (
-            self.form == "continuous"
-            and self.final_fit == "integral"
-            and result.labels.size == len(Z)
-        ):
-            progress(1.0, "re-estimating coefficients on the integral form")
+        if integral and result.labels.size == len(Z):
+            overall(0.95, "estimating the coefficients again on the integral form")
             result = self._integral_refit(Z, reg, library, result)
         self._set_results(ds, reg, library, result, table)
-        progress(1.0, f"{self.n_regimes_} regime(s) found")
+        overall(1.0, f"{self.n_regimes_} regime(s) found")
         return self
 
     def _integral_refit(
