@@ -346,7 +346,7 @@ def integral_refit(
     select : callable, optional
         ``select(stats) -> LocalFit``: the sparse selection.  When given, each regime's
         terms are chosen again on its window statistics (scaled to the effective number
-        of windows, see :func:`_local_fit`) before the final estimate; otherwise the
+        of windows, see :func:`_sandwich`) before the final estimate; otherwise the
         supports of ``fits`` are kept.
 
     Returns
@@ -378,7 +378,7 @@ def integral_refit(
     spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
     if select is not None:
         for g, (coef, normal, _) in enumerate(solved):
-            _, effective = _local_fit(fits[g], coef, normal, spread[g], stats[g], stats[g])
+            _, effective = _sandwich(fits[g], coef, normal, spread[g], stats[g])
             if effective.n > p:  # enough independent windows to choose among the terms
                 chosen = select(effective)
                 fits[g] = dataclasses.replace(
@@ -392,8 +392,8 @@ def integral_refit(
         spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
     new_fits, new_stats = [], []
     for g, (coef, normal, _) in enumerate(solved):
-        fit, scaled = _local_fit(fits[g], coef, normal, spread[g], stats[g], derivative_stats[g])
-        new_fits.append(fit)
+        stderr, scaled = _sandwich(fits[g], coef, normal, spread[g], stats[g])
+        new_fits.append(_local_fit(fits[g], coef, stderr, derivative_stats[g]))
         new_stats.append(scaled)
     counts = np.bincount(windows.regime, minlength=k)[:k]
     compensated = np.array([kept for _, _, kept in solved], dtype=bool).reshape(k, n_states)
@@ -549,28 +549,23 @@ def _solve(
     return coef, normal, kept
 
 
-def _local_fit(
-    old: LocalFit,
-    coef: np.ndarray,
-    normal: np.ndarray,
-    spread: np.ndarray,
-    stats: GramStats,
-    derivative_stats: GramStats,
-) -> tuple[LocalFit, GramStats]:
-    """The refitted model and its window statistics scaled to its standard errors.
+def _sandwich(
+    old: LocalFit, coef: np.ndarray, normal: np.ndarray, spread: np.ndarray, stats: GramStats
+) -> tuple[np.ndarray, GramStats]:
+    """Sandwich standard errors, and the window statistics scaled to match them.
 
-    Standard errors are the sandwich ``N^-1 S N^-1`` (``N`` the normal matrix solved
-    with, ``S`` the block spread of the scores).  The window statistics' plain
-    least-squares variances are scaled up by the largest ratio of a sandwich variance to
-    the plain one, so that what is computed from them (the equilibria's standard errors)
-    errs on the safe side.
+    Standard errors are ``N^-1 S N^-1`` (``N`` the normal matrix solved with, ``S`` the
+    block spread of the scores).  The window statistics' plain least-squares variances are
+    scaled up by the largest ratio of a sandwich variance to the plain one (an effective
+    number of independent windows), so that what is computed from them (the selection's
+    criterion, the equilibria's standard errors) errs on the safe side.  Targets with no
+    more windows than terms keep ``old``'s errors.
     """
     support = np.asarray(old.support, dtype=bool)
-    m = support.shape[1]
     stderr = np.array(old.stderr, dtype=np.float64, copy=True)
     plain = standard_errors(stats, coef, support) if stats.n else stderr
     ratio = []
-    for j in range(m):
+    for j in range(support.shape[1]):
         idx = np.flatnonzero(support[:, j])
         if idx.size == 0 or stats.n <= idx.size:
             continue
@@ -582,13 +577,22 @@ def _local_fit(
         ok = plain[idx, j] > 0
         ratio.extend((var[ok] / plain[idx, j][ok] ** 2).tolist())
     factor = max(ratio) if ratio else 1.0
+    return stderr, stats * (1.0 / factor) if factor > 0 else stats
+
+
+def _local_fit(
+    old: LocalFit, coef: np.ndarray, stderr: np.ndarray, derivative_stats: GramStats
+) -> LocalFit:
+    """The refitted model; residual covariance and sums of squares of the derivative targets."""
+    support = np.asarray(old.support, dtype=bool)
+    m = support.shape[1]
     k = support.sum(axis=0)
     n = float(derivative_stats.n)
     dof = n - (int(k.max()) if k.size else 0)
     noise_cov = (
         derivative_stats.residual_products(coef) / dof if dof > 0 else np.full((m, m), np.nan)
     )
-    fit = LocalFit(
+    return LocalFit(
         terms=list(old.terms),
         coef=coef,
         support=support,
@@ -600,4 +604,3 @@ def _local_fit(
         n_params=old.n_params,
         path=old.path,
     )
-    return fit, stats * (1.0 / factor) if factor > 0 else stats
