@@ -1,4 +1,4 @@
-"""Tests of modemap.affine: the affine operator from normal-equation statistics."""
+"""Tests of modemap.fit.affine: the affine operator from normal-equation statistics."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ from scipy.integrate import solve_ivp
 from scipy.signal import savgol_filter
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from modemap.affine import AffineRegression, affine_parts, fit_affine
-from modemap.stats import GramStats
+from modemap.fit.affine import AffineRegression, affine_parts, fit_affine
+from modemap.fit.statistics import GramStats
 
 ZETA, OMEGA, GAIN = 0.1, 2.0, 1.5
 

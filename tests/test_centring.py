@@ -1,12 +1,12 @@
-"""Selection on centred variables, estimation on raw ones (modemap.centring)."""
+"""Selection on centred variables, estimation on raw ones (modemap.fit.centring)."""
 
 import numpy as np
 import pytest
 from sklearn.preprocessing import PolynomialFeatures
 
-from modemap.centring import centring_matrix, fit_sparse_centred
-from modemap.stats import GramStats
-from modemap.terms import TermLibrary
+from modemap.fit.centring import centring_matrix, fit_sparse_centred
+from modemap.fit.statistics import GramStats
+from modemap.terms.library import TermLibrary
 
 
 def test_centring_matrix_maps_raw_terms_to_standardised_terms() -> None:

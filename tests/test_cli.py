@@ -16,8 +16,8 @@ import pandas as pd
 import pytest
 
 import modemap
-from modemap import cli
-from modemap.cli import main
+from modemap.app import cli
+from modemap.app.cli import main
 
 
 def _lines(n: int, row) -> list[str]:
@@ -238,15 +238,15 @@ def test_os_error_is_a_user_error(monkeypatch, write_file, capsys):
 def test_module_entry_point(write_file):
     path = write_file("a.csv", GOOD)
     proc = subprocess.run(
-        [sys.executable, "-m", "modemap.cli", "check", str(path), "--states", "x", "--json"],
+        [sys.executable, "-m", "modemap.app.cli", "check", str(path), "--states", "x", "--json"],
         capture_output=True, text=True, check=False, timeout=60,
     )  # fmt: skip
     assert proc.returncode == 0 and json.loads(proc.stdout)["samples"] == 10
 
 
 def test_bench_workdir_that_cannot_be_a_folder_is_a_one_line_error(tmp_path, capsys):
-    # `python -m modemap.bench` goes through the same handler as `modemap bench`
-    from modemap.bench import main as bench_main
+    # `python -m modemap.app.bench` goes through the same handler as `modemap bench`
+    from modemap.app.bench import main as bench_main
 
     blocker = tmp_path / "afile"
     blocker.write_text("not a folder\n", encoding="utf-8")

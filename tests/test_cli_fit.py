@@ -8,7 +8,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from modemap.cli import main
+from modemap.app.cli import main
 from relay_data import relay_frame
 
 COLUMNS = ["--time", "t", "--states", "x", "--run", "run"]

@@ -1,4 +1,4 @@
-"""Tests of derivative estimation (modemap.derivatives).
+"""Tests of derivative estimation (modemap.data.derivatives).
 
 References: analytic derivatives of sin, a cubic polynomial and an
 exponential (calculus); error bounds below were chosen from the known order of
@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 
 from modemap._exceptions import DataError
-from modemap.derivatives import DERIVATIVE_METHODS, differentiate, estimate_noise
+from modemap.data.derivatives import DERIVATIVE_METHODS, differentiate, estimate_noise
 
 N = 2001
 T = np.linspace(0.0, 10.0, N)

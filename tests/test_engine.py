@@ -10,8 +10,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from modemap import tables
 from modemap._exceptions import DataError, FitError
+from modemap.data import tables
+from modemap.data.intake import read_data
 from modemap.engine import (
     DaskEngine,
     Engine,
@@ -22,10 +23,9 @@ from modemap.engine import (
     split_runs,
     stats_by_label,
 )
-from modemap.intake import read_data
+from modemap.fit.statistics import accumulate_by_label
 from modemap.regimes.viterbi import viterbi_runs
-from modemap.stats import accumulate_by_label
-from modemap.terms import TermLibrary
+from modemap.terms.library import TermLibrary
 
 LENGTHS = [700, 1100, 1200]
 K = 3
@@ -271,7 +271,7 @@ def test_refine_on_dask_workers_equals_local_refine(cluster, problem: dict) -> N
 
 
 def test_regime_finder_on_dask_equals_local(cluster) -> None:
-    from modemap.bench import invented_system
+    from modemap.app.bench import invented_system
     from modemap.regimes.finder import RegimeFinder
 
     if "engine" not in RegimeFinder().get_params():

@@ -1,4 +1,4 @@
-"""Tests of modemap.equations: readable text, LaTeX and Python forms."""
+"""Tests of modemap.terms.equations: readable text, LaTeX and Python forms."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import operator
 import numpy as np
 import pytest
 
-from modemap.equations import format_coefficient, format_equations
+from modemap.terms.equations import format_coefficient, format_equations
 
 TERMS = ["1", "T", "u"]
 COEF = np.array([[0.713], [-0.0123], [4.02]])

@@ -1,4 +1,4 @@
-"""Tests of equilibria, Jacobians and stability classes (modemap.equilibria).
+"""Tests of equilibria, Jacobians and stability classes (modemap.model.equilibria).
 
 Textbook: "Nonlinear Dynamics and Chaos", Westview/CRC Press, 2nd ed., 2015
 (linear classification, the double-well oscillator, the 1963 convection model).
@@ -11,14 +11,14 @@ import numpy as np
 import pytest
 
 from modemap._exceptions import FitError
-from modemap.equilibria import (
+from modemap.model.equilibria import (
     affine_equilibrium,
     classify,
     find_equilibria,
     jacobian,
     timescales,
 )
-from modemap.terms import TermLibrary
+from modemap.terms.library import TermLibrary
 
 
 def model(variables: list[str], degree: int, rhs: list[dict[str, float]], constant: bool = True):
@@ -208,9 +208,9 @@ def test_equilibrium_stderr_matches_the_delta_method_for_a_ratio(form: str) -> N
     # of that ratio (common practice) and Cov(c, a) from statsmodels OLS (reference library)
     import statsmodels.api as sm
 
-    from modemap.equilibria import equilibrium_stderr
-    from modemap.stats import GramStats
-    from modemap.terms import TermLibrary
+    from modemap.fit.statistics import GramStats
+    from modemap.model.equilibria import equilibrium_stderr
+    from modemap.terms.library import TermLibrary
 
     rng = np.random.default_rng(5)
     x = rng.uniform(2.0, 6.0, size=300)

@@ -1,4 +1,4 @@
-"""Tests of the term grammar (modemap.expressions)."""
+"""Tests of the term grammar (modemap.terms.expressions)."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from modemap._exceptions import ExpressionError
-from modemap.expressions import parse
+from modemap.terms.expressions import parse
 
 VARS = ("x", "y", "u")
 RNG = np.random.default_rng(7)

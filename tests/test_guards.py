@@ -1,4 +1,4 @@
-"""Tests of the switching surfaces (modemap.guards)."""
+"""Tests of the switching surfaces (modemap.model.guards)."""
 
 from __future__ import annotations
 
@@ -10,9 +10,9 @@ from sklearn.base import clone
 from sklearn.linear_model import LogisticRegression
 
 from modemap import FitError
-from modemap.guards import SwitchingSurfaces, guard_text, place_equilibria, predict_labels
-from modemap.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
-from modemap.simulate import simulate
+from modemap.model.guards import SwitchingSurfaces, guard_text, place_equilibria, predict_labels
+from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
+from modemap.simulation.simulator import simulate
 
 
 def regime(rid: int, terms: list[str], coef) -> RegimeModel:

@@ -1,4 +1,4 @@
-"""The whole pipeline as one estimator (modemap.identify)."""
+"""The whole pipeline as one estimator (modemap.identify.identifier)."""
 
 from __future__ import annotations
 
@@ -7,7 +7,7 @@ import pytest
 from sklearn.base import clone
 
 import modemap
-from modemap.identify import HybridIdentifier, labels_frame
+from modemap.identify.identifier import HybridIdentifier, labels_frame
 from relay_data import relay_frame
 
 

@@ -21,8 +21,8 @@ from scipy.optimize import linear_sum_assignment
 
 from modemap import read_data
 from modemap.demos import reactor as reactor_demo
-from modemap.identify import HybridIdentifier
-from modemap.simulate import simulate
+from modemap.identify.identifier import HybridIdentifier
+from modemap.simulation.simulator import simulate
 
 pytestmark = pytest.mark.slow
 

@@ -1,4 +1,4 @@
-"""Discrete-form selection on the increments (modemap.increments).
+"""Discrete-form selection on the increments (modemap.fit.increments).
 
 References: statsmodels' ordinary least squares (``statsmodels.api.OLS``) for the refit, and
 the exact discretisation of a first-order linear system, ``x[k+1] = e^(-a dt) x[k] + (1 -
@@ -15,11 +15,11 @@ import statsmodels.api as sm
 
 from lag_data import held_lag
 from modemap import read_data
-from modemap.centring import fit_sparse_centred
-from modemap.increments import fit_on_increments, increment_stats, persistence_matrix
-from modemap.local import LocalDynamics
-from modemap.sparse import fit_sparse
-from modemap.stats import GramStats
+from modemap.fit.centring import fit_sparse_centred
+from modemap.fit.increments import fit_on_increments, increment_stats, persistence_matrix
+from modemap.fit.sparse import fit_sparse
+from modemap.fit.statistics import GramStats
+from modemap.identify.local_dynamics import LocalDynamics
 
 A, B, DT = 0.002, 0.05, 0.05  # 1/s, K/s per unit input, s: a dt = 0.0001
 

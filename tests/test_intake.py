@@ -1,4 +1,4 @@
-"""Tests of modemap.intake: reading, validation, runs, gaps, sampling, summary.
+"""Tests of modemap.data.intake: reading, validation, runs, gaps, sampling, summary.
 
 Expected values come from the data written in each test, from pandas/pyarrow (Parquet
 round trip) and from numpy.interp (reference for linear interpolation).  The validation
@@ -17,7 +17,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from modemap._exceptions import DataError, ModemapError
-from modemap.intake import parse_header, peek_columns, read_data, summarize
+from modemap.data.intake import parse_header, peek_columns, read_data, summarize
 
 RNG_SEED = 20261201
 

@@ -1,4 +1,4 @@
-"""Integral-form refit of the regimes' coefficients (modemap.integral).
+"""Integral-form refit of the regimes' coefficients (modemap.regimes.integral).
 
 References:
 
@@ -20,11 +20,11 @@ import statsmodels.api as sm
 
 from lag_data import held_lag
 from modemap.demos import make_demo
-from modemap.integral import integral_refit, right_ends, window_bounds
+from modemap.fit.sparse import LocalFit
+from modemap.fit.statistics import GramStats
+from modemap.regimes.integral import integral_refit, right_ends, window_bounds
 from modemap.regimes.segments import stepped_columns
-from modemap.sparse import LocalFit
-from modemap.stats import GramStats
-from modemap.terms import TermLibrary
+from modemap.terms.library import TermLibrary
 
 
 def _lag(a: float, b: float, dt: float, n: int, seed: int = 0, noise: float = 0.0):
@@ -236,7 +236,7 @@ def test_noise_products_equal_the_exact_covariance_of_the_windows() -> None:
     # are W eps for a matrix W read off by unit perturbations, with covariance sigma^2 W W'
     # (textbook); the products from the partial derivatives must equal it.  u steps every
     # 40 samples, so held inputs and corrected window ends are both covered
-    from modemap.integral import _add_noise_bias, _Windows
+    from modemap.regimes.integral import _add_noise_bias, _Windows
 
     t, Z = _lag(2.0, 3.0, 0.05, 300, seed=4)
     labels = (np.arange(t.size) // 110 % 2).astype(np.int64)

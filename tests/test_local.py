@@ -1,4 +1,4 @@
-"""Tests of modemap.local: regression rows and the LocalDynamics estimator."""
+"""Tests of modemap.identify.local_dynamics: regression rows and the LocalDynamics estimator."""
 
 from __future__ import annotations
 
@@ -6,8 +6,9 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from modemap.dataset import Dataset, Run
-from modemap.local import LocalDynamics, prepare_regression
+from modemap.data.dataset import Dataset, Run
+from modemap.data.regression import prepare_regression
+from modemap.identify.local_dynamics import LocalDynamics
 
 # Lorenz system, "Deterministic nonperiodic flow", Journal of the Atmospheric
 # Sciences 20(2), 1963: sigma = 10, rho = 28, beta = 8/3.

@@ -1,4 +1,4 @@
-"""Tests for the JSON model file (modemap.modelfile).
+"""Tests for the JSON model file (modemap.model.modelfile).
 
 References used below:
 * JSON number round trip: CPython writes floats with ``float.__repr__``, the
@@ -21,9 +21,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from modemap._exceptions import ModelFileError
-from modemap.expressions import FUNCTIONS
-from modemap.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
-from modemap.modelfile import (
+from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
+from modemap.model.modelfile import (
     dumps_model,
     load_model,
     loads_model,
@@ -31,7 +30,8 @@ from modemap.modelfile import (
     model_to_dict,
     save_model,
 )
-from modemap.terms import TermLibrary
+from modemap.terms.expressions import FUNCTIONS
+from modemap.terms.library import TermLibrary
 
 BAD_DIR = Path(__file__).parent / "data" / "bad_models"
 
@@ -144,7 +144,7 @@ FLOATS = st.one_of(
     st.floats(allow_nan=False, allow_infinity=False),
     st.sampled_from([0.0, -0.0, 5e-324, -5e-324, 1.7976931348623157e308, 1e-300, 0.1]),
 )
-# Variable names must be identifiers (modemap.expressions.check_variable_names).
+# Variable names must be identifiers (modemap.terms.expressions.check_variable_names).
 NAMES = st.from_regex(r"[A-Za-z_][A-Za-z0-9_]{0,5}", fullmatch=True).filter(
     lambda s: s not in FUNCTIONS
 )

@@ -24,7 +24,8 @@ def test_library_imports_without_the_dashboard_toolkit() -> None:
     # The library never imports the terminal toolkit: block it and import the whole pipeline.
     code = (
         "import sys; sys.modules['textual'] = None\n"
-        "import modemap, modemap.identify, modemap.report, modemap.output, modemap.cli\n"
+        "import modemap, modemap.identify.identifier, modemap.report.markdown\n"
+        "import modemap.report.output, modemap.app.cli\n"
         "assert 'textual' not in [m for m in sys.modules if sys.modules[m] is not None]\n"
     )
     subprocess.run([sys.executable, "-c", code], check=True)

@@ -19,8 +19,8 @@ import pytest
 from scipy.linalg import logm
 from scipy.optimize import linear_sum_assignment
 
+from modemap.data.intake import read_data
 from modemap.demos import make_demo
-from modemap.intake import read_data
 from modemap.regimes import RegimeFinder
 
 pytestmark = pytest.mark.slow

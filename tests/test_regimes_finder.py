@@ -11,7 +11,7 @@ from statsmodels.datasets import nile
 
 from lag_data import held_lag
 from modemap._exceptions import FitCancelled, FitError
-from modemap.intake import read_data
+from modemap.data.intake import read_data
 from modemap.regimes import RegimeFinder
 
 
@@ -281,7 +281,7 @@ def test_integral_refit_recovers_a_fast_regime_the_derivative_fit_misses() -> No
 def test_choosing_k_on_windows_of_a_long_record_gives_the_same_regimes() -> None:
     # The closed-form relay oscillator (first-order responses, common practice): the number of
     # regimes chosen on 3000 of 9000 samples (windows) must equal the choice on all rows.
-    from modemap.intake import read_data
+    from modemap.data.intake import read_data
     from relay_data import relay_frame
 
     frame = relay_frame(n_runs=3, duration=30.0)
@@ -300,7 +300,7 @@ def test_segment_targets_are_exact_within_stretches() -> None:
     # a tent signal: x = t while u = 0, then falls with slope -1 while u = 1 (analytic
     # derivative +1 / -1); a whole-run smoothing derivative blurs the corner, the targets
     # re-estimated within each stretch must be exact (labels given as the truth)
-    from modemap.local import prepare_regression
+    from modemap.data.regression import prepare_regression
 
     t = np.arange(0.0, 20.0, 0.1)
     up = t < 10.0

@@ -16,10 +16,10 @@ import pytest
 from scipy.optimize import linear_sum_assignment
 from statsmodels.tsa.regime_switching.markov_regression import MarkovRegression
 
+from modemap.fit.statistics import accumulate_by_label
 from modemap.regimes.proposal import propose
 from modemap.regimes.refine import path_log_prob, refine, transition_model
-from modemap.stats import accumulate_by_label
-from modemap.terms import TermLibrary
+from modemap.terms.library import TermLibrary
 
 # invented two-regime switching AR(1): (slope, intercept) per regime, persistent chain
 PARAMS = np.array([[0.9, 1.0], [0.3, -1.0]])

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from modemap.derivatives import differentiate
+from modemap.data.derivatives import differentiate
 from modemap.regimes.segments import segment_derivatives
 
 

@@ -12,7 +12,7 @@ from modemap.regimes.selection import (
     holdout_split,
     information_criterion,
 )
-from modemap.terms import TermLibrary
+from modemap.terms.library import TermLibrary
 
 
 @pytest.fixture(scope="module")

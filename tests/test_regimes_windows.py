@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from modemap.regimes.windows import window_coefficients, window_lengths
-from modemap.terms import TermLibrary
+from modemap.terms.library import TermLibrary
 
 
 def test_window_lengths_cover_every_run() -> None:

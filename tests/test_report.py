@@ -1,4 +1,4 @@
-"""Tests for the Markdown report (modemap.report).
+"""Tests for the Markdown report (modemap.report.markdown).
 
 References:
 * Markdown tables: GitHub Flavored Markdown Spec, section "Tables (extension)" (GitHub,
@@ -14,9 +14,9 @@ import re
 import numpy as np
 import pytest
 
-from modemap.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
-from modemap.modelfile import dumps_model, loads_model
-from modemap.report import CAUTION, render_report
+from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
+from modemap.model.modelfile import dumps_model, loads_model
+from modemap.report.markdown import CAUTION, render_report
 
 TERMS = ["1", "T", "q", "T*q"]
 
@@ -187,7 +187,8 @@ def test_selection_table_and_choice() -> None:
 
 def test_equations_equilibria_and_statistics() -> None:
     text = render_report(two_regime_model())
-    # digits follow the standard error (modemap.equations; common practice for measured values)
+    # digits follow the standard error (modemap.terms.equations; common practice for measured
+    # values)
     assert "dT/dt [degC/s] = (2.00 ± 0.01) + (-0.50 ± 0.01) T + (1.00 ± 0.01) q" in text
     assert "dP/dt [bar/s] = (0.25 ± 0.01) T + (-0.25 ± 0.01) T*q" in text
     assert "dP/dt [bar/s] = (0.50 ± 0.02) + (3.00 ± 0.02) q" in text

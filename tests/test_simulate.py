@@ -1,4 +1,4 @@
-"""Tests of the event-driven hybrid simulator (modemap.simulate)."""
+"""Tests of the event-driven hybrid simulator (modemap.simulation.simulator)."""
 
 from __future__ import annotations
 
@@ -7,8 +7,8 @@ import pytest
 from scipy.integrate import solve_ivp
 
 from modemap import SimulationError
-from modemap.hybrid import Guard, HybridModel, RegimeModel
-from modemap.simulate import SimulationResult, simulate
+from modemap.model.hybrid import Guard, HybridModel, RegimeModel
+from modemap.simulation.simulator import SimulationResult, simulate
 
 
 def regime(rid: int, terms: list[str], coef) -> RegimeModel:

@@ -1,4 +1,4 @@
-"""Tests of modemap.sparse: sequentially thresholded least squares from statistics."""
+"""Tests of modemap.fit.sparse: sequentially thresholded least squares from statistics."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ from scipy.signal import savgol_filter
 from sklearn.linear_model import Lasso
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
-from modemap.sparse import SparseRegression, fit_sparse, fit_sparse_cv, threshold_least_squares
-from modemap.stats import GramStats, accumulate
-from modemap.terms import TermLibrary
+from modemap.fit.sparse import SparseRegression, fit_sparse, fit_sparse_cv, threshold_least_squares
+from modemap.fit.statistics import GramStats, accumulate
+from modemap.terms.library import TermLibrary
 
 # Lorenz system, "Deterministic nonperiodic flow", Journal of the Atmospheric
 # Sciences 20(2), 1963: sigma = 10, rho = 28, beta = 8/3.

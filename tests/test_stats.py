@@ -1,12 +1,12 @@
-"""Tests of modemap.stats: additive normal-equation statistics."""
+"""Tests of modemap.fit.statistics: additive normal-equation statistics."""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
 
-from modemap.stats import GramStats, accumulate, accumulate_by_label
-from modemap.terms import TermLibrary
+from modemap.fit.statistics import GramStats, accumulate, accumulate_by_label
+from modemap.terms.library import TermLibrary
 
 
 @pytest.fixture

@@ -8,8 +8,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from modemap import tables
 from modemap._exceptions import DataError
+from modemap.data import tables
 
 
 def _frame() -> pd.DataFrame:

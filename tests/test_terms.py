@@ -1,4 +1,4 @@
-"""Tests of the candidate-term library (modemap.terms)."""
+"""Tests of the candidate-term library (modemap.terms.library)."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from sklearn.base import clone
 from sklearn.preprocessing import PolynomialFeatures
 
 from modemap._exceptions import DataError, ExpressionError
-from modemap.terms import TermLibrary, evaluate_terms
+from modemap.terms.library import TermLibrary, evaluate_terms
 
 VARS = ["x", "y", "u"]
 Z = np.random.default_rng(3).uniform(-2.0, 2.0, size=(200, 3))

@@ -1,4 +1,4 @@
-"""Tests of modemap.uncertainty: standard errors and the block bootstrap."""
+"""Tests of modemap.fit.uncertainty: standard errors and the block bootstrap."""
 
 from __future__ import annotations
 
@@ -7,10 +7,10 @@ import pytest
 import statsmodels.api as sm
 from scipy.signal import lfilter
 
-from modemap.sparse import fit_sparse
-from modemap.stats import GramStats, accumulate
-from modemap.terms import TermLibrary
-from modemap.uncertainty import _coverage, _subblocks, block_bootstrap, standard_errors
+from modemap.fit.sparse import fit_sparse
+from modemap.fit.statistics import GramStats, accumulate
+from modemap.fit.uncertainty import _coverage, _subblocks, block_bootstrap, standard_errors
+from modemap.terms.library import TermLibrary
 
 
 def _problem(n: int = 3000, seed: int = 0) -> tuple[TermLibrary, np.ndarray, np.ndarray]:
@@ -61,7 +61,7 @@ def test_bootstrap_inclusion_true_vs_spurious() -> None:
 
 def test_fitted_value_variance_matches_statsmodels_prediction() -> None:
     # reference: statsmodels OLS, standard error of the mean prediction at a point
-    from modemap.uncertainty import fitted_value_covariance
+    from modemap.fit.uncertainty import fitted_value_covariance
 
     rng = np.random.default_rng(3)
     x = rng.uniform(50.0, 60.0, size=400)  # far from 0: a badly conditioned Gram matrix

@@ -1,4 +1,4 @@
-"""Tests of held-out validation (modemap.validation)."""
+"""Tests of held-out validation (modemap.simulation.validation)."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ import pytest
 from sklearn.metrics import mean_squared_error, r2_score
 
 from modemap import DataError
-from modemap.dataset import Dataset, Run
-from modemap.hybrid import Guard, HybridModel, RegimeModel
-from modemap.validation import match_switches, one_step_quality, split_holdout, validate
+from modemap.data.dataset import Dataset, Run
+from modemap.model.hybrid import Guard, HybridModel, RegimeModel
+from modemap.simulation.validation import match_switches, one_step_quality, split_holdout, validate
 
 
 def regime(rid: int, terms: list[str], coef) -> RegimeModel:

@@ -12,24 +12,24 @@ from modemap._exceptions import (
     SimulationError,
 )
 from modemap._version import __version__
-from modemap.dataset import Dataset, Gap, Run
-from modemap.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
-from modemap.intake import read_data, summarize
+from modemap.data.dataset import Dataset, Gap, Run
+from modemap.data.intake import read_data, summarize
+from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
 
 # The estimators pull in scikit-learn, SciPy and hmmlearn: load them on first use so that
 # `modemap check` and `import modemap` stay quick (PEP 562 module __getattr__).
 _LAZY = {
-    "HybridIdentifier": "modemap.identify",
-    "LocalDynamics": "modemap.local",
+    "HybridIdentifier": "modemap.identify.identifier",
+    "LocalDynamics": "modemap.identify.local_dynamics",
     "RegimeFinder": "modemap.regimes",
-    "SimulationResult": "modemap.simulate",
-    "SwitchingSurfaces": "modemap.guards",
-    "TermLibrary": "modemap.terms",
-    "load_model": "modemap.modelfile",
-    "save_model": "modemap.modelfile",
-    "simulate": "modemap.simulate",
-    "split_holdout": "modemap.validation",
-    "validate": "modemap.validation",
+    "SimulationResult": "modemap.simulation.simulator",
+    "SwitchingSurfaces": "modemap.model.guards",
+    "TermLibrary": "modemap.terms.library",
+    "load_model": "modemap.model.modelfile",
+    "save_model": "modemap.model.modelfile",
+    "simulate": "modemap.simulation.simulator",
+    "split_holdout": "modemap.simulation.validation",
+    "validate": "modemap.simulation.validation",
 }
 
 

@@ -2,8 +2,9 @@
 
 Fitting a fleet of runs is a map over runs followed by a reduction on the caller's side:
 
-* **statistics** (:func:`stats_by_label`): each run's :class:`~modemap.stats.GramStats` per
-  regime label (:func:`modemap.stats.accumulate_by_label` on that run's rows), then summed on the
+* **statistics** (:func:`stats_by_label`): each run's
+  :class:`~modemap.fit.statistics.GramStats` per regime label
+  (:func:`modemap.fit.statistics.accumulate_by_label` on that run's rows), then summed on the
   client in run order.  Both engines add the same per-run terms in the same order, so their
   sums are identical;
 * **decoding** (:func:`decode_runs`): each run's emission log-likelihood under every regime and
@@ -33,7 +34,7 @@ from typing import Any, NamedTuple, Protocol, runtime_checkable
 import numpy as np
 
 from modemap._exceptions import FitError
-from modemap.stats import GramStats, accumulate_by_label
+from modemap.fit.statistics import GramStats, accumulate_by_label
 
 __all__ = [
     "ENGINES",

@@ -20,10 +20,10 @@ import tracemalloc
 import numpy as np
 import pytest
 
+from modemap.fit.statistics import accumulate
 from modemap.regimes.refine import refine
 from modemap.regimes.viterbi import viterbi
-from modemap.stats import accumulate
-from modemap.terms import TermLibrary
+from modemap.terms.library import TermLibrary
 
 pytestmark = pytest.mark.perf
 
@@ -93,13 +93,13 @@ def test_refinement_speed_and_memory(model: str, degree: int, interior: bool) ->
 
 
 def test_integral_refit_speed_and_memory() -> None:
-    """The continuous form's final refit (modemap.integral): windows of 16 intervals,
+    """The continuous form's final refit (modemap.regimes.integral): windows of 16 intervals,
     noise compensation and re-selection of the degree-2 terms, on the true labels; reported
     against one ``accumulate`` pass, like the refinement (no target: measured figures are in
     docs/performance.md)."""
-    from modemap.integral import integral_refit
+    from modemap.fit.statistics import accumulate_by_label
+    from modemap.regimes.integral import integral_refit
     from modemap.regimes.refine import fit_regimes
-    from modemap.stats import accumulate_by_label
 
     z, y, truth, _ = _data()
     library = TermLibrary(degree=2).fit(["a", "b", "c"])

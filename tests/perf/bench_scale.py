@@ -1,6 +1,6 @@
 """Scale benchmark (marker ``perf``; run with ``pytest tests/perf/bench_scale.py -m perf -s``).
 
-Runs :mod:`modemap.bench` (fresh subprocess per measurement) and prints its tables: wall time
+Runs :mod:`modemap.app.bench` (fresh subprocess per measurement) and prints its tables: wall time
 and peak memory per stage against the floor measured in the same run, the growth exponent of
 time in N, and the two-regime autoregression against statsmodels.  Sizes come from
 ``MODEMAP_BENCH_SIZES`` (default ``1e5,1e6``; the full set of docs/performance.md is
@@ -17,7 +17,7 @@ from pathlib import Path
 
 import pytest
 
-from modemap import bench
+from modemap.app import bench
 
 pytestmark = pytest.mark.perf
 

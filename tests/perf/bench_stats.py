@@ -17,9 +17,9 @@ import time
 import numpy as np
 import pytest
 
-from modemap.sparse import fit_sparse
-from modemap.stats import accumulate
-from modemap.terms import TermLibrary
+from modemap.fit.sparse import fit_sparse
+from modemap.fit.statistics import accumulate
+from modemap.terms.library import TermLibrary
 
 N_SAMPLES = 1_000_000
 TARGET_RATIO = 1.5

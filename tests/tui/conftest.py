@@ -16,10 +16,10 @@ from types import SimpleNamespace
 import numpy as np
 import pandas as pd
 
-from modemap.dataset import Dataset, Run
-from modemap.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
-from modemap.tui.app import DashboardApp
-from modemap.tui.widgets.tables import plain_equations
+from modemap.app.tui.app import DashboardApp
+from modemap.app.tui.widgets.tables import plain_equations
+from modemap.data.dataset import Dataset, Run
+from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
 
 STEP = 0.1
 

@@ -16,10 +16,10 @@ from rich.console import Console
 from textual.widgets import ContentSwitcher, Input, Static
 
 from conftest import demo_app, endless_refit, make_dataset, make_labels, make_model, refit_to, sync
-from modemap.hybrid import Guard
-from modemap.tui.app import DashboardApp
-from modemap.tui.screens.refit import RefitScreen
-from modemap.tui.widgets.tables import plain_equations
+from modemap.app.tui.app import DashboardApp
+from modemap.app.tui.screens.refit import RefitScreen
+from modemap.app.tui.widgets.tables import plain_equations
+from modemap.model.hybrid import Guard
 
 SIZE = (80, 24)
 

@@ -9,9 +9,8 @@ import pandas as pd
 import pytest
 
 from conftest import make_dataset, make_labels, make_model, sync
-from modemap.hybrid import Guard
-from modemap.tui.screens.refit import parse_options
-from modemap.tui.widgets.canvas import (
+from modemap.app.tui.screens.refit import parse_options
+from modemap.app.tui.widgets.canvas import (
     Contour,
     PlotSpec,
     Scatter,
@@ -21,8 +20,9 @@ from modemap.tui.widgets.canvas import (
     braille_cells,
     render_plot,
 )
-from modemap.tui.widgets.data import align_labels, band_function, evaluate_guard, nearest_index
-from modemap.tui.widgets.tables import hysteresis_notes, plain_equations
+from modemap.app.tui.widgets.data import align_labels, band_function, evaluate_guard, nearest_index
+from modemap.app.tui.widgets.tables import hysteresis_notes, plain_equations
+from modemap.model.hybrid import Guard
 
 
 def test_braille_code_points():
@@ -173,8 +173,8 @@ def test_plain_equations():
 
 
 def test_equilibrium_line_shows_standard_errors():
-    from modemap.hybrid import Equilibrium
-    from modemap.tui.widgets.tables import _equilibrium_line
+    from modemap.app.tui.widgets.tables import _equilibrium_line
+    from modemap.model.hybrid import Equilibrium
 
     ds = make_dataset()
     model = make_model(2, ds, make_labels(ds, 2))
@@ -192,7 +192,7 @@ def test_equilibrium_line_shows_standard_errors():
 
 
 def test_source_spec_reads_the_recorded_data_file(tmp_path):
-    from modemap.tui.app import _source_spec
+    from modemap.app.tui.app import _source_spec
 
     ds = make_dataset()
     model = make_model(2, ds, make_labels(ds, 2))
@@ -212,7 +212,7 @@ def test_source_spec_reads_the_recorded_data_file(tmp_path):
 
 @sync
 async def test_startup_notes_are_shown():
-    from modemap.tui.app import DashboardApp
+    from modemap.app.tui.app import DashboardApp
 
     app = DashboardApp(None, None, None, notes=["labels.csv: not found [x]"])
     async with app.run_test(size=(80, 24)) as pilot:

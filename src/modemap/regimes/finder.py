@@ -2,7 +2,7 @@
 
 Pipeline inside :meth:`RegimeFinder.fit`:
 
-1. regression rows from the dataset (:func:`modemap.local.prepare_regression`): variables
+1. regression rows from the dataset (:func:`modemap.data.regression.prepare_regression`): variables
    ``Z = [states, inputs]`` and targets ``Y`` (derivatives, or next states in discrete form);
 2. a term library (degree-1 for the affine model, ``degree`` otherwise, or the given ``terms``);
 3. for each number of regimes tried: sticky Gaussian HMM proposals (:mod:`.proposal`) on
@@ -14,7 +14,7 @@ Pipeline inside :meth:`RegimeFinder.fit`:
    there, so the model returned is the one the selection table scored;
 5. continuous form: each regime's terms chosen and estimated again on the integral form over
    windows inside its stretches, with the measurement noise in the terms compensated
-   (:mod:`modemap.integral`; ``final_fit="derivative"`` keeps the fit on the derivatives);
+   (:mod:`modemap.regimes.integral`; ``final_fit="derivative"`` keeps the fit on the derivatives);
 6. hygiene and a stable order of ids (:mod:`.hygiene`), statistics (:mod:`.summary`).
 
 Labels of samples that have no regression row (in discrete form, the last sample of each run,
@@ -34,7 +34,8 @@ from sklearn.base import BaseEstimator
 
 from modemap._exceptions import FitError
 from modemap._progress import ProgressCallback, null_progress, scaled
-from modemap.dataset import Dataset
+from modemap.data.dataset import Dataset
+from modemap.fit.statistics import accumulate
 from modemap.regimes.hygiene import default_min_samples, order_regimes
 from modemap.regimes.proposal import propose
 from modemap.regimes.refine import (
@@ -54,7 +55,6 @@ from modemap.regimes.selection import (
 from modemap.regimes.summary import statistics
 from modemap.regimes.viterbi import viterbi_runs
 from modemap.regimes.windows import window_coefficients, window_lengths
-from modemap.stats import accumulate
 
 __all__ = ["RegimeFinder"]
 
@@ -110,7 +110,7 @@ class RegimeFinder(BaseEstimator):
     final_fit : {"integral", "derivative"}, default "integral"
         Continuous form: once the labels are settled, choose each regime's terms (sparse
         model) and estimate its coefficients again from the integral of the model over
-        windows of ``INTEGRAL_WINDOW`` sample intervals (:mod:`modemap.integral`), or keep
+        windows of ``INTEGRAL_WINDOW`` sample intervals (:mod:`modemap.regimes.integral`), or keep
         the fit on the derivative estimates.  Ignored in discrete form.
 
     Attributes
@@ -132,7 +132,7 @@ class RegimeFinder(BaseEstimator):
     regime_stats_ : list of GramStats
         Each regime's normal-equation statistics (what its local fit was computed from;
         with the integral final fit, the window statistics scaled to the effective number
-        of windows, see :mod:`modemap.integral`).
+        of windows, see :mod:`modemap.regimes.integral`).
     """
 
     def __init__(
@@ -210,7 +210,7 @@ class RegimeFinder(BaseEstimator):
             raise FitError(f"final_fit must be one of {choices}, got {self.final_fit!r}")
 
     def _library(self, variables: Sequence[str], excluded: Sequence[str] = ()) -> Any:
-        from modemap.terms import TermLibrary
+        from modemap.terms.library import TermLibrary
 
         if self.terms is not None:
             return TermLibrary.from_terms(list(self.terms), variables)
@@ -272,7 +272,7 @@ class RegimeFinder(BaseEstimator):
             self._engine, self._scattered = None, None
 
     def _fit(self, ds: Dataset, progress: ProgressCallback | None, engine: Any) -> RegimeFinder:
-        from modemap.local import prepare_regression
+        from modemap.data.regression import prepare_regression
 
         # the default local engine keeps the fast path: all rows at once, no map over runs
         self._engine = None if engine.name == "local" else engine
@@ -331,7 +331,7 @@ class RegimeFinder(BaseEstimator):
         self, Z: np.ndarray, reg: Any, library: Any, result: RefineResult
     ) -> RefineResult:
         """The final fits and statistics re-estimated on the integral form (module notes)."""
-        from modemap.integral import integral_refit
+        from modemap.regimes.integral import integral_refit
 
         select = None
         if self.model == "sparse":
@@ -559,7 +559,7 @@ class RegimeFinder(BaseEstimator):
         Parameters
         ----------
         reg : RegressionData
-            Rows from :func:`modemap.local.prepare_regression` with this finder's form.
+            Rows from :func:`modemap.data.regression.prepare_regression` with this finder's form.
         labels : ndarray of shape (n_rows,)
             Regime of each row.
 
@@ -665,7 +665,7 @@ class RegimeFinder(BaseEstimator):
         """
         from sklearn.utils.validation import check_is_fitted
 
-        from modemap.local import prepare_regression
+        from modemap.data.regression import prepare_regression
 
         check_is_fitted(self, "local_fits_")
         fitted = tuple(self.library_.variables_)

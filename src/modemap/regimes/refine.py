@@ -2,9 +2,9 @@
 
 Starting from proposed labels, we alternate
 
-(a) **fit**: one local model per regime from additive statistics (one pass over the data with
-    :func:`modemap.stats.accumulate_by_label`, then sequentially thresholded least squares or
-    the affine operator per regime); a regime with fewer than ``min_samples`` samples is
+(a) **fit**: one local model per regime from additive statistics (one pass over the data
+    with :func:`modemap.fit.statistics.accumulate_by_label`, then sequentially thresholded least
+    squares or the affine operator per regime); a regime with fewer than ``min_samples`` samples is
     dropped and its samples are reassigned in step (c);
 (b) **score**: the log-likelihood of every sample under every regime: the residual
     ``Y - Theta(Z) @ coef_k`` is Gaussian with the regime's residual covariance (maximum
@@ -40,9 +40,9 @@ from threadpoolctl import ThreadpoolController
 
 from modemap._exceptions import FitError
 from modemap._progress import ProgressCallback, null_progress
+from modemap.fit.statistics import GramStats, accumulate_by_label
 from modemap.regimes.hygiene import drop_small, enforce_min_dwell
 from modemap.regimes.viterbi import viterbi_runs
-from modemap.stats import GramStats, accumulate_by_label
 
 __all__ = [
     "ConvergenceRecord",
@@ -146,18 +146,18 @@ def fit_regimes(
     """One local fit per regime from its statistics (``model``: "sparse" or "affine").
 
     With ``variables`` the sparse selection runs on centred variables
-    (:func:`modemap.centring.fit_sparse_centred`), the estimate on raw ones.  With
+    (:func:`modemap.fit.centring.fit_sparse_centred`), the estimate on raw ones.  With
     ``increments`` (discrete form; the targets are the next states, the first variables)
-    the selection runs on the increments (:mod:`modemap.increments`).
+    the selection runs on the increments (:mod:`modemap.fit.increments`).
     """
     if model == "affine":
-        from modemap.affine import fit_affine
+        from modemap.fit.affine import fit_affine
 
         return [fit_affine(s, list(terms)) for s in stats]
-    from modemap.sparse import fit_sparse
+    from modemap.fit.sparse import fit_sparse
 
     if variables is not None:
-        from modemap.centring import fit_sparse_centred
+        from modemap.fit.centring import fit_sparse_centred
 
         def select(s):
             return fit_sparse_centred(s, list(terms), list(variables), threshold=threshold)
@@ -168,7 +168,7 @@ def fit_regimes(
 
     if not increments or variables is None:
         return [select(s) for s in stats]
-    from modemap.increments import fit_on_increments
+    from modemap.fit.increments import fit_on_increments
 
     states = list(variables)[: stats[0].n_targets] if stats else []
     return [fit_on_increments(select, s, list(terms), states) for s in stats]
@@ -463,7 +463,7 @@ def refine(
         starting labels come from already fitted models.
     increments : bool
         Discrete form (``Y`` holds the next states): select the sparse terms on the
-        increments ``Y - x`` (:mod:`modemap.increments`).
+        increments ``Y - x`` (:mod:`modemap.fit.increments`).
     interior : bool
         Discrete form: fit each regime on the rows inside its stretches, leaving out the
         last row of every stretch (its sample interval may hold the switch, mixing both

@@ -34,7 +34,7 @@ from typing import Any
 
 import numpy as np
 
-from modemap.derivatives import differentiate
+from modemap.data.derivatives import differentiate
 
 __all__ = ["segment_derivatives", "stepped_columns"]
 

@@ -1,0 +1,661 @@
+"""The ``modemap`` command line: a thin layer over the library.
+
+Each sub-command has two small functions: ``_add_<name>(subparsers)`` registers
+its parser and ``_run_<name>(args) -> int`` carries it out.  To add one, write
+both and list the registrar in ``_COMMANDS``.  :func:`main` returns the exit
+code: 0 on success, 2 for a user error (one line ``modemap: error: ...`` on
+stderr, the traceback only with ``--debug``), 130 when interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import traceback
+from collections.abc import Callable, Sequence
+
+import modemap
+from modemap._exceptions import DataError, ModemapError
+from modemap.data.dataset import Dataset
+from modemap.data.intake import parse_header, peek_columns, read_data, summarize
+
+__all__ = ["main"]
+
+_TIME_NAMES = ("time", "t")
+EXIT_USER_ERROR = 2
+EXIT_INTERRUPTED = 130
+
+
+# --------------------------------------------------------------------------- shared options
+
+
+def _names(text: str) -> list[str]:
+    """Split a comma-separated option value into names (blanks around commas ignored)."""
+    names = [part.strip() for part in text.split(",")]
+    if not all(names):
+        raise argparse.ArgumentTypeError(f"empty name in {text!r}")
+    return names
+
+
+def _positive_gap(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
+    if not value > 1:
+        raise argparse.ArgumentTypeError(f"must be larger than 1, got {text}")
+    return value
+
+
+def add_data_options(
+    parser: argparse.ArgumentParser,
+    *,
+    metavar: str = "DATA",
+    help: str = "CSV or Parquet file(s)",
+    title: str = "columns",
+) -> None:
+    """Add the options that say which data and columns to read (shared by sub-commands)."""
+    parser.add_argument("data", nargs="+", metavar=metavar, help=help)
+    group = parser.add_argument_group(title)
+    group.add_argument("--time", metavar="NAME", help="time column (default: 'time' or 't')")
+    group.add_argument(
+        "--states",
+        type=_names,
+        metavar="A,B",
+        help="state columns (default: every numeric column but time, run and inputs)",
+    )
+    group.add_argument("--inputs", type=_names, default=[], metavar="U,V", help="input columns")
+    group.add_argument("--run", metavar="NAME", help="column identifying runs within a file")
+    group.add_argument(
+        "--resample", action="store_true", help="interpolate irregular runs onto a uniform step"
+    )
+    group.add_argument(
+        "--max-gap",
+        type=_positive_gap,
+        default=5.0,
+        metavar="N",
+        help="split runs where the step exceeds N times the median (default 5)",
+    )
+    group.add_argument(
+        "--min-samples", type=int, default=8, metavar="N", help="fewest samples per run (default 8)"
+    )
+
+
+def load_dataset(args: argparse.Namespace) -> Dataset:
+    """Read the data named by :func:`add_data_options`, filling in default columns."""
+    source = args.data[0] if len(args.data) == 1 else list(args.data)
+    time, states = args.time, args.states
+    if time is None or states is None:
+        columns = peek_columns(source)
+        label = str(args.data[0])
+        time = time if time is not None else _guess_time(columns, label)
+        if states is None:
+            states = _default_states(columns, [time, *args.inputs, args.run], label)
+    return read_data(
+        source,
+        time=time,
+        states=states,
+        inputs=args.inputs,
+        run=args.run,
+        resample=args.resample,
+        max_gap=args.max_gap,
+        min_samples=args.min_samples,
+    )
+
+
+def _guess_time(columns: list[tuple[str, bool]], label: str) -> str:
+    """A column named ``time`` or ``t``; exact case wins (``T`` is often a temperature)."""
+    bare = [parse_header(h)[0] for h, _ in columns]
+    for want in _TIME_NAMES:
+        for same in (str.__eq__, lambda a, b: a.lower() == b):
+            hits = [h for (h, _), b in zip(columns, bare, strict=True) if same(b, want)]
+            if len(hits) > 1:
+                raise DataError(
+                    f"several time columns ({', '.join(hits)}); choose one with --time",
+                    source=label,
+                )
+            if hits:
+                return hits[0]
+    listed = ", ".join(repr(h) for h, _ in columns[:12]) + (", ..." if len(columns) > 12 else "")
+    raise DataError(
+        f"no column named 'time' or 't'; choose one with --time (columns: {listed})", source=label
+    )
+
+
+def _default_states(
+    columns: list[tuple[str, bool]], taken: list[str | None], label: str
+) -> list[str]:
+    used = set()
+    for name in taken:
+        if name is not None:
+            used |= {name.strip(), parse_header(name)[0]}
+    states = [h for h, numeric in columns if numeric and h.strip() not in used]
+    states = [h for h in states if parse_header(h)[0] not in used]
+    if not states:
+        raise DataError(
+            "no numeric column left to use as a state; name them with --states", source=label
+        )
+    return states
+
+
+# --------------------------------------------------------------------------- check
+
+
+def _add_check(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "check",
+        help="read and validate data; print runs, sampling, gaps and column ranges",
+        description="Read and validate data files and print what modemap sees in them.",
+    )
+    add_data_options(parser)
+    parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+    _add_debug(parser)
+    parser.set_defaults(handler=_run_check)
+
+
+def _run_check(args: argparse.Namespace) -> int:
+    summary = summarize(load_dataset(args))
+    if args.json:
+        print(json.dumps(summary, indent=2))
+    else:
+        print(format_summary(summary))
+    return 0
+
+
+def format_summary(summary: dict) -> str:
+    """Readable text for a :func:`modemap.data.intake.summarize` dictionary."""
+    time = summary["time"]
+    unit = f" {time['unit']}" if time["unit"] else ""
+    label = f" [{time['unit']}]" if time["unit"] else ""
+    lines = [
+        f"source    {summary['source']} ({summary['rows']} rows)",
+        f"time      {time['name']}{label}, step {summary['step']:.6g}{unit}",
+        f"runs      {len(summary['runs'])}, {summary['samples']} samples, "
+        f"total duration {summary['duration']:.6g}{unit}",
+        f"resampled {'yes' if summary['resampled'] else 'no'}",
+        "",
+    ]
+    lines += _table(
+        ["run", "samples", "start", "end", "duration", "step"],
+        [
+            [r["name"], str(r["samples"]), f"{r['start']:.6g}", f"{r['end']:.6g}",
+             f"{r['duration']:.6g}", f"{r['step']:.6g}"]
+            for r in summary["runs"]
+        ],
+    )  # fmt: skip
+    lines.append("")
+    lines += _table(
+        ["column", "role", "unit", "min", "max", "mean"],
+        [
+            [name, c["role"], c["unit"] or "-", f"{c['min']:.6g}", f"{c['max']:.6g}",
+             f"{c['mean']:.6g}"]
+            for name, c in summary["ranges"].items()
+        ],
+    )  # fmt: skip
+    lines.append("")
+    gaps = summary["gaps"]
+    lines.append(f"gaps      {len(gaps) if gaps else 'none'}")
+    for g in gaps:
+        lines.append(
+            f"  run '{g['origin']}': t={g['start']:.6g} to {g['end']:.6g} ({g['steps']:.1f} steps)"
+        )
+    notes = summary["warnings"]
+    lines.append(f"warnings  {len(notes) if notes else 'none'}")
+    lines += [f"  {w}" for w in notes]
+    return "\n".join(lines)
+
+
+def _table(header: list[str], rows: list[list[str]]) -> list[str]:
+    widths = [max(len(r[j]) for r in [header, *rows]) for j in range(len(header))]
+
+    def fmt(row: list[str]) -> str:
+        cells = [row[0].ljust(widths[0])] + [
+            c.rjust(w) for c, w in zip(row[1:], widths[1:], strict=True)
+        ]
+        return "  " + "  ".join(cells).rstrip()
+
+    return [fmt(header)] + [fmt(r) for r in rows]
+
+
+# --------------------------------------------------------------------------- fit
+
+
+def _add_fit(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "fit",
+        help="identify a hybrid model; write model.json, labels.csv and report.md",
+        description="Find the regimes, their equations and equilibria and the switching guards; "
+        "validate by re-simulating held-out runs; write DIR/model.json, DIR/labels.csv and "
+        "DIR/report.md (atomically: a failed fit leaves earlier results untouched).",
+    )
+    add_data_options(parser)
+    add_fit_options(parser)
+    parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
+    parser.add_argument("--view", action="store_true", help="open the dashboard on the result")
+    parser.add_argument("--quiet", action="store_true", help="no progress display")
+    _add_debug(parser)
+    parser.set_defaults(handler=_run_fit)
+
+
+def add_fit_options(parser: argparse.ArgumentParser) -> None:
+    """Options of the identification itself (shared by ``fit`` and the dashboard)."""
+    group = parser.add_argument_group("identification")
+    group.add_argument(
+        "--regimes",
+        default="auto",
+        metavar="auto|K",
+        help="number of regimes, or 'auto' to choose it by BIC (default: auto)",
+    )
+    group.add_argument(
+        "--max-regimes",
+        type=int,
+        default=6,
+        metavar="K",
+        help="largest number of regimes 'auto' tries (default: 6)",
+    )
+    group.add_argument(
+        "--form",
+        choices=("continuous", "discrete"),
+        default="continuous",
+        help="fit d(state)/dt (continuous) or state[k+1] (discrete) (default: continuous)",
+    )
+    group.add_argument(
+        "--model",
+        choices=("sparse", "affine"),
+        default="sparse",
+        help="sparse regression on candidate terms, or an affine operator (default: sparse)",
+    )
+    group.add_argument(
+        "--degree",
+        type=int,
+        default=2,
+        metavar="D",
+        help="polynomial degree of the candidate terms (default: 2)",
+    )
+    group.add_argument(
+        "--term",
+        action="append",
+        default=[],
+        metavar="EXPR",
+        dest="terms",
+        help="extra candidate term in the term grammar, e.g. 'C_A*exp(-8750/T)' (repeatable)",
+    )
+    group.add_argument(
+        "--threshold",
+        default="auto",
+        metavar="auto|X",
+        help="sparsity threshold on normalised coefficients (default: auto, by BIC)",
+    )
+    group.add_argument(
+        "--derivative",
+        default="auto",
+        choices=("auto", "central", "savgol", "spline", "tv"),
+        help="derivative estimator in continuous form (default: auto)",
+    )
+    group.add_argument(
+        "--final-fit",
+        default="integral",
+        choices=("integral", "derivative"),
+        help="continuous form: re-choose and re-estimate each regime's terms on the "
+        "integral form once the regimes are found (default: integral)",
+    )
+    group.add_argument(
+        "--guards",
+        default="auto",
+        choices=("auto", "per-source", "memoryless"),
+        help="switching-surface family (default: auto, chosen on held-out switch times)",
+    )
+    group.add_argument(
+        "--holdout",
+        type=float,
+        default=0.25,
+        metavar="F",
+        help="share of runs (or of the run's tail) kept out for validation (default: 0.25)",
+    )
+    group.add_argument(
+        "--min-dwell",
+        type=int,
+        default=1,
+        metavar="N",
+        help="shortest stay in a regime, in samples (default: 1)",
+    )
+    group.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
+    group.add_argument(
+        "--engine",
+        choices=("local", "dask"),
+        default="local",
+        help="where per-run work runs: in this process, or on a Dask cluster (default: local)",
+    )
+    group.add_argument(
+        "--scheduler", metavar="ADDRESS",
+        help="Dask scheduler address, e.g. tcp://10.0.0.5:8786 (default: a local cluster)",
+    )  # fmt: skip
+
+
+def _regimes(text: str) -> str | int:
+    if text == "auto":
+        return "auto"
+    try:
+        k = int(text)
+    except ValueError:
+        k = 0
+    if k < 1:
+        raise ModemapError(f"--regimes: expected 'auto' or a positive whole number, got '{text}'")
+    return k
+
+
+def _threshold(text: str) -> str | float:
+    if text == "auto":
+        return "auto"
+    try:
+        value = float(text)
+    except ValueError:
+        value = float("nan")
+    if not value >= 0:
+        raise ModemapError(f"--threshold: expected 'auto' or a number >= 0, got '{text}'")
+    return value
+
+
+def identifier_from_args(args: argparse.Namespace):
+    """A :class:`modemap.identify.identifier.HybridIdentifier` configured from the command line."""
+    from modemap.identify.identifier import HybridIdentifier
+
+    if args.degree < 0:
+        raise ModemapError(f"--degree: expected a whole number >= 0, got {args.degree}")
+    if not 0 <= args.holdout < 1:
+        raise ModemapError(f"--holdout: expected a share in [0, 1), got {args.holdout}")
+    return HybridIdentifier(
+        n_regimes=_regimes(args.regimes),
+        max_regimes=args.max_regimes,
+        form=args.form,
+        model=args.model,
+        degree=args.degree,
+        custom_terms=tuple(args.terms),
+        threshold=_threshold(args.threshold),
+        derivative=args.derivative,
+        final_fit=args.final_fit,
+        guard_kind=args.guards,
+        holdout=args.holdout,
+        min_dwell=args.min_dwell,
+        seed=args.seed,
+        engine=args.engine,
+        scheduler=args.scheduler,
+    )
+
+
+def _run_fit(args: argparse.Namespace) -> int:
+    from modemap.report.output import write_fit_outputs
+
+    ident = identifier_from_args(args)
+    ds = load_dataset(args)
+    show = sys.stderr.isatty() and not args.quiet
+    with _ProgressLine(enabled=show) as progress:
+        ident.fit(ds, progress=progress)
+    ident.model_.metadata["data"] = _data_record(args)
+    paths = write_fit_outputs(args.out, ident.model_, ident.labels_, dataset=ds)
+    model = ident.model_
+    print(
+        f"{model.n_regimes} regime(s), {len(model.guards)} guard(s); wrote "
+        + ", ".join(str(p) for p in paths)
+    )
+    if args.view:
+        from modemap.app.tui import run_view
+
+        run_view(args.out)
+    return 0
+
+
+def _data_record(args: argparse.Namespace) -> dict:
+    """How the data were read, so the dashboard can reopen them."""
+    return {
+        "files": [os.path.abspath(p) for p in args.data],
+        "time": args.time,
+        "states": args.states,
+        "inputs": list(args.inputs),
+        "run": args.run,
+        "resample": args.resample,
+        "max_gap": args.max_gap,
+        "min_samples": args.min_samples,
+    }
+
+
+class _ProgressLine:
+    """A one-line progress display on stderr (only when it is a terminal)."""
+
+    def __init__(self, enabled: bool) -> None:
+        self.enabled = enabled
+        self._last = ""
+
+    def __enter__(self) -> Callable[[float, str], None]:
+        return self
+
+    def __call__(self, fraction: float, message: str) -> None:
+        if not self.enabled:
+            return
+        width = 24
+        filled = round(width * min(max(fraction, 0.0), 1.0))
+        line = f"\r[{'#' * filled}{'.' * (width - filled)}] {100 * fraction:5.1f}%  {message[:60]}"
+        sys.stderr.write(line.ljust(len(self._last)))
+        sys.stderr.flush()
+        self._last = line
+
+    def __exit__(self, *exc: object) -> None:
+        if self.enabled and self._last:
+            sys.stderr.write("\r" + " " * len(self._last) + "\r")
+            sys.stderr.flush()
+
+
+# --------------------------------------------------------------------------- simulate
+
+
+def _add_simulate(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "simulate",
+        help="re-run a saved model from a given state with inputs from a file; write a CSV",
+        description="Simulate a saved hybrid model over the time grid of DATA, with the model's "
+        "inputs read from DATA. The initial state comes from DATA's first row (when it has the "
+        "state columns) or from --initial.",
+    )
+    parser.add_argument("model", metavar="MODEL", help="model.json written by 'modemap fit'")
+    parser.add_argument("data", metavar="DATA", help="CSV or Parquet file with time and inputs")
+    parser.add_argument("--time", metavar="NAME", help="time column (default: 'time' or 't')")
+    parser.add_argument("--run", metavar="NAME", help="run column: simulate each run")
+    parser.add_argument(
+        "--initial", metavar="A=1,B=2", help="initial state (default: DATA's first row)"
+    )
+    parser.add_argument(
+        "--regime", type=int, metavar="ID", help="initial regime (default: classify)"
+    )
+    parser.add_argument("--out", required=True, metavar="FILE", help="output CSV")
+    _add_debug(parser)
+    parser.set_defaults(handler=_run_simulate)
+
+
+def _parse_initial(text: str, states: list[str]) -> dict[str, float]:
+    values: dict[str, float] = {}
+    for part in text.split(","):
+        name, sep, value = part.partition("=")
+        name = name.strip()
+        if not sep or name not in states:
+            raise ModemapError(
+                f"--initial: expected NAME=VALUE pairs for the states {', '.join(states)}, "
+                f"got '{part}'"
+            )
+        try:
+            values[name] = float(value)
+        except ValueError:
+            raise ModemapError(f"--initial: '{value}' is not a number (state '{name}')") from None
+    missing = [s for s in states if s not in values]
+    if missing:
+        raise ModemapError(f"--initial: no value for state(s) {', '.join(missing)}")
+    return values
+
+
+def _run_simulate(args: argparse.Namespace) -> int:
+    import numpy as np
+    import pandas as pd
+
+    from modemap._atomic import atomic_write
+    from modemap.model.modelfile import load_model
+    from modemap.simulation.simulator import simulate
+
+    model = load_model(args.model)
+    columns = [h for h, _ in peek_columns(args.data)]
+    bare = {parse_header(h)[0] for h in columns}
+    has_states = all(s in bare for s in model.states)
+    if args.initial is None and not has_states:
+        raise ModemapError(
+            f"{args.data}: no columns for the states {', '.join(model.states)}; "
+            "give the initial state with --initial"
+        )
+    time = args.time or _guess_time(peek_columns(args.data), str(args.data))
+    ds = _read_grid(args.data, time, model, has_states, args.run)
+    initial = _parse_initial(args.initial, model.states) if args.initial else None
+    frames = []
+    for r in ds.runs:
+        x0 = np.array([initial[s] for s in model.states]) if initial is not None else r.states[0]
+        result = simulate(model, r.time, x0, r.inputs if model.inputs else None, args.regime)
+        if result.status != 0:
+            print(f"modemap: run '{r.name}': {result.message}", file=sys.stderr)
+        frame = {"run": r.origin, model.time_name: result.time}
+        frame.update({s: result.states[:, j] for j, s in enumerate(model.states)})
+        frame["regime"] = result.regimes
+        frames.append(pd.DataFrame(frame))
+    table = pd.concat(frames, ignore_index=True)
+    with atomic_write(args.out) as fh:
+        table.to_csv(fh, index=False, float_format="%.10g")
+    print(f"simulated {len(ds.runs)} run(s), {len(table)} samples; wrote {args.out}")
+    return 0
+
+
+def _read_grid(path: str, time: str, model, has_states: bool, run: str | None) -> Dataset:
+    """Time grid, inputs (and states when present) of the file to simulate over."""
+    if has_states:
+        return read_data(
+            path, time=time, states=list(model.states), inputs=list(model.inputs), run=run
+        )
+    # Only a time grid and inputs: validate them through intake with a placeholder state.
+    import pandas as pd
+
+    suffix = os.path.splitext(path)[1].lower()
+    frame = pd.read_parquet(path) if suffix in (".parquet", ".pq") else pd.read_csv(path)
+    frame["__initial__"] = 0.0
+    try:
+        return read_data(
+            frame, time=time, states=["__initial__"], inputs=list(model.inputs), run=run
+        )
+    except DataError as exc:
+        raise DataError(exc.message, source=path, column=exc.column) from None
+
+
+# --------------------------------------------------------------------------- view
+
+
+def _add_view(subparsers: argparse._SubParsersAction) -> None:
+    parser = subparsers.add_parser(
+        "view",
+        help="open the terminal dashboard on a fit result folder or on a data file",
+        description="Open the dashboard on DIR (written by 'modemap fit'), or on data files "
+        "(with the column options) to fit from inside the dashboard.",
+    )
+    add_data_options(
+        parser,
+        metavar="DIR|DATA",
+        help="a folder written by 'modemap fit', or CSV/Parquet file(s)",
+        title="columns (when opening data)",
+    )
+    parser.add_argument(
+        "--out", metavar="DIR", help="where a model fitted from inside is saved (with data)"
+    )
+    _add_debug(parser)
+    parser.set_defaults(handler=_run_view)
+
+
+def _run_view(args: argparse.Namespace) -> int:
+    from modemap.app.tui import run_view, run_view_data
+
+    if len(args.data) == 1 and os.path.isdir(args.data[0]):
+        run_view(args.data[0])
+        return 0
+    run_view_data(load_dataset(args), out=args.out)
+    return 0
+
+
+# --------------------------------------------------------------------------- bench
+
+
+def _add_bench(subparsers: argparse._SubParsersAction) -> None:
+    from modemap.app import bench
+
+    parser = subparsers.add_parser(
+        "bench",
+        help="measure time and memory of each stage on invented data of growing size",
+        description="Benchmark: per-stage wall time and peak memory against a floor measured in "
+        "the same run (read, term matrix, one normal-equation pass).",
+    )
+    bench.add_arguments(parser)
+    _add_debug(parser)
+    parser.set_defaults(handler=bench.run)
+
+
+# --------------------------------------------------------------------------- main
+
+_COMMANDS: tuple[Callable[[argparse._SubParsersAction], None], ...] = (
+    _add_check,
+    _add_fit,
+    _add_simulate,
+    _add_view,
+    _add_bench,
+)
+
+
+def _add_debug(parser: argparse.ArgumentParser) -> None:
+    # Accepted after the sub-command too; SUPPRESS keeps a flag given before it.
+    parser.add_argument(
+        "--debug", action="store_true", default=argparse.SUPPRESS, help=argparse.SUPPRESS
+    )
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser with every sub-command registered."""
+    parser = argparse.ArgumentParser(
+        prog="modemap",
+        description="Identify hybrid (multi-regime) dynamical models from logged trajectories.",
+    )
+    parser.add_argument("--version", action="version", version=f"modemap {modemap.__version__}")
+    parser.add_argument("--debug", action="store_true", help="show tracebacks of errors")
+    subparsers = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    for register in _COMMANDS:
+        register(subparsers)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; returns the exit code (use as ``sys.exit(main())``)."""
+    args = build_parser().parse_args(argv)
+    try:
+        return args.handler(args)
+    except BrokenPipeError:  # output piped into e.g. `head`: stop quietly (Python docs recipe)
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1
+    except KeyboardInterrupt:
+        print("modemap: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except (ModemapError, OSError) as exc:
+        if args.debug:
+            traceback.print_exc()
+        print(f"modemap: error: {_one_line(exc)}", file=sys.stderr)
+        return EXIT_USER_ERROR
+
+
+def _one_line(exc: BaseException) -> str:
+    if isinstance(exc, OSError) and exc.filename is not None:
+        return f"{exc.filename}: {exc.strerror or exc}"
+    return " ".join(str(exc).split()) or type(exc).__name__
+
+
+if __name__ == "__main__":
+    sys.exit(main())

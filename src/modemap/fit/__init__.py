@@ -1,0 +1,2 @@
+"""Stage 3, local fits: normal-equation statistics and the models fitted from them
+(sparse, affine, their selection rules and uncertainty), one regime at a time."""

@@ -1,0 +1,574 @@
+"""A Markdown report of a fitted hybrid model, for readers who will not open the code.
+
+:func:`render_report` reads only the :class:`~modemap.model.hybrid.HybridModel` (and,
+optionally, the data summary of :func:`modemap.data.intake.summarize`), so a report
+can be rebuilt from a model file.  The text is deterministic: the same model
+gives the same bytes (no clock, no random numbers).  Sections that have nothing
+to show (one regime: no switching; no held-out data: no validation) say so in a
+sentence instead of disappearing silently.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Iterable, Sequence
+from typing import Any
+
+import numpy as np
+
+from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
+from modemap.terms.equations import format_equations
+
+__all__ = ["CAUTION", "render_report"]
+
+CAUTION = (
+    "**Caution.** This is an identified model: a fit to logged data, valid at best in the "
+    "range the data cover. It is not a safety analysis. Do not use a fitted model to run or "
+    "protect equipment without independent verification, and defer to local codes, "
+    "standards and licensed engineering practice."
+)
+
+_FORM_TEXT = {
+    "continuous": "continuous time: each equation gives the rate of change d state/dt",
+    "discrete": "discrete time: each equation gives the next sample state[k+1]",
+}
+_KIND_TEXT = {
+    "per-source": (
+        "per-source: each regime has its own switching surfaces, so the way back from a "
+        "regime can lie elsewhere than the way in (hysteresis can be represented)"
+    ),
+    "memoryless": (
+        "memoryless: the regime is predicted from where the system is, whatever regime it "
+        "was in before (no hysteresis can be represented)"
+    ),
+}
+
+
+def render_report(model: HybridModel, *, dataset_summary: dict | None = None) -> str:
+    """Render a readable Markdown report of a hybrid model.
+
+    Parameters
+    ----------
+    model : HybridModel
+    dataset_summary : dict, optional
+        The summary of the training data as returned by
+        :func:`modemap.data.intake.summarize` (keys ``source``, ``rows``, ``runs``,
+        ``ranges``...); unknown keys are listed as they are.
+
+    Returns
+    -------
+    str
+        Markdown text ending with a newline.
+    """
+    parts = [
+        _title(model),
+        CAUTION,
+        _data_section(dataset_summary) if dataset_summary else "",
+        _overview(model),
+        _selection_section(model),
+        *(_regime_section(model, r) for r in model.regimes),
+        _switching_section(model),
+        _validation_section(model),
+        _derivative_section(model),
+        _metadata_section(model),
+    ]
+    return "\n\n".join(p.strip("\n") for p in parts if p) + "\n"
+
+
+# --------------------------------------------------------------------------- formatting
+
+
+def _num(value: Any, digits: int = 4) -> str:
+    """Compact text for a number; '–' for missing or not-a-number."""
+    if value is None:
+        return "–"
+    if isinstance(value, bool | np.bool_):
+        return "yes" if value else "no"
+    if isinstance(value, int | np.integer):
+        return str(int(value))
+    if isinstance(value, float | np.floating):
+        x = float(value)
+        if math.isnan(x):
+            return "–"
+        if math.isinf(x):
+            return "∞" if x > 0 else "-∞"
+        return f"{x:.{digits}g}" if x != 0 else "0"
+    return _cell(value)
+
+
+def _cell(value: Any) -> str:
+    """Any value as one Markdown table cell (pipes escaped, one line)."""
+    if isinstance(value, float | int | np.number) or value is None:
+        return _num(value)
+    if isinstance(value, dict):
+        return ", ".join(f"{k}: {_cell(v)}" for k, v in value.items())
+    if isinstance(value, list | tuple):
+        return ", ".join(_cell(v) for v in value)
+    return str(value).replace("|", "\\|").replace("\n", " ")
+
+
+def _table(header: Sequence[str], rows: Iterable[Sequence[Any]]) -> str:
+    lines = ["| " + " | ".join(_cell(h) for h in header) + " |"]
+    lines.append("|" + "|".join("---" for _ in header) + "|")
+    lines += ["| " + " | ".join(_cell(c) for c in row) + " |" for row in rows]
+    return "\n".join(lines)
+
+
+def _unit(model: HybridModel, name: str) -> str:
+    unit = model.units.get(name, "")
+    return f" {unit}" if unit else ""
+
+
+def _with_unit(model: HybridModel, name: str) -> str:
+    unit = model.units.get(name, "")
+    return f"{name} [{unit}]" if unit else name
+
+
+def _bracket(unit: str) -> str:
+    return f" [{unit.strip()}]" if unit else ""
+
+
+def _pct(value: Any) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "–"
+    return f"{100.0 * float(value):.1f} %"
+
+
+# --------------------------------------------------------------------------- sections
+
+
+def _title(model: HybridModel) -> str:
+    k = model.n_regimes
+    inputs = f", driven by {', '.join(model.inputs)}" if model.inputs else ""
+    return (
+        f"# Hybrid model report\n\n"
+        f"A model of {', '.join(model.states)}{inputs} with {k} regime{'s' if k != 1 else ''} "
+        f"({model.form} form)."
+    )
+
+
+def _data_section(summary: dict[str, Any]) -> str:
+    out = ["## Training data"]
+    known = ("source", "rows", "samples", "duration", "step", "resampled")
+    rows = [(key.capitalize(), summary[key]) for key in known if key in summary]
+    time = summary.get("time")
+    if isinstance(time, dict):
+        rows.append(("Time column", f"{time.get('name', '')} [{time.get('unit') or '–'}]"))
+    rows += [
+        (str(k), v)
+        for k, v in summary.items()
+        if k not in (*known, "time", "runs", "ranges", "gaps", "warnings", "states", "inputs")
+    ]
+    out.append(_table(["Item", "Value"], rows))
+    runs = summary.get("runs") or []
+    if runs:
+        cols = ["name", "samples", "start", "end", "duration", "step"]
+        out.append(_table(["Run", *cols[1:]], [[r.get(c) for c in cols] for r in runs]))
+    ranges = summary.get("ranges") or {}
+    if ranges:
+        cols = ["role", "unit", "min", "max", "mean"]
+        rows = [[name, *(r.get(c) for c in cols)] for name, r in ranges.items()]
+        out.append(_table(["Column", *cols], rows))
+    for key, title in (("gaps", "Gaps (runs were split there)"), ("warnings", "Warnings")):
+        items = summary.get(key) or []
+        if items:
+            out.append(f"{title}:\n\n" + "\n".join(f"- {_cell(i)}" for i in items))
+    return "\n\n".join(out)
+
+
+def _overview(model: HybridModel) -> str:
+    step = model.step
+    step_text = "unknown" if math.isnan(step) else f"{_num(step)}{_unit(model, model.time_name)}"
+    rows = [
+        ("Form", _FORM_TEXT.get(model.form, model.form)),
+        ("States", [_with_unit(model, s) for s in model.states]),
+        ("Inputs", [_with_unit(model, u) for u in model.inputs] or "none"),
+        ("Time", f"{_with_unit(model, model.time_name)}, sampling step {step_text}"),
+        ("Regimes", model.n_regimes),
+    ]
+    for name, (lo, hi) in model.data_range.items():
+        rows.append((f"Range of {name}", f"{_num(lo)} to {_num(hi)}{_unit(model, name)}"))
+    return "## Overview\n\n" + _table(["Item", "Value"], rows)
+
+
+def _selection_section(model: HybridModel) -> str:
+    out = ["## How many regimes, and why"]
+    table = model.selection
+    if not table:
+        out.append(
+            f"No model-selection table was recorded; the model has {model.n_regimes} "
+            "regime(s) as fitted."
+        )
+        return "\n\n".join(out)
+    chosen = [row.get("K") for row in table if row.get("chosen")]
+    tried = ", ".join(_num(row.get("K")) for row in table)
+    text = f"Models with K = {tried} regimes were fitted"
+    text += f"; K = {_num(chosen[0])} was chosen." if chosen else "."
+    best = _argmin(table, "bic")
+    if best is not None:
+        text += f" The lowest BIC (Bayesian information criterion) is at K = {_num(best)}."
+    best = _argmin(table, "holdout_rmse")
+    if best is not None:
+        text += f" The lowest held-out RMSE is at K = {_num(best)}."
+    out.append(text + " Lower is better; BIC penalises the number of parameters.")
+    header = list(dict.fromkeys(key for row in table for key in row))
+    out.append(_table(header, [[row.get(k) for k in header] for row in table]))
+    return "\n\n".join(out)
+
+
+def _argmin(table: list[dict[str, Any]], key: str) -> Any:
+    values = [(row.get(key), row.get("K")) for row in table]
+    ok = [(v, k) for v, k in values if isinstance(v, int | float) and math.isfinite(v)]
+    return min(ok, key=lambda p: p[0])[1] if ok else None
+
+
+def _regime_section(model: HybridModel, regime: RegimeModel) -> str:
+    rid = str(regime.id)
+    stats = model.statistics or {}
+    share = (stats.get("share") or {}).get(rid)
+    out = [f"## Regime {rid}"]
+    facts = [
+        f"- Samples: {regime.samples}"
+        + (f" ({_pct(share)} of the labelled samples)" if share is not None else "")
+    ]
+    dwell = (stats.get("dwell") or {}).get(rid)
+    if dwell:
+        facts.append("- " + _dwell_text(model, dwell))
+    out.append("\n".join(facts))
+    out.append("### Equations\n\n" + _equations_block(model, regime))
+    out.append(_equilibria_text(model, regime.equilibria))
+    return "\n\n".join(out)
+
+
+def _dwell_text(model: HybridModel, dwell: dict[str, Any]) -> str:
+    unit = _unit(model, model.time_name)
+    count = dwell.get("count", 0)
+    text = f"Stays in this regime: {_num(count)} complete"
+    if count:
+        text += (
+            f"; duration mean {_num(dwell.get('mean'))}{unit}, median "
+            f"{_num(dwell.get('median'))}{unit}, shortest {_num(dwell.get('min'))}{unit}, "
+            f"longest {_num(dwell.get('max'))}{unit}"
+        )
+    if dwell.get("censored"):
+        text += f"; {_num(dwell['censored'])} cut by the start or end of a run"
+    if dwell.get("lower_bound"):
+        text += " (figures from cut stays only: lower bounds)"
+    return text + "."
+
+
+def _equations_block(model: HybridModel, regime: RegimeModel) -> str:
+    lines = _equation_lines(model, regime)
+    note = (
+        "Each coefficient is shown with its standard error (±); terms are evaluated on raw, "
+        "unscaled values."
+    )
+    noise = np.sqrt(np.clip(np.diag(np.asarray(regime.noise_cov, dtype=float)), 0, None))
+    noise_text = ", ".join(f"{s} {_num(v)}" for s, v in zip(model.states, noise, strict=True))
+    return f"```\n{chr(10).join(lines)}\n```\n\n{note} Residual standard deviation: {noise_text}."
+
+
+def _equation_lines(model: HybridModel, regime: RegimeModel) -> list[str]:
+    return format_equations(
+        regime.terms,
+        np.asarray(regime.coefficients, dtype=float),
+        model.states,
+        stderr=np.asarray(regime.stderr, dtype=float),
+        units=model.units,
+        time_unit=model.units.get(model.time_name, ""),
+        form=model.form,
+        show_stderr=True,
+    )
+
+
+def _equilibria_text(model: HybridModel, equilibria: list[Equilibrium]) -> str:
+    title = "### Equilibria"
+    if not equilibria:
+        return f"{title}\n\nNo equilibrium was found in or near the range of the data."
+    unit = _unit(model, model.time_name)
+    header = [
+        *model.states,
+        "stability",
+        "eigenvalues",
+        f"time constants{_bracket(unit)}",
+        f"period{_bracket(unit)}",
+        "where",
+    ]
+    rows = []
+    for e in equilibria:
+        eig = [_complex(z) for z in np.asarray(e.eigenvalues, dtype=complex)]
+        where = "reachable" if e.inside else "virtual"
+        rows.append(
+            [
+                *(_with_error(e.point.get(s), (e.stderr or {}).get(s)) for s in model.states),
+                e.stability,
+                eig,
+                [_num(t) for t in e.time_constants] or "–",
+                _num(e.period),
+                where + (f" ({e.note})" if e.note else ""),
+            ]
+        )
+    legend = (
+        "Reachable: the point lies where this regime is active, so the system can settle "
+        "there. Virtual: the system leaves the regime before getting there."
+    )
+    if any(e.stderr for e in equilibria):
+        left_out = (
+            "it allows for the serial correlation of the residuals but leaves out the error "
+            "of the model's form, so read it as a lower bound where the terms only "
+            "approximate the true equations"
+            if _integral_final_fit(model)
+            else "it leaves out the error of the model's form and the serial correlation of "
+            "the residuals, so read it as a lower bound"
+        )
+        legend += (
+            " ± is the standard error of the coordinate from the noise in the fitted "
+            f"coefficients (delta method); {left_out}. "
+            "Zero: no selected term moves the point (e.g. the origin of a model without a "
+            "constant term). Unbounded (∞): the fitted model folds there (a singular "
+            "Jacobian)."
+        )
+    return f"{title}\n\n{_table(header, rows)}\n\n{legend}"
+
+
+def _with_error(value: Any, error: float | None) -> Any:
+    """``value ± error`` as text, or the bare value when there is no error."""
+    if error is None or value is None:
+        return value
+    return f"{_num(value)} ± {_num(error) if np.isfinite(error) else '∞'}"
+
+
+def _complex(z: complex) -> str:
+    if z.imag == 0:
+        return _num(z.real)
+    return f"{_num(z.real)} {'-' if z.imag < 0 else '+'} {_num(abs(z.imag))}i"
+
+
+def _guard_text(model: HybridModel, g: Guard) -> str:
+    if g.text:
+        return g.text
+    parts = [
+        f"{_num(w)}*{t}" if t != "1" else _num(w) for w, t in zip(g.weights, g.terms, strict=True)
+    ]
+    return " + ".join([*parts, _num(g.offset)]) + " > 0"
+
+
+def _switching_section(model: HybridModel) -> str:
+    out = ["## Switching"]
+    if model.n_regimes < 2:
+        out.append("One regime only: there is no switching.")
+        return "\n\n".join(out)
+    out.append("Guard family: " + _KIND_TEXT.get(model.guard_kind, model.guard_kind) + ".")
+    if model.guards:
+        rows = [[g.source, g.target, _guard_text(model, g)] for g in model.guards]
+        out.append(
+            "The switch happens where the condition holds; when several conditions of "
+            "the current regime hold at once, the strongest one wins.\n\n"
+            + _table(["from", "to", "condition"], rows)
+        )
+    else:
+        out.append("No switching surface was learnt.")
+    counts = (model.statistics or {}).get("transitions")
+    if counts:
+        ids = [r.id for r in model.regimes]
+        rows = [[f"from {ids[i] if i < len(ids) else i}", *row] for i, row in enumerate(counts)]
+        out.append(
+            "Switches seen in the training data (row: from, column: to):\n\n"
+            + _table(["", *(f"to {i}" for i in ids[: len(counts)])], rows)
+        )
+    out += _hysteresis_notes(model)
+    return "\n\n".join(out)
+
+
+def _threshold(model: HybridModel, g: Guard) -> tuple[str, float, bool] | None:
+    """(variable, threshold, fires_above) when a guard is one variable against a constant."""
+    weights = np.asarray(g.weights, dtype=float)
+    offset = float(g.offset) + float(
+        sum(w for w, t in zip(weights, g.terms, strict=True) if t == "1")
+    )
+    active = [(w, t) for w, t in zip(weights, g.terms, strict=True) if t != "1" and w != 0]
+    if len(active) != 1 or active[0][1] not in model.variables:
+        return None
+    w, name = active[0]
+    return name, -offset / w, bool(w > 0)
+
+
+def _hysteresis_notes(model: HybridModel) -> list[str]:
+    if model.guard_kind != "per-source":
+        return []
+    notes = []
+    for g in model.guards:
+        back = [h for h in model.guards if h.source == g.target and h.target == g.source]
+        if g.source > g.target or not back:
+            continue
+        a, b = _threshold(model, g), _threshold(model, back[0])
+        if a and b and a[0] == b[0] and a[2] != b[2]:
+            name, unit = a[0], _unit(model, a[0])
+            gap = abs(a[1] - b[1])
+            notes.append(
+                f"Hysteresis between regimes {g.source} and {g.target}: the switch "
+                f"{g.source} → {g.target} happens at {name} {'>' if a[2] else '<'} "
+                f"{_num(a[1])}{unit}, the switch back at {name} {'>' if b[2] else '<'} "
+                f"{_num(b[1])}{unit}; the band between them is {_num(gap)}{unit} wide."
+            )
+        else:
+            notes.append(
+                f"Regimes {g.source} and {g.target} switch both ways through separate surfaces; "
+                "compare the two conditions above to see any hysteresis."
+            )
+    return notes
+
+
+def _validation_section(model: HybridModel) -> str:
+    v = model.validation or {}
+    out = ["## Validation on held-out data"]
+    if not v:
+        out.append("No held-out validation was run for this model.")
+        return "\n\n".join(out)
+    mode = {"runs": "whole runs", "tails": "the last part of each run"}.get(
+        v.get("holdout"), v.get("holdout")
+    )
+    intro = "The model was re-simulated from the start of held-out data"
+    intro += f" ({mode} kept out of the fit)" if mode else ""
+    out.append(
+        intro + ". NRMSE: root-mean-square error of a simulated state divided by the range of "
+        "the measured state over the run. Status 0 means the simulation ran to the end."
+    )
+    if "tolerance" in v:
+        out.append(
+            "Horizon: time until the error of some state, as a fraction of its measured range, "
+            f"first exceeds the tolerance of {_num(v['tolerance'])}."
+        )
+    runs = v.get("runs") or []
+    if runs:
+        cols = [
+            "regime_agreement",
+            "switches_measured",
+            "switches_simulated",
+            "switch_timing_error",
+            "horizon",
+            "status",
+        ]
+        header = [
+            "run",
+            *(f"NRMSE {s}" for s in model.states),
+            "regime agreement",
+            "switches measured",
+            "switches simulated",
+            "switch timing error",
+            "horizon",
+            "status",
+        ]
+        rows = [
+            [
+                r.get("run"),
+                *((r.get("nrmse") or {}).get(s) for s in model.states),
+                *(r.get(c) for c in cols[:-1]),
+                _status(r),
+            ]
+            for r in runs
+        ]
+        out.append(_table(header, rows))
+    summary = v.get("summary") or {}
+    if summary:
+        out.append("Summary:\n\n" + _table(["Figure", "Value"], list(summary.items())))
+    one_step = v.get("one_step") or {}
+    if one_step:
+        header = [
+            "regime",
+            *(f"R² {s}" for s in model.states),
+            *(f"RMSE {s}" for s in model.states),
+        ]
+        rows = [
+            [
+                rid,
+                *((d.get("r2") or {}).get(s) for s in model.states),
+                *((d.get("rmse") or {}).get(s) for s in model.states),
+            ]
+            for rid, d in one_step.items()
+        ]
+        out.append(
+            "One-step prediction on the held-out samples of each regime:\n\n" + _table(header, rows)
+        )
+    rest = {
+        k: x
+        for k, x in v.items()
+        if k not in ("tolerance", "holdout", "runs", "summary", "one_step")
+    }
+    if rest:
+        out.append(_table(["Item", "Value"], list(rest.items())))
+    return "\n\n".join(out)
+
+
+def _status(run: dict[str, Any]) -> str:
+    status, message = run.get("status"), run.get("message")
+    return f"{_num(status)} ({message})" if message else _num(status)
+
+
+def _derivative_section(model: HybridModel) -> str:
+    out = ["## Derivatives"]
+    if model.form == "discrete":
+        out.append("Not needed: in discrete form each equation predicts the next sample.")
+    elif model.derivative:
+        method = model.derivative.get("method", "–")
+        rest = [
+            (k, x) for k, x in model.derivative.items() if k not in ("method", "per_run", "noise")
+        ]
+        out.append(
+            f"The rates of change were estimated from the samples with the method "
+            f"'{_cell(method)}'."
+        )
+        if rest:
+            out.append(_table(["Setting", "Value"], rest))
+        per_run = model.derivative.get("per_run")
+        if isinstance(per_run, list) and per_run:
+            keys = sorted({k for r in per_run if isinstance(r, dict) for k in r} - {"auto", "step"})
+            rows = [
+                [i + 1] + [r.get(k, "–") for k in keys]
+                for i, r in enumerate(per_run)
+                if isinstance(r, dict)
+            ]
+            out.append(
+                "Per training run, in order (noise: the estimated measurement noise of each state):"
+            )
+            out.append(_table(["training run", *keys], rows))
+    else:
+        out.append("The derivative method was not recorded.")
+    if _integral_final_fit(model):
+        out.append(
+            "The rates of change served to find the regimes. Each regime's terms and "
+            "coefficients were then chosen and estimated again on the integral of its "
+            "equations over short windows inside its stretches, which needs no derivative, "
+            "with the measurement noise in the terms compensated (docs/method.md, "
+            "integral-form refit)."
+        )
+    return "\n\n".join(out)
+
+
+def _integral_final_fit(model: HybridModel) -> bool:
+    """Whether the coefficients come from the integral-form final fit (recorded option)."""
+    options = (model.metadata or {}).get("options")
+    return (
+        model.form != "discrete"
+        and isinstance(options, dict)
+        and options.get("final_fit") == "integral"
+    )
+
+
+def _metadata_section(model: HybridModel) -> str:
+    meta = dict(model.metadata or {})
+    if not meta:
+        return "## Run details\n\nNo metadata recorded."
+    rows = []
+    for key in ("modemap_version", "seed", "source"):
+        if key in meta:
+            rows.append((key.replace("_", " "), meta.pop(key)))
+    options = meta.pop("options", None)
+    notes = meta.pop("notes", None)
+    rows += [(k, x) for k, x in meta.items()]
+    out = ["## Run details"] + ([_table(["Item", "Value"], rows)] if rows else [])
+    if isinstance(options, dict) and options:
+        out.append("Options:\n\n" + _table(["Option", "Value"], list(options.items())))
+    if notes:
+        out.append("Notes from the fit:\n\n" + "\n".join(f"- {_cell(n)}" for n in notes))
+    return "\n\n".join(out)

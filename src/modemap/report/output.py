@@ -1,0 +1,83 @@
+"""Write the results of a fit: ``model.json``, ``labels.csv`` and ``report.md``.
+
+All three are rendered in memory first, then written to temporary files in the
+output folder, then renamed into place.  A failure before the renames leaves
+the folder exactly as it was (earlier results included); nothing half-written
+is ever left under a final name.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from pathlib import Path
+
+import pandas as pd
+
+from modemap._atomic import current_umask
+from modemap._exceptions import ModemapError
+from modemap.data.dataset import Dataset
+from modemap.model.hybrid import HybridModel
+
+__all__ = ["RESULT_FILES", "write_fit_outputs"]
+
+RESULT_FILES = ("model.json", "labels.csv", "report.md")
+
+
+def write_fit_outputs(
+    directory: str | os.PathLike[str],
+    model: HybridModel,
+    labels: pd.DataFrame,
+    *,
+    dataset: Dataset | None = None,
+) -> list[Path]:
+    """Write ``model.json``, ``labels.csv`` and ``report.md`` into ``directory``.
+
+    Parameters
+    ----------
+    directory : path-like
+        Output folder (created if missing).
+    model : HybridModel
+    labels : DataFrame
+        Columns ``run, time, regime``, one row per input sample.
+    dataset : Dataset, optional
+        Used for the data summary at the top of the report.
+
+    Returns
+    -------
+    list of Path
+        The three files written.
+    """
+    from modemap.data.intake import summarize
+    from modemap.model.modelfile import dumps_model
+    from modemap.report.markdown import render_report
+
+    out = Path(directory)
+    if out.exists() and not out.is_dir():
+        raise ModemapError(f"{out}: exists and is not a folder")
+    texts = {
+        "model.json": dumps_model(model),
+        "labels.csv": labels[["run", "time", "regime"]].to_csv(index=False, float_format="%.10g"),
+        "report.md": render_report(
+            model, dataset_summary=summarize(dataset) if dataset is not None else None
+        ),
+    }
+    out.mkdir(parents=True, exist_ok=True)
+    temps: dict[str, str] = {}
+    try:
+        for name, text in texts.items():
+            fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=out)
+            temps[name] = tmp
+            with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.chmod(tmp, 0o666 & ~current_umask())
+        for name, tmp in temps.items():
+            os.replace(tmp, out / name)
+    finally:
+        for tmp in temps.values():
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+    return [out / name for name in RESULT_FILES]

@@ -1,0 +1,1 @@
+"""Stage 6, simulation: the event-driven hybrid simulator and validation by re-simulation."""

@@ -1,0 +1,1 @@
+"""Stage 2, terms: the term grammar, the candidate-term library and readable equations."""
