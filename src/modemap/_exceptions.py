@@ -11,6 +11,7 @@ Hierarchy::
     ├── DataError (ValueError)        bad input data: file, column, row
     ├── ExpressionError (ValueError)  a candidate-term expression that does not parse
     ├── ModelFileError (ValueError)   a model file that is malformed or of an unknown version
+    ├── ParameterError (ValueError)   an estimator parameter or option out of its allowed values
     ├── FitError (RuntimeError)       a fit that cannot proceed on valid data
     │   └── FitCancelled              the progress callback asked to stop
     └── SimulationError (RuntimeError)
@@ -25,6 +26,7 @@ __all__ = [
     "FitError",
     "ModelFileError",
     "ModemapError",
+    "ParameterError",
     "SimulationError",
 ]
 
@@ -81,6 +83,11 @@ class ExpressionError(ModemapError, ValueError):
 
 class ModelFileError(ModemapError, ValueError):
     """A model file that is malformed, inconsistent or of an unknown version."""
+
+
+class ParameterError(ModemapError, ValueError):
+    """An estimator parameter or a function option outside its allowed values
+    (checked by :func:`modemap._params.check_params`)."""
 
 
 class FitError(ModemapError, RuntimeError):

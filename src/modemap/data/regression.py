@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from modemap._exceptions import DataError
+from modemap._exceptions import DataError, ParameterError
 from modemap.data.dataset import Dataset
 from modemap.data.derivatives import differentiate
 
@@ -97,7 +97,7 @@ def prepare_regression(
     RegressionData
     """
     if form not in FORMS:
-        raise ValueError(f"form must be one of {FORMS}, got {form!r}")
+        raise ParameterError(f"form must be one of {', '.join(FORMS)}, got {form!r}")
     method, options = _derivative_request(derivative)
     Zs, Ys, times, index, lengths, run_ids, settings = [], [], [], [], [], [], []
     offset = 0

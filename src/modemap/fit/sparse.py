@@ -47,7 +47,7 @@ from sklearn.linear_model import Lasso, LassoCV
 from sklearn.model_selection import KFold
 from sklearn.utils.validation import check_is_fitted, validate_data
 
-from modemap._exceptions import FitError
+from modemap._exceptions import FitError, ParameterError
 from modemap.fit.statistics import GramStats
 
 __all__ = [
@@ -271,7 +271,7 @@ def _score(rss: float, k: int, n: float, yy: float, criterion: str) -> float:
 
 def _check_criterion(criterion: str) -> None:
     if criterion not in CRITERIA:
-        raise ValueError(f"criterion must be one of {CRITERIA}, got {criterion!r}")
+        raise ParameterError(f"criterion must be one of {CRITERIA}, got {criterion!r}")
 
 
 def _scan_information(
@@ -469,10 +469,10 @@ def fit_sparse(
     _check_stats(total, terms)
     if isinstance(threshold, str):
         if threshold != "auto":
-            raise ValueError(f"threshold must be 'auto' or a number, got {threshold!r}")
+            raise ParameterError(f"threshold must be 'auto' or a number, got {threshold!r}")
         if criterion == "cv":
             if len(blocks) < 2:
-                raise ValueError("criterion='cv' needs statistics for at least 2 blocks")
+                raise ParameterError("criterion='cv' needs statistics for at least 2 blocks")
             support, thr, rows = _scan_cv(blocks, ridge, max_iter)
         else:
             support, thr, rows = _scan_information(total, ridge, max_iter, criterion)
@@ -481,7 +481,7 @@ def fit_sparse(
         return refit_support(total, terms, support, threshold=thr, path=path)
     thr = np.broadcast_to(np.asarray(threshold, dtype=np.float64), (total.n_targets,))
     if np.any(thr < 0) or not np.all(np.isfinite(thr)):
-        raise ValueError(f"threshold must be finite and >= 0, got {threshold!r}")
+        raise ParameterError(f"threshold must be finite and >= 0, got {threshold!r}")
     _, support = threshold_least_squares(
         total.gram,
         total.cross,
@@ -608,7 +608,7 @@ class SparseRegression(RegressorMixin, BaseEstimator):
             )
             n_iter = count_rounds(stats, fit.threshold, ridge=self.ridge, max_iter=self.max_iter)
         else:
-            raise ValueError(f"solver must be 'lsq' or 'lasso', got {self.solver!r}")
+            raise ParameterError(f"solver must be 'lsq' or 'lasso', got {self.solver!r}")
         self.local_fit_, self.n_iter_ = fit, n_iter
         self.coef_, self.support_, self.stderr_ = fit.coef, fit.support, fit.stderr
         self.threshold_, self.noise_cov_, self.path_ = fit.threshold, fit.noise_cov, fit.path

@@ -22,6 +22,7 @@ from collections.abc import Mapping, Sequence
 
 import numpy as np
 
+from modemap._exceptions import ParameterError
 from modemap.terms.expressions import FUNCTIONS, BinOp, Call, Const, Expr, Neg, Var, parse
 
 __all__ = ["STYLES", "format_coefficient", "format_equations", "format_term"]
@@ -294,9 +295,9 @@ def format_equations(
     list of str
     """
     if style not in STYLES:
-        raise ValueError(f"style must be one of {STYLES}, got {style!r}")
+        raise ParameterError(f"style must be one of {STYLES}, got {style!r}")
     if form not in ("continuous", "discrete"):
-        raise ValueError(f"form must be 'continuous' or 'discrete', got {form!r}")
+        raise ParameterError(f"form must be 'continuous' or 'discrete', got {form!r}")
     coef = np.asarray(coef, dtype=np.float64).reshape(len(terms), len(state_names))
     variables = _variables(terms, state_names)
     rendered = [format_term(t, variables, style) for t in terms]
