@@ -17,6 +17,7 @@ from lag_data import held_lag
 from modemap import read_data
 from modemap.fit.centring import fit_sparse_centred
 from modemap.fit.increments import fit_on_increments, increment_stats, persistence_matrix
+from modemap.fit.local_model import SparseLocalModel
 from modemap.fit.sparse import fit_sparse
 from modemap.fit.statistics import GramStats
 from modemap.identify.local_dynamics import LocalDynamics
@@ -67,7 +68,7 @@ def test_discrete_form_keeps_the_dynamics_of_a_fast_sampled_lag() -> None:
     # selection's floor, so a selection on x[k+1] keeps x alone (x[k+1] = x[k])
     frame = _slow_tank()
     ds = read_data(frame, time="t", states=["x"], inputs=["u"])
-    model = LocalDynamics(form="discrete", degree=1).fit(ds)
+    model = LocalDynamics(form="discrete", local_model=SparseLocalModel(degree=1)).fit(ds)
     coef = dict(zip(model.terms_, model.coef_[:, 0], strict=True))
     phi = np.exp(-A * DT)
     # exact zero-order-hold discretisation (textbook), noise 2e-5 on x

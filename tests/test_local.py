@@ -8,6 +8,7 @@ from scipy.integrate import solve_ivp
 
 from modemap.data.dataset import Dataset, Run
 from modemap.data.regression import prepare_regression
+from modemap.fit.local_model import AffineLocalModel, SparseLocalModel
 from modemap.identify.local_dynamics import LocalDynamics
 
 # Lorenz system, "Deterministic nonperiodic flow", Journal of the Atmospheric
@@ -73,7 +74,9 @@ def test_lorenz(lorenz_runs, noise, derivative, tol) -> None:
         (t, x + noise * x.std(axis=0) * rng.normal(size=x.shape), np.zeros((t.size, 0)))
         for t, x in lorenz_runs
     ]
-    est = LocalDynamics(degree=2, derivative=derivative).fit(_dataset(runs, "xyz"))
+    est = LocalDynamics(local_model=SparseLocalModel(degree=2), derivative=derivative).fit(
+        _dataset(runs, "xyz")
+    )
     truth = _truth(est.terms_)
     # exact seven-term support of the Lorenz equations (Journal of the Atmospheric Sciences, 1963)
     np.testing.assert_array_equal(est.support_, truth != 0)
@@ -112,7 +115,7 @@ def test_discrete_affine_map_and_fixed_point() -> None:
     x = np.zeros((400, 1))
     for k in range(399):
         x[k + 1] = a * x[k] + b * u[k] + c + 0.01 * rng.normal()
-    est = LocalDynamics(form="discrete", model="affine").fit(
+    est = LocalDynamics(form="discrete", local_model=AffineLocalModel()).fit(
         _dataset([(np.arange(400.0), x, u)], ["x"], ["u"])
     )
     assert est.terms_ == ["1", "x", "u"]
@@ -138,14 +141,16 @@ def test_bootstrap_inclusion_attribute(lorenz_runs) -> None:
 
 
 def test_bad_parameters_raise_at_fit() -> None:
-    est = LocalDynamics(model="quadratic")
-    assert est.get_params()["model"] == "quadratic"
-    with pytest.raises(ValueError, match="model"):
+    est = LocalDynamics(local_model="quadratic")
+    assert est.get_params()["local_model"] == "quadratic"
+    with pytest.raises(ValueError, match="local_model"):
         est.fit(None)
 
 
 def test_cross_validated_threshold(lorenz_runs) -> None:
     runs = [(t, x, np.zeros((t.size, 0))) for t, x in lorenz_runs]
-    est = LocalDynamics(criterion="cv", derivative="central").fit(_dataset(runs, "xyz"))
+    est = LocalDynamics(local_model=SparseLocalModel(criterion="cv"), derivative="central").fit(
+        _dataset(runs, "xyz")
+    )
     # the seven Lorenz terms (Journal of the Atmospheric Sciences, 1963) by held-out error
     np.testing.assert_array_equal(est.support_, _truth(est.terms_) != 0)

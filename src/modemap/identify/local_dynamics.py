@@ -3,39 +3,35 @@
 Regression rows come from :func:`modemap.data.regression.prepare_regression`.
 :class:`LocalDynamics` fits one model to all rows: candidate terms from
 :class:`~modemap.terms.library.TermLibrary`, statistics accumulated chunk by chunk
-(:func:`modemap.fit.statistics.accumulate`), then sequentially thresholded least squares
-(:func:`modemap.fit.sparse.fit_sparse`) or the affine operator
-(:func:`modemap.fit.affine.fit_affine`), the equilibria with the inputs held at
-their medians, and readable equations.
+(:func:`modemap.fit.statistics.accumulate`), then the local model
+(:mod:`modemap.fit.local_model`: sequentially thresholded least squares or the affine
+operator), the equilibria with the inputs held at their medians, and readable equations.
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping
-from typing import Any
+from typing import Any, ClassVar
 
 import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
 
-from modemap._exceptions import DataError, FitError
+from modemap._exceptions import DataError, FitError, ParameterError
+from modemap._params import Interval, Options, check_params
 from modemap.data.dataset import Dataset
 from modemap.data.regression import FORMS, RegressionData, prepare_regression
-from modemap.fit.affine import fit_affine
-from modemap.fit.centring import fit_sparse_centred
-from modemap.fit.increments import fit_on_increments
-from modemap.fit.sparse import CRITERIA, fit_sparse
-from modemap.fit.statistics import accumulate, accumulate_by_label
+from modemap.fit.local_model import BoundLocalModel, LocalModel, SparseLocalModel
+from modemap.fit.statistics import GramStats, accumulate, accumulate_by_label
 from modemap.fit.uncertainty import block_bootstrap
 from modemap.model.equilibria import find_equilibria
 from modemap.model.hybrid import RegimeModel
 from modemap.terms.equations import format_equations
 from modemap.terms.library import TermLibrary
 
-__all__ = ["MODELS", "LocalDynamics"]
+__all__ = ["LocalDynamics"]
 
-MODELS = ("sparse", "affine")
 _CV_BLOCKS = 5
 
 
@@ -46,20 +42,12 @@ class LocalDynamics(BaseEstimator):
     ----------
     form : {"continuous", "discrete"}, default "continuous"
         Fit ``dx/dt = f(x, u)`` or ``x[k+1] = f(x[k], u[k])``.
-    model : {"sparse", "affine"}, default "sparse"
-        Sparse regression on candidate terms, or the affine operator
-        ``A x + B u + c`` (degree-1 terms, plain least squares).
-    degree : int, default 2
-        Polynomial degree of the candidate terms (sparse model).
-    trig : sequence of str, default ()
-        Variables that get ``sin``/``cos`` terms (see :class:`TermLibrary`).
-    custom : sequence of str, default ()
-        Extra terms in the expression grammar.
-    threshold : "auto" or float, default "auto"
-        Normalised threshold (see :mod:`modemap.fit.sparse`).
-    ridge : float, default 0
-    criterion : {"bic", "aic", "cv"}, default "bic"
-        Threshold choice; "cv" uses 5 contiguous blocks of rows.
+    local_model : LocalModel or None, default None
+        The model (:mod:`modemap.fit.local_model`): sparse regression on candidate terms
+        (:class:`~modemap.fit.local_model.SparseLocalModel`, the default) or the affine
+        operator ``A x + B u + c`` (:class:`~modemap.fit.local_model.AffineLocalModel`).
+        A sparse model with ``criterion="cv"`` chooses its threshold on 5 contiguous
+        blocks of rows.
     derivative : str or mapping, default "auto"
         Derivative method (continuous form).
     n_bootstrap : int, default 0
@@ -84,47 +72,28 @@ class LocalDynamics(BaseEstimator):
     n_samples_ : int
     """
 
+    _parameter_constraints: ClassVar[dict[str, list]] = {
+        "form": [Options(FORMS)],
+        "local_model": [LocalModel, None],
+        "derivative": [str, Mapping],
+        "n_bootstrap": [Interval(int, 0, None)],
+        "seed": [Interval(int, 0, 2**32 - 1)],
+    }
+
     def __init__(
         self,
         *,
         form: str = "continuous",
-        model: str = "sparse",
-        degree: int = 2,
-        trig: tuple[str, ...] = (),
-        custom: tuple[str, ...] = (),
-        threshold: float | str = "auto",
-        ridge: float = 0.0,
-        criterion: str = "bic",
+        local_model: LocalModel | None = None,
         derivative: str | Mapping[str, Any] = "auto",
         n_bootstrap: int = 0,
         seed: int = 0,
     ) -> None:
         self.form = form
-        self.model = model
-        self.degree = degree
-        self.trig = trig
-        self.custom = custom
-        self.threshold = threshold
-        self.ridge = ridge
-        self.criterion = criterion
+        self.local_model = local_model
         self.derivative = derivative
         self.n_bootstrap = n_bootstrap
         self.seed = seed
-
-    def _check_params(self) -> None:
-        if self.form not in FORMS:
-            raise ValueError(f"form must be one of {FORMS}, got {self.form!r}")
-        if self.model not in MODELS:
-            raise ValueError(f"model must be one of {MODELS}, got {self.model!r}")
-        if self.criterion not in CRITERIA:
-            raise ValueError(f"criterion must be one of {CRITERIA}, got {self.criterion!r}")
-        if int(self.n_bootstrap) < 0:
-            raise ValueError(f"n_bootstrap must be >= 0, got {self.n_bootstrap!r}")
-
-    def _library(self, variables: tuple[str, ...]) -> TermLibrary:
-        if self.model == "affine":
-            return TermLibrary(degree=1).fit(variables)
-        return TermLibrary(degree=self.degree, trig=self.trig, custom=self.custom).fit(variables)
 
     def fit(self, ds: Dataset, y: object = None) -> LocalDynamics:
         """Fit the local model to every sample of ``ds``.
@@ -138,62 +107,46 @@ class LocalDynamics(BaseEstimator):
         -------
         self
         """
-        self._check_params()
+        check_params(self)
         if not isinstance(ds, Dataset):
             raise DataError(f"LocalDynamics.fit expects a Dataset, got {type(ds).__name__}")
+        spec = SparseLocalModel() if self.local_model is None else self.local_model
         reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
-        library = self._library(ds.variable_names)
+        local = spec.bind(ds.variable_names, n_states=ds.n_states, form=self.form)
+        library = local.library
         if reg.n_samples <= library.n_terms_:
             raise FitError(
                 f"{ds.source}: {reg.n_samples} samples for {library.n_terms_} candidate terms; "
                 "lower the degree or give more data"
             )
-        fit = self._fit_stats(library, reg)
+        fit = local.fit(self._statistics(local, reg))
         self._set_results(ds, reg, library, fit)
-        if self.n_bootstrap and self.model == "sparse":
+        if self.n_bootstrap and isinstance(spec, SparseLocalModel):
             boot = block_bootstrap(
                 library,
                 reg.Z,
                 reg.Y,
                 reg.lengths,
                 n_boot=int(self.n_bootstrap),
-                threshold=self.threshold,
-                criterion="bic" if self.criterion == "cv" else self.criterion,
-                ridge=self.ridge,
+                threshold=spec.threshold,
+                criterion="bic" if spec.criterion == "cv" else spec.criterion,
+                ridge=spec.ridge,
                 seed=self.seed,
                 states=ds.state_names if self.form == "discrete" else None,
             )
             self.inclusion_ = boot["inclusion"]
         return self
 
-    def _fit_stats(self, library: TermLibrary, reg: RegressionData):
-        terms = list(library.terms_)
-        if self.model == "affine":
-            return fit_affine(accumulate(library, reg.Z, reg.Y), terms)
-        if self.criterion == "cv" and self.threshold == "auto":
+    @staticmethod
+    def _statistics(local: BoundLocalModel, reg: RegressionData) -> GramStats | list[GramStats]:
+        """All rows' statistics, or per block of rows for a cross-validated threshold."""
+        spec = local.spec
+        if getattr(spec, "criterion", None) == "cv" and getattr(spec, "threshold", 0) == "auto":
             blocks = np.minimum(
                 np.arange(reg.n_samples) * _CV_BLOCKS // reg.n_samples, _CV_BLOCKS - 1
             )
-            stats = accumulate_by_label(library, reg.Z, reg.Y, blocks, _CV_BLOCKS)
-
-            def select(s):
-                return fit_sparse(s, terms, threshold="auto", ridge=self.ridge, criterion="cv")
-        else:
-            stats = accumulate(library, reg.Z, reg.Y)
-
-            def select(s):
-                return fit_sparse_centred(
-                    s,
-                    terms,
-                    library.variables_,
-                    threshold=self.threshold,
-                    ridge=self.ridge,
-                    criterion=self.criterion,
-                )
-
-        if self.form == "discrete":  # select on x[k+1] - x[k] (modemap.fit.increments)
-            return fit_on_increments(select, stats, terms, library.variables_[: reg.Y.shape[1]])
-        return select(stats)
+            return accumulate_by_label(local.library, reg.Z, reg.Y, blocks, _CV_BLOCKS)
+        return accumulate(local.library, reg.Z, reg.Y)
 
     def _set_results(self, ds: Dataset, reg: RegressionData, library: TermLibrary, fit) -> None:
         _, states, inputs, _ = ds.concat()
@@ -244,7 +197,7 @@ class LocalDynamics(BaseEstimator):
             "inclusion": self.inclusion_,
         }.get(values)
         if data is None:
-            raise ValueError(f"no {values!r} table (choose coef, stderr, support, inclusion)")
+            raise ParameterError(f"no {values!r} table (choose coef, stderr, support, inclusion)")
         frame = pd.DataFrame(
             data, index=pd.Index(self.terms_, name="term"), columns=self.state_names_
         )
