@@ -1,4 +1,5 @@
-"""Tests of modemap.engine (local and Dask engines) and of the out-of-core reading paths."""
+"""Tests of modemap.engine (local and Dask executors), the per-block tasks they run
+(modemap.regimes.blocks) and the out-of-core reading paths."""
 
 from __future__ import annotations
 
@@ -13,19 +14,12 @@ import pytest
 from modemap._exceptions import DataError, FitError
 from modemap.data import tables
 from modemap.data.intake import read_data
-from modemap.engine import (
-    DaskEngine,
-    Engine,
-    LocalEngine,
-    RunBlock,
-    decode_runs,
-    get_engine,
-    split_runs,
-    stats_by_label,
-)
+from modemap.engine import DaskEngine, Engine, LocalEngine, get_engine
 from modemap.fit.statistics import accumulate_by_label
+from modemap.regimes.blocks import RunBlock, decode_blocks, split_blocks, stats_by_label
 from modemap.regimes.viterbi import viterbi_runs
 from modemap.terms.library import TermLibrary
+from refine_helpers import refine_rows
 
 LENGTHS = [700, 1100, 1200]
 K = 3
@@ -70,8 +64,8 @@ def test_local_engine_maps_in_order_and_scatter_is_identity() -> None:
     assert engine.map(abs, []) == []
 
 
-def test_split_runs_gives_views_of_each_run(problem: dict) -> None:
-    runs = split_runs(problem["Z"], problem["Y"], LENGTHS)
+def test_split_blocks_gives_views_of_each_run(problem: dict) -> None:
+    runs = split_blocks(problem["Z"], problem["Y"], LENGTHS)
     assert [r.Z.shape[0] for r in runs] == LENGTHS
     assert all(np.shares_memory(r.Z, problem["Z"]) for r in runs)
     np.testing.assert_array_equal(np.vstack([r.Y for r in runs]), problem["Y"])
@@ -80,7 +74,7 @@ def test_split_runs_gives_views_of_each_run(problem: dict) -> None:
 def test_stats_by_label_solves_like_numpy_lstsq(problem: dict) -> None:
     lib, Z, Y, lab = problem["library"], problem["Z"], problem["Y"], problem["noisy"]
     engine = LocalEngine()
-    stats = stats_by_label(engine, split_runs(Z, Y, LENGTHS), _per_run(lab), lib, K)
+    stats = stats_by_label(engine, split_blocks(Z, Y, LENGTHS), _per_run(lab), lib, K)
     theta = lib.transform(Z)
     for k in range(K):
         rows = lab == k
@@ -94,7 +88,8 @@ def test_stats_by_label_solves_like_numpy_lstsq(problem: dict) -> None:
 
 def test_stats_by_label_equals_one_pass_over_all_rows(problem: dict) -> None:
     lib, Z, Y, lab = problem["library"], problem["Z"], problem["Y"], problem["noisy"]
-    per_run = stats_by_label(LocalEngine(), split_runs(Z, Y, LENGTHS), _per_run(lab), lib, K)
+    blocks = split_blocks(Z, Y, LENGTHS)
+    per_run = stats_by_label(LocalEngine(), blocks, _per_run(lab), lib, K)
     whole = accumulate_by_label(lib, Z, Y, lab, K)
     for a, b in zip(per_run, whole, strict=True):
         np.testing.assert_allclose(a.gram, b.gram, rtol=1e-12)
@@ -114,7 +109,7 @@ def _brute_force(log_em: np.ndarray, log_start: np.ndarray, log_trans: np.ndarra
     return np.array(best_path), best
 
 
-def test_decode_runs_finds_the_brute_force_path_on_short_runs() -> None:
+def test_decode_blocks_finds_the_brute_force_path_on_short_runs() -> None:
     rng = np.random.default_rng(3)
     library = TermLibrary(degree=1).fit(["a"])
     lengths = [6, 5]
@@ -124,10 +119,11 @@ def test_decode_runs_finds_the_brute_force_path_on_short_runs() -> None:
     covs = np.array([[[0.5]], [[0.7]], [[1.1]]])
     log_start, log_trans = np.log([0.5, 0.3, 0.2]), np.log([[0.8, 0.1, 0.1], [0.2, 0.7, 0.1]] * 1)
     log_trans = np.vstack([log_trans, np.log([[0.3, 0.3, 0.4]])])
-    runs = split_runs(Z, Y, lengths)
-    paths, log_prob, _ = decode_runs(
-        LocalEngine(), runs, library, coefs, covs, log_start, log_trans
+    runs = split_blocks(Z, Y, lengths)
+    path, log_prob, _ = decode_blocks(
+        LocalEngine(), runs, library, coefs, covs, (log_start, log_trans)
     )
+    paths = np.split(path, np.cumsum(lengths)[:-1])
     total = 0.0
     for run, path in zip(runs, paths, strict=True):
         theta = library.transform(run.Z)
@@ -139,20 +135,21 @@ def test_decode_runs_finds_the_brute_force_path_on_short_runs() -> None:
     assert log_prob == pytest.approx(total, rel=1e-12)
 
 
-def test_decode_runs_equals_stacked_viterbi_and_scores_current_labels(problem: dict) -> None:
-    from modemap.regimes.refine import path_log_prob, regime_log_likelihood
+def test_decode_blocks_equals_stacked_viterbi_and_scores_current_labels(problem: dict) -> None:
+    from modemap.regimes.likelihood import path_log_prob, regime_log_likelihood
 
     lib, Z, Y = problem["library"], problem["Z"], problem["Y"]
     covs = np.array([np.eye(2) * 0.01] * K)
     log_start, log_trans = _chain()
-    runs = split_runs(Z, Y, LENGTHS)
+    runs = split_blocks(Z, Y, LENGTHS)
     current = _per_run(problem["labels"])
-    paths, log_prob, cur = decode_runs(
-        LocalEngine(), runs, lib, problem["coefs"], covs, log_start, log_trans, current=current
+    chain = (log_start, log_trans)
+    path, log_prob, cur = decode_blocks(
+        LocalEngine(), runs, lib, problem["coefs"], covs, chain, current=current
     )
     log_em = regime_log_likelihood(lib, Z, Y, problem["coefs"], covs)
     ref_path, ref_prob = viterbi_runs(log_em, LENGTHS, log_start, log_trans)
-    np.testing.assert_array_equal(np.concatenate(paths), ref_path)
+    np.testing.assert_array_equal(path, ref_path)
     assert log_prob == pytest.approx(ref_prob, rel=1e-12)
     ref_cur = path_log_prob(log_em, problem["labels"], np.array(LENGTHS), log_start, log_trans)
     assert cur == pytest.approx(ref_cur, rel=1e-12)
@@ -203,25 +200,25 @@ def cluster():
 
 def test_dask_engine_gives_the_local_results_exactly(cluster, problem: dict) -> None:
     lib, Z, Y = problem["library"], problem["Z"], problem["Y"]
-    runs = split_runs(Z, Y, LENGTHS)
+    runs = split_blocks(Z, Y, LENGTHS)
     labels = _per_run(problem["noisy"])
     covs = np.array([np.eye(2) * 0.01] * K)
     log_start, log_trans = _chain()
     local = LocalEngine()
     expected = stats_by_label(local, runs, labels, lib, K)
-    ref = decode_runs(local, runs, lib, problem["coefs"], covs, log_start, log_trans)
+    chain = (log_start, log_trans)
+    ref = decode_blocks(local, runs, lib, problem["coefs"], covs, chain)
     with DaskEngine(cluster.scheduler_address) as engine:
-        handles = engine.scatter([RunBlock(r.Z.copy(), r.Y.copy()) for r in runs])
+        handles = engine.scatter([RunBlock(r.Z.copy(), r.Y.copy(), r.lengths) for r in runs])
         got = stats_by_label(engine, handles, labels, lib, K)
-        out = decode_runs(engine, handles, lib, problem["coefs"], covs, log_start, log_trans)
+        out = decode_blocks(engine, handles, lib, problem["coefs"], covs, chain)
         assert engine.map(abs, [-2, 3]) == [2, 3]
     # same per-run terms summed in the same order on the client: identical sums
     for a, b in zip(expected, got, strict=True):
         np.testing.assert_array_equal(a.gram, b.gram)
         np.testing.assert_array_equal(a.cross, b.cross)
         assert a.n == b.n
-    for p, q in zip(ref[0], out[0], strict=True):
-        np.testing.assert_array_equal(p, q)
+    np.testing.assert_array_equal(ref[0], out[0])
     assert out[1] == pytest.approx(ref[1], rel=1e-12)
     assert cluster.scheduler_address.startswith("tcp://127.0.0.1:")
 
@@ -246,39 +243,35 @@ def _assert_same_refinement(a, b, rtol: float) -> None:
 
 @pytest.mark.parametrize("location_weight", [0.0, 0.5])
 def test_refine_over_runs_equals_refine_on_all_rows(problem: dict, location_weight) -> None:
-    from modemap.regimes.refine import refine
-
     lib, Z, Y = problem["library"], problem["Z"], problem["Y"]
     options = {"n_regimes": K, "model": "sparse", "location_weight": location_weight}
     start = _refine_start(problem)
-    whole = refine(Z, Y, np.array(LENGTHS), start, lib, **options)
-    runs = refine(Z, Y, np.array(LENGTHS), start, lib, engine=LocalEngine(), **options)
+    whole = refine_rows(Z, Y, np.array(LENGTHS), start, lib, **options)
+    runs = refine_rows(Z, Y, np.array(LENGTHS), start, lib, per_run=True, **options)
     _assert_same_refinement(whole, runs, rtol=1e-9)
     assert np.mean(whole.labels == problem["labels"]) > 0.99  # the simulated regimes
 
 
 def test_refine_on_dask_workers_equals_local_refine(cluster, problem: dict) -> None:
-    from modemap.regimes.refine import refine
-
     lib, Z, Y = problem["library"], problem["Z"], problem["Y"]
     start = _refine_start(problem)
-    local = refine(Z, Y, np.array(LENGTHS), start, lib, n_regimes=K, engine=LocalEngine())
-    whole = refine(Z, Y, np.array(LENGTHS), start, lib, n_regimes=K)
+    lengths = np.array(LENGTHS)
+    local = refine_rows(Z, Y, lengths, start, lib, n_regimes=K, per_run=True)
+    whole = refine_rows(Z, Y, lengths, start, lib, n_regimes=K)
     with DaskEngine(cluster.scheduler_address) as engine:
-        remote = refine(Z, Y, np.array(LENGTHS), start, lib, n_regimes=K, engine=engine)
+        remote = refine_rows(Z, Y, lengths, start, lib, n_regimes=K, engine=engine)
     _assert_same_refinement(local, remote, rtol=0.0)  # same sums in the same order: exact
     _assert_same_refinement(whole, remote, rtol=1e-9)
 
 
 def test_regime_finder_on_dask_equals_local(cluster) -> None:
     from modemap.app.bench import invented_system
+    from modemap.fit.local_model import SparseLocalModel
     from modemap.regimes.finder import RegimeFinder
 
-    if "engine" not in RegimeFinder().get_params():
-        pytest.skip("RegimeFinder has no engine option yet")
     frame, truth = invented_system(30_000, seed=1)  # invented three-regime benchmark system
     ds = read_data(frame, time="t", states=["x1", "x2", "x3"], inputs=["u"], run="run")
-    options = {"n_regimes": 3, "form": "discrete", "degree": 2}
+    options = {"n_regimes": 3, "form": "discrete", "local_model": SparseLocalModel(degree=2)}
     local = RegimeFinder(**options).fit(ds)
     remote = RegimeFinder(engine="dask", scheduler=cluster.scheduler_address, **options).fit(ds)
     for a, b in zip(local.labels_, remote.labels_, strict=True):

@@ -23,6 +23,7 @@ from modemap.demos import make_demo
 from modemap.fit.sparse import LocalFit
 from modemap.fit.statistics import GramStats
 from modemap.regimes.integral import integral_refit, right_ends, window_bounds
+from modemap.regimes.rows import Rows
 from modemap.regimes.segments import stepped_columns
 from modemap.terms.library import TermLibrary
 
@@ -58,7 +59,8 @@ def _refit(library, Z, t, lengths, labels, k: int, **options):
         GramStats.from_arrays(library.transform(Z[labels == g]), np.zeros((np.sum(labels == g), m)))
         for g in range(k)
     ]
-    return integral_refit(library, Z, m, t, lengths, labels, fits, dstats, **options)
+    rows = Rows.of(Z, np.zeros((len(Z), m)), lengths, t)
+    return integral_refit(library, rows, labels, fits, dstats, **options)
 
 
 def test_window_bounds_stay_inside_stretches_and_runs() -> None:
@@ -163,9 +165,8 @@ def reactor_true_labels():
     ]
 
     def run(compensate: bool):
-        return integral_refit(
-            library, Z, 2, t, lengths, labels, fits, dstats, window=16, compensate=compensate
-        )
+        rows = Rows.of(Z, np.zeros((len(Z), 2)), lengths, t)
+        return integral_refit(library, rows, labels, fits, dstats, window=16, compensate=compensate)
 
     return run, true, support
 
@@ -206,7 +207,8 @@ def test_regime_without_windows_keeps_its_fit_and_short_runs_are_skipped() -> No
     old = [_start_fit(["x", "u"], 1, 1) for _ in range(2)]
     old[1].coef[:] = [[-7.0], [7.0]]
     dstats = [GramStats.from_arrays(library.transform(Z), np.zeros((t.size, 1)))] * 2
-    done = integral_refit(library, Z, 1, t, [t.size - 1, 1], labels, old, dstats)
+    rows = Rows.of(Z, np.zeros((t.size, 1)), [t.size - 1, 1], t)
+    done = integral_refit(library, rows, labels, old, dstats)
     assert done.n_windows[1] == 0
     # the label-0 windows: those of the stretches of zeros alone
     zeros = window_bounds([t.size - 1, 1], np.where(labels == 0, 0, 1), 16)
@@ -247,7 +249,8 @@ def test_noise_products_equal_the_exact_covariance_of_the_windows() -> None:
     ((i, j),) = windows.chunks
     lo, hi, X0, Y0 = windows.chunk(i, j)
     _, _, s, e = windows.bounds(i, j)
-    _add_noise_bias(windows, lo, hi, s, e, labels[lo:hi], np.array([sigma**2]), bias, cross)
+    noise = np.array([sigma**2])
+    _add_noise_bias(windows, (lo, hi), s, e, labels[lo:hi], noise, (bias, cross))
     dx, dy = np.zeros((t.size, *X0.shape)), np.zeros((t.size, *Y0.shape))
     for q in range(t.size):
         z = Z.copy()

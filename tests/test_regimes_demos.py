@@ -21,16 +21,24 @@ from scipy.optimize import linear_sum_assignment
 
 from modemap.data.intake import read_data
 from modemap.demos import make_demo
+from modemap.fit.local_model import AffineLocalModel, SparseLocalModel
 from modemap.regimes import RegimeFinder
 
 pytestmark = pytest.mark.slow
 
 
-def _fit(name: str, inputs: list[str], **options):
+def _fit(name: str, inputs: list[str], *, model: str = "sparse", terms=None, **options):
     frame, truth = make_demo(name, seed=0)
     states = [s["column"] for s in truth["states"]]
     ds = read_data(frame, time=frame.columns[0], states=states, inputs=inputs, run="run")
-    options = {"form": "discrete", "min_dwell": 2, "max_regimes": 3, **options}
+    local = AffineLocalModel() if model == "affine" else SparseLocalModel(terms=terms)
+    options = {
+        "form": "discrete",
+        "min_dwell": 2,
+        "max_regimes": 3,
+        "local_model": local,
+        **options,
+    }
     finder = RegimeFinder(**options).fit(ds)
     return finder, frame["true_regime"].to_numpy(), truth, ds
 

@@ -10,8 +10,9 @@ from scipy.optimize import linear_sum_assignment
 from statsmodels.datasets import nile
 
 from lag_data import held_lag
-from modemap._exceptions import FitCancelled, FitError
+from modemap._exceptions import FitCancelled, ParameterError
 from modemap.data.intake import read_data
+from modemap.fit.local_model import AffineLocalModel, SparseLocalModel
 from modemap.regimes import RegimeFinder
 
 
@@ -41,7 +42,7 @@ def _switching_ar(n: int = 2500, seed: int = 1) -> tuple[pd.DataFrame, np.ndarra
 def ar_fit() -> tuple[RegimeFinder, np.ndarray]:
     frame, s = _switching_ar()
     ds = read_data(frame, time="t", states=["y"])
-    return RegimeFinder(form="discrete", model="affine", max_regimes=3).fit(ds), s
+    return RegimeFinder(form="discrete", local_model=AffineLocalModel(), max_regimes=3).fit(ds), s
 
 
 def test_switching_ar_auto_finds_two_regimes(ar_fit) -> None:
@@ -83,8 +84,8 @@ def test_statistics_and_transition_matrix(ar_fit) -> None:
 def test_same_seed_same_labels() -> None:
     frame, _ = _switching_ar(n=800, seed=3)
     ds = read_data(frame, time="t", states=["y"])
-    a = RegimeFinder(form="discrete", model="affine", n_regimes=2, seed=5).fit(ds)
-    b = RegimeFinder(form="discrete", model="affine", n_regimes=2, seed=5).fit(ds)
+    a = RegimeFinder(form="discrete", local_model=AffineLocalModel(), n_regimes=2, seed=5).fit(ds)
+    b = RegimeFinder(form="discrete", local_model=AffineLocalModel(), n_regimes=2, seed=5).fit(ds)
     np.testing.assert_array_equal(a.labels_[0], b.labels_[0])
     np.testing.assert_array_equal(a.local_fits_[0].coef, b.local_fits_[0].coef)
 
@@ -104,7 +105,7 @@ def test_single_regime_oscillator_gives_one_regime() -> None:
             pd.DataFrame({"t": np.arange(600) * dt, "run": run, "p": x[:, 0], "v": x[:, 1]})
         )
     ds = read_data(pd.concat(frames), time="t", states=["p", "v"], run="run")
-    finder = RegimeFinder(form="discrete", model="affine", max_regimes=3).fit(ds)
+    finder = RegimeFinder(form="discrete", local_model=AffineLocalModel(), max_regimes=3).fit(ds)
     assert finder.n_regimes_ == 1
     assert all(np.all(lab == 0) for lab in finder.labels_)
     np.testing.assert_allclose(finder.local_fits_[0].coef[1:], step.T, atol=0.01)
@@ -134,7 +135,9 @@ def _dynamics_only(phi: tuple[float, float], n: int = 2000, seed: int = 1, k: ob
     ci = dict(zip(ref.model.param_names, np.asarray(ref.conf_int(alpha=0.05)), strict=True))
     theirs = np.argmax(ref.smoothed_marginal_probabilities, axis=1)
     ds = read_data(pd.DataFrame({"t": np.arange(n + 1.0), "y": y}), time="t", states=["y"])
-    finder = RegimeFinder(form="discrete", model="affine", n_regimes=k, max_regimes=3).fit(ds)
+    finder = RegimeFinder(
+        form="discrete", local_model=AffineLocalModel(), n_regimes=k, max_regimes=3
+    ).fit(ds)
     ours = finder.labels_[0][:-1]  # row k models y[k + 1]
     counts = np.array([[np.sum((ours == i) & (theirs == j)) for j in (0, 1)] for i in (0, 1)])
     rows, cols = linear_sum_assignment(-counts)
@@ -177,7 +180,11 @@ def test_nile_level_shift_at_1898() -> None:
     data = nile.load_pandas().data.astype(float)
     ds = read_data(data, time="year", states=["volume"])
     finder = RegimeFinder(
-        form="discrete", terms=["1"], n_regimes="auto", max_regimes=3, min_samples=10
+        form="discrete",
+        local_model=SparseLocalModel(terms=["1"]),
+        n_regimes="auto",
+        max_regimes=3,
+        min_samples=10,
     ).fit(ds)
     assert finder.n_regimes_ == 2
     labels = finder.labels_[0]
@@ -192,7 +199,7 @@ def test_progress_and_cancel() -> None:
     frame, _ = _switching_ar(n=400, seed=2)
     ds = read_data(frame, time="t", states=["y"])
     seen: list[float] = []
-    RegimeFinder(form="discrete", model="affine", n_regimes=2).fit(
+    RegimeFinder(form="discrete", local_model=AffineLocalModel(), n_regimes=2).fit(
         ds, progress=lambda f, m: seen.append(f)
     )
     assert seen and seen[-1] == 1.0 and all(0.0 <= f <= 1.0 for f in seen)
@@ -200,7 +207,7 @@ def test_progress_and_cancel() -> None:
     frame = _switched_lags(n=1500)
     lags = read_data(frame, time="t", states=["x"], inputs=["u", "s"])
     steps: list[tuple[float, str]] = []
-    RegimeFinder(terms=["1", "x", "u"], n_regimes=2).fit(
+    RegimeFinder(local_model=SparseLocalModel(terms=["1", "x", "u"]), n_regimes=2).fit(
         lags, progress=lambda f, m: steps.append((f, m))
     )
     at = next(i for i, (_, m) in enumerate(steps) if "integral" in m)
@@ -220,21 +227,22 @@ def test_scikit_learn_parameter_protocol() -> None:
     # sklearn.base.clone / get_params (scikit-learn estimator conventions)
     from sklearn.base import clone
 
-    finder = RegimeFinder(n_regimes=3, sticky=0.95, terms=["1"])
+    finder = RegimeFinder(n_regimes=3, sticky=0.95, local_model=SparseLocalModel(terms=["1"]))
     copy = clone(finder)
-    assert copy.get_params() == finder.get_params()
+    assert repr(copy) == repr(finder) and copy.local_model is not finder.local_model
+    assert copy.get_params(deep=True)["local_model__terms"] == ["1"]
     assert not hasattr(copy, "labels_")
 
 
-def test_bad_parameters_raise_fit_error() -> None:
+def test_bad_parameters_raise_parameter_error() -> None:
     frame, _ = _switching_ar(n=200, seed=2)
     ds = read_data(frame, time="t", states=["y"])
-    with pytest.raises(FitError, match="n_regimes"):
+    with pytest.raises(ParameterError, match="n_regimes"):
         RegimeFinder(n_regimes=0).fit(ds)
-    with pytest.raises(FitError, match="form"):
+    with pytest.raises(ParameterError, match="form"):
         RegimeFinder(form="sideways").fit(ds)
-    with pytest.raises(FitError, match="final_fit"):
-        RegimeFinder(final_fit="twice").fit(ds)
+    with pytest.raises(ParameterError, match="final_fit"):
+        RegimeFinder(local_model=SparseLocalModel(final_fit="twice")).fit(ds)
 
 
 def _switched_lags(n: int = 6000, dt: float = 0.05, seed: int = 0) -> pd.DataFrame:
@@ -260,7 +268,8 @@ def test_integral_refit_recovers_a_fast_regime_the_derivative_fit_misses() -> No
     ds = read_data(frame, time="t", states=["x"], inputs=["u", "s"])
     errors = {}
     for final in ("integral", "derivative"):
-        finder = RegimeFinder(terms=["1", "x", "u"], n_regimes=2, final_fit=final).fit(ds)
+        local = SparseLocalModel(terms=["1", "x", "u"], final_fit=final)
+        finder = RegimeFinder(local_model=local, n_regimes=2).fit(ds)
         labels = np.concatenate(finder.labels_)
         same = np.mean(labels == frame["s"])
         assert max(same, 1.0 - same) >= 0.99
@@ -308,7 +317,7 @@ def test_segment_targets_are_exact_within_stretches() -> None:
     x = np.where(up, t, 20.0 - t) + 1e-9 * rng.standard_normal(t.size)
     frame = pd.DataFrame({"t": t, "x": x, "u": (~up).astype(float)})
     ds = read_data(frame, time="t", states=["x"], inputs=["u"])
-    finder = RegimeFinder(form="continuous", model="affine", n_regimes=2).fit(ds)
+    finder = RegimeFinder(form="continuous", local_model=AffineLocalModel(), n_regimes=2).fit(ds)
     reg = prepare_regression(ds, form="continuous", derivative=finder.regression_.derivative)
     truth = np.where(up, 1.0, -1.0)[np.asarray(reg.sample_index)]
     labels = (truth < 0).astype(np.int64)
@@ -337,7 +346,9 @@ def test_final_fit_leaves_the_discrete_form_alone() -> None:
     coefs = [
         [
             f.coef
-            for f in RegimeFinder(form="discrete", n_regimes=2, final_fit=choice)
+            for f in RegimeFinder(
+                form="discrete", n_regimes=2, local_model=SparseLocalModel(final_fit=choice)
+            )
             .fit(ds)
             .local_fits_
         ]

@@ -17,9 +17,10 @@ from scipy.optimize import linear_sum_assignment
 from statsmodels.tsa.regime_switching.markov_regression import MarkovRegression
 
 from modemap.fit.statistics import accumulate_by_label
+from modemap.regimes.likelihood import path_log_prob, transition_model
 from modemap.regimes.proposal import propose
-from modemap.regimes.refine import path_log_prob, refine, transition_model
 from modemap.terms.library import TermLibrary
+from refine_helpers import bound_model, refine_rows
 
 # invented two-regime switching AR(1): (slope, intercept) per regime, persistent chain
 PARAMS = np.array([[0.9, 1.0], [0.3, -1.0]])
@@ -54,7 +55,7 @@ def switching_fit():
     z, target = y[:-1, None], y[1:, None]
     library = TermLibrary(degree=1).fit(["y"])
     labels0 = propose(np.hstack([z, target - z]), [z.shape[0]], 2, seed=0)
-    ours = refine(z, target, [z.shape[0]], labels0, library, n_regimes=2, model="affine")
+    ours = refine_rows(z, target, [z.shape[0]], labels0, library, n_regimes=2, model="affine")
     ref = MarkovRegression(
         y[1:], k_regimes=2, exog=y[:-1], switching_exog=True, switching_variance=False
     ).fit(search_reps=0, disp=False)
@@ -123,7 +124,7 @@ def test_residual_emissions_and_decoding_match_hmmlearn_gaussian(seed: int) -> N
     # GaussianHMM (reference library) must give the same emissions and the same Viterbi path.
     from hmmlearn import hmm
 
-    from modemap.regimes.refine import regime_log_likelihood
+    from modemap.regimes.likelihood import regime_log_likelihood
     from modemap.regimes.viterbi import viterbi_runs
 
     rng = np.random.default_rng(seed)
@@ -151,7 +152,7 @@ def test_reported_loglik_equals_per_sample_path_score() -> None:
     # whichever way refine() obtains its log-likelihood (last Viterbi optimum, per-sample scores
     # or the statistics), it must equal the joint log-probability of the returned labels
     # computed sample by sample (definition of the complete-data log-likelihood)
-    from modemap.regimes.refine import regime_log_likelihood
+    from modemap.regimes.likelihood import regime_log_likelihood
 
     y, s = _simulate(3000, seed=4)
     z, target = y[:-1, None], y[1:, None]
@@ -159,7 +160,7 @@ def test_reported_loglik_equals_per_sample_path_score() -> None:
     lengths = np.array([1000, 2000])
     start = np.where(np.random.default_rng(2).random(s.size) < 0.15, 1 - s, s)
     for tol in (0.0, 5e-2):  # 5e-2: stops with labels still moving, then refits from stats
-        res = refine(z, target, lengths, start, library, n_regimes=2, model="affine", tol=tol)
+        res = refine_rows(z, target, lengths, start, library, n_regimes=2, model="affine", tol=tol)
         log_em = regime_log_likelihood(
             library, z, target, [f.coef for f in res.fits], res.covariances
         )
@@ -181,7 +182,7 @@ def test_interior_fits_leave_out_the_rows_that_hold_a_switch() -> None:
     # without the stretch ends.
     import statsmodels.api as sm
 
-    from modemap.regimes.refine import fit_regimes, interior_stats, stretch_ends
+    from modemap.regimes.refine import interior_stats, stretch_ends
 
     rng = np.random.default_rng(3)
     n = 4000
@@ -201,14 +202,15 @@ def test_interior_fits_leave_out_the_rows_that_hold_a_switch() -> None:
     stats = accumulate_by_label(library, Z, nxt[:, None], s, 2)
     inside = interior_stats(Z, nxt[:, None], lengths, s, 2, library, stats)
     for given, exact in ((inside, True), (stats, False)):
-        coef = np.array([f.coef[:, 0] for f in fit_regimes(given, library.terms_, model="affine")])
+        fits = bound_model(library, 1, "affine").fit_all(given)
+        coef = np.array([f.coef[:, 0] for f in fits])
         error = np.abs(coef - PARAMS[:, ::-1]).max()  # rows (c, a)
         assert error < 1e-9 if exact else error > 1e-3
 
     noisy = nxt + 0.05 * rng.standard_normal(n)
-    res = refine(
+    res = refine_rows(
         Z, noisy[:, None], lengths, s, library, n_regimes=2, model="affine", max_iter=1,
-        interior=True,
+        form="discrete",
     )  # fmt: skip
     keep = np.ones(n, dtype=bool)
     keep[stretch_ends(res.labels, lengths)] = False
@@ -224,7 +226,7 @@ def test_shared_location_covariance_is_the_pooled_within_regime_scatter() -> Non
     # unbiased pooled covariance), so the two differ by that factor only
     from sklearn.discriminant_analysis import LinearDiscriminantAnalysis
 
-    from modemap.regimes.refine import location_parameters
+    from modemap.regimes.likelihood import location_parameters
 
     rng = np.random.default_rng(3)
     labels = np.repeat([0, 1, 2], [120, 60, 200])

@@ -6,13 +6,13 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
-from modemap.regimes.refine import refine
 from modemap.regimes.selection import (
     count_parameters,
     holdout_split,
     information_criterion,
 )
 from modemap.terms.library import TermLibrary
+from refine_helpers import refine_rows
 
 
 @pytest.fixture(scope="module")
@@ -21,7 +21,7 @@ def one_regime():
     z = rng.standard_normal((1500, 2))
     y = 0.5 + z @ np.array([1.5, -0.7]) + 0.3 * rng.standard_normal(1500)
     library = TermLibrary(degree=1).fit(["a", "b"])
-    result = refine(
+    result = refine_rows(
         z,
         y[:, None],
         [1500],

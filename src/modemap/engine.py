@@ -1,15 +1,8 @@
-"""Where per-run work runs: in this process, or on the workers of a Dask cluster.
+"""Where work runs: in this process, or on the workers of a Dask cluster.
 
-Fitting a fleet of runs is a map over runs followed by a reduction on the caller's side:
-
-* **statistics** (:func:`stats_by_label`): each run's
-  :class:`~modemap.fit.statistics.GramStats` per regime label
-  (:func:`modemap.fit.statistics.accumulate_by_label` on that run's rows), then summed on the
-  client in run order.  Both engines add the same per-run terms in the same order, so their
-  sums are identical;
-* **decoding** (:func:`decode_runs`): each run's emission log-likelihood under every regime and
-  its Viterbi path (:func:`modemap.regimes.viterbi.viterbi`); runs are independent, so the
-  paths and log-probabilities do not depend on where they were computed.
+An engine is an executor.  It knows nothing of what it runs: the regime stage hands it
+module-level functions and the items to map them over (blocks of runs, see
+:mod:`modemap.regimes.blocks`) and reduces the results itself.
 
 An engine only needs ``scatter(items)`` (place the data where the work will run),
 ``map(fn, items, **kwargs)`` (results in the order of ``items``) and ``close()``:
@@ -21,7 +14,7 @@ An engine only needs ``scatter(items)`` (place the data where the work will run)
   optional extra (``pip install 'modemap[dask]'``).
 
 Functions sent to workers are module-level, so Dask's own serialisation (cloudpickle) can ship
-them; modemap never writes pickles to disk.
+them; modemap never writes pickles to disk.  This module imports nothing from the stages.
 """
 
 from __future__ import annotations
@@ -29,23 +22,16 @@ from __future__ import annotations
 import functools
 import os
 from collections.abc import Callable, Iterable, Sequence
-from typing import Any, NamedTuple, Protocol, runtime_checkable
-
-import numpy as np
+from typing import Any, Protocol, runtime_checkable
 
 from modemap._exceptions import FitError
-from modemap.fit.statistics import GramStats, accumulate_by_label
 
 __all__ = [
     "ENGINES",
     "DaskEngine",
     "Engine",
     "LocalEngine",
-    "RunBlock",
-    "decode_runs",
     "get_engine",
-    "split_runs",
-    "stats_by_label",
 ]
 
 ENGINES = ("local", "dask")
@@ -218,159 +204,3 @@ def get_engine(name: str | Engine = "local", scheduler: str | None = None) -> En
     if name == "dask":
         return DaskEngine(scheduler)
     raise FitError(f"engine must be one of {', '.join(ENGINES)}, got {name!r}")
-
-
-# ---------------------------------------------------------------------- per-run work
-
-
-class RunBlock(NamedTuple):
-    """The regression rows of one run: variables ``Z (n, n_vars)`` and targets ``Y (n, m)``."""
-
-    Z: np.ndarray
-    Y: np.ndarray
-
-
-def split_runs(Z: np.ndarray, Y: np.ndarray, lengths: Sequence[int] | np.ndarray) -> list[RunBlock]:
-    """Cut stacked rows into one :class:`RunBlock` per run (views, no copy)."""
-    bounds = np.cumsum(np.asarray(lengths, dtype=np.int64))[:-1]
-    return [RunBlock(z, y) for z, y in zip(np.split(Z, bounds), np.split(Y, bounds), strict=True)]
-
-
-def _compact(labels: np.ndarray) -> np.ndarray:
-    """Labels in the smallest integer type that holds them (-1 included)."""
-    labels = np.asarray(labels)
-    top = int(labels.max(initial=0))
-    return labels.astype(np.int8 if top < 127 else np.int16 if top < 32767 else np.int64)
-
-
-def _run_stats(
-    item: tuple[RunBlock, np.ndarray], *, library: Any, n_labels: int
-) -> list[GramStats]:
-    """Task: one run's statistics per label."""
-    block, labels = item
-    return accumulate_by_label(library, block.Z, block.Y, labels, n_labels)
-
-
-def stats_by_label(
-    engine: Engine,
-    runs: Sequence[Any],
-    labels: Sequence[np.ndarray],
-    library: Any,
-    n_labels: int,
-) -> list[GramStats]:
-    """Per-label statistics of all runs: a map over runs, summed in run order on the client.
-
-    Parameters
-    ----------
-    engine : Engine
-    runs : sequence of RunBlock (or what ``engine.scatter`` returned for them)
-    labels : sequence of ndarray of int
-        Labels of each run's rows (``-1`` rows are skipped).
-    library : fitted TermLibrary
-    n_labels : int
-
-    Returns
-    -------
-    list of GramStats, length ``n_labels``
-    """
-    per_run = engine.map(
-        _run_stats,
-        list(zip(runs, [_compact(x) for x in labels], strict=True)),
-        library=library,
-        n_labels=n_labels,
-    )
-    totals = list(per_run[0])
-    for stats in per_run[1:]:
-        totals = [a + b for a, b in zip(totals, stats, strict=True)]
-    return totals
-
-
-class Decoded(NamedTuple):
-    """What :func:`decode_runs` returns for one run."""
-
-    path: np.ndarray
-    log_prob: float
-    current_log_prob: float
-
-
-def _run_decode(
-    item: tuple[RunBlock, np.ndarray | None],
-    *,
-    library: Any,
-    coefs: Sequence[np.ndarray],
-    covariances: np.ndarray,
-    log_start: np.ndarray,
-    log_trans: np.ndarray,
-    location: tuple[float, np.ndarray, np.ndarray] | None,
-) -> Decoded:
-    """Task: emission log-likelihood of one run, its Viterbi path, and the current path's score."""
-    from modemap.regimes.refine import location_density, path_log_prob, regime_log_likelihood
-    from modemap.regimes.viterbi import viterbi
-
-    block, current = item
-    log_em = regime_log_likelihood(library, block.Z, block.Y, coefs, covariances)
-    if location is not None:
-        weight, means, chols = location
-        log_em += weight * location_density(block.Z[:, : block.Y.shape[1]], means, chols)
-    path, log_prob = viterbi(log_em, log_start, log_trans)
-    score = float("nan")
-    if current is not None and current.size and current.min() >= 0:
-        lengths = np.array([current.size])
-        score = path_log_prob(log_em, current.astype(np.int64), lengths, log_start, log_trans)
-    return Decoded(_compact(path), float(log_prob), score)
-
-
-def decode_runs(
-    engine: Engine,
-    runs: Sequence[Any],
-    library: Any,
-    coefs: Sequence[np.ndarray],
-    covariances: np.ndarray,
-    log_start: np.ndarray,
-    log_trans: np.ndarray,
-    *,
-    current: Sequence[np.ndarray] | None = None,
-    location: tuple[float, np.ndarray, np.ndarray] | None = None,
-) -> tuple[list[np.ndarray], float, float]:
-    """Viterbi decoding of every run under per-regime residual models, a map over runs.
-
-    Parameters
-    ----------
-    engine : Engine
-    runs : sequence of RunBlock (or scattered handles)
-    library : fitted TermLibrary
-    coefs : sequence of ndarray of shape (p, m)
-        Coefficients of each regime.
-    covariances : ndarray of shape (K, m, m)
-        Residual covariance of each regime.
-    log_start, log_trans : ndarray
-        Markov chain of the regimes (see :func:`modemap.regimes.viterbi.viterbi`).
-    current : sequence of ndarray, optional
-        Current labels of each run; their joint log-probability is returned as well.
-    location : (weight, means (K, d), Cholesky factors (K, d, d)), optional
-        Adds ``weight`` times a Gaussian log-density of where the states sit.
-
-    Returns
-    -------
-    paths : list of ndarray of int64
-        Most probable regime sequence of each run.
-    log_prob : float
-        Sum over runs of the best joint log-probabilities.
-    current_log_prob : float
-        Sum over runs of the joint log-probability of ``current`` (NaN without it).
-    """
-    cur = [None] * len(runs) if current is None else [_compact(c) for c in current]
-    out = engine.map(
-        _run_decode,
-        list(zip(runs, cur, strict=True)),
-        library=library,
-        coefs=[np.asarray(c, dtype=np.float64) for c in coefs],
-        covariances=np.asarray(covariances, dtype=np.float64),
-        log_start=np.asarray(log_start, dtype=np.float64),
-        log_trans=np.asarray(log_trans, dtype=np.float64),
-        location=location,
-    )
-    paths = [d.path.astype(np.int64) for d in out]
-    log_prob = float(sum(d.log_prob for d in out))
-    current_log_prob = float(sum(d.current_log_prob for d in out))
-    return paths, log_prob, current_log_prob

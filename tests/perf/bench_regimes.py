@@ -2,7 +2,7 @@
 
 K = 3 regimes, 3 states, 10^6 samples; affine local models, and sparse models on the degree-2
 polynomial terms (the default); affine models again with the discrete form's fits on stretch
-interiors (``interior=True``: the last row of each stretch left out of the fits).  Reported as
+interiors (discrete form: the last row of each stretch left out of the fits).  Reported as
 ratios against floors measured in the same run, each time the shortest of three calls (the
 machine is shared):
 
@@ -20,8 +20,10 @@ import tracemalloc
 import numpy as np
 import pytest
 
+from modemap.fit.local_model import AffineLocalModel, BoundLocalModel, SparseLocalModel
 from modemap.fit.statistics import accumulate
-from modemap.regimes.refine import refine
+from modemap.regimes.refine import RefineSettings, refine
+from modemap.regimes.rows import Rows, RowWork
 from modemap.regimes.viterbi import viterbi
 from modemap.terms.library import TermLibrary
 
@@ -68,10 +70,14 @@ def test_refinement_speed_and_memory(model: str, degree: int, interior: bool) ->
     chain = np.zeros(K) - np.log(K), np.log(np.full((K, K), 1 / K))
     t_viterbi, _ = _best_of(3, lambda: viterbi(emissions, *chain))
 
+    spec = AffineLocalModel() if model == "affine" else SparseLocalModel()
+    form = "discrete" if interior else "continuous"  # discrete: fits on stretch interiors
+    local = BoundLocalModel(spec, library, ("a", "b", "c"), form)
+    work = RowWork(Rows.of(z, y, lengths))
+
     def run():
-        return refine(
-            z, y, lengths, start, library, n_regimes=K, model=model, max_iter=30, interior=interior
-        )
+        settings = RefineSettings(local=local, max_iter=30)
+        return refine(work, start, settings, n_regimes=K)
 
     elapsed, result = _best_of(3, run)
     # memory in a separate, traced run: tracemalloc slows every allocation, so it is not timed
@@ -99,7 +105,6 @@ def test_integral_refit_speed_and_memory() -> None:
     docs/performance.md)."""
     from modemap.fit.statistics import accumulate_by_label
     from modemap.regimes.integral import integral_refit
-    from modemap.regimes.refine import fit_regimes
 
     z, y, truth, _ = _data()
     library = TermLibrary(degree=2).fit(["a", "b", "c"])
@@ -107,13 +112,12 @@ def test_integral_refit_speed_and_memory() -> None:
     time_ = 0.01 * np.arange(N)
     floor, _ = _best_of(3, lambda: accumulate(library, z, y))
     stats = accumulate_by_label(library, z, y, truth, K)
-    fits = fit_regimes(stats, library.terms_, variables=library.variables_)
-
-    def select(s):
-        return fit_regimes([s], library.terms_, variables=library.variables_)[0]
+    local = BoundLocalModel(SparseLocalModel(), library, ("a", "b", "c"), "continuous")
+    fits = local.fit_all(stats)
 
     def run():
-        return integral_refit(library, z, M, time_, lengths, truth, fits, stats, select=select)
+        rows = Rows.of(z, y, lengths, time_)
+        return integral_refit(library, rows, truth, fits, stats, select=local.fit)
 
     elapsed, result = _best_of(3, run)
     tracemalloc.start()

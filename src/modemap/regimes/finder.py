@@ -2,9 +2,12 @@
 
 Pipeline inside :meth:`RegimeFinder.fit`:
 
-1. regression rows from the dataset (:func:`modemap.data.regression.prepare_regression`): variables
-   ``Z = [states, inputs]`` and targets ``Y`` (derivatives, or next states in discrete form);
-2. a term library (degree-1 for the affine model, ``degree`` otherwise, or the given ``terms``);
+1. regression rows from the dataset (:func:`modemap.data.regression.prepare_regression`):
+   variables ``Z = [states, inputs]`` and targets ``Y`` (derivatives, or next states in
+   discrete form);
+2. the local model bound to the data's variables and form
+   (:class:`~modemap.fit.local_model.LocalModel`): its candidate terms, without the inputs
+   that select the regime;
 3. for each number of regimes tried: sticky Gaussian HMM proposals (:mod:`.proposal`) on
    standardised features ``[states, increments or derivatives, inputs]`` and on the residuals
    of a single model fitted to all rows, each refined by the hard-EM switching regression
@@ -14,8 +17,13 @@ Pipeline inside :meth:`RegimeFinder.fit`:
    there, so the model returned is the one the selection table scored;
 5. continuous form: each regime's terms chosen and estimated again on the integral form over
    windows inside its stretches, with the measurement noise in the terms compensated
-   (:mod:`modemap.regimes.integral`; ``final_fit="derivative"`` keeps the fit on the derivatives);
+   (:mod:`.integral`; a local model with ``final_fit="derivative"`` keeps the fit on the
+   derivatives);
 6. hygiene and a stable order of ids (:mod:`.hygiene`), statistics (:mod:`.summary`).
+
+What one fit knows once the data are read (the bound local model, the refinement settings,
+the executor, the derivative settings) is a :class:`FitContext` handed to every step; the
+rows a step works on are a :class:`~modemap.regimes.rows.Rows`.
 
 Labels of samples that have no regression row (in discrete form, the last sample of each run,
 which has no successor) are copied from the preceding sample of the same run (from the
@@ -26,25 +34,26 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Sequence
-from typing import Any
+from dataclasses import dataclass, field
+from typing import Any, ClassVar
 
 import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator
 
 from modemap._exceptions import FitError
+from modemap._params import BOOLEAN, SEQUENCE_OF_STR, Interval, Options, check_params
 from modemap._progress import ProgressCallback, null_progress, scaled
 from modemap.data.dataset import Dataset
+from modemap.data.regression import FORMS, prepare_regression
+from modemap.engine import ENGINES, Engine, get_engine
+from modemap.fit.local_model import BoundLocalModel, LocalModel, SparseLocalModel
 from modemap.fit.statistics import accumulate
 from modemap.regimes.hygiene import default_min_samples, order_regimes
+from modemap.regimes.likelihood import regime_log_likelihood, residuals
 from modemap.regimes.proposal import propose
-from modemap.regimes.refine import (
-    RefineResult,
-    fit_regimes,
-    refine,
-    regime_log_likelihood,
-    residuals,
-)
+from modemap.regimes.refine import RefineResult, RefineSettings, refine
+from modemap.regimes.rows import Rows, RowWork
 from modemap.regimes.segments import segment_derivatives
 from modemap.regimes.selection import (
     count_parameters,
@@ -56,16 +65,52 @@ from modemap.regimes.summary import statistics
 from modemap.regimes.viterbi import viterbi_runs
 from modemap.regimes.windows import window_coefficients, window_lengths
 
-__all__ = ["RegimeFinder"]
+__all__ = ["FitContext", "RegimeFinder"]
 
-_FORMS = ("continuous", "discrete")
 _WINDOWS_PER_REGIME = 5  # the window proposal needs at least this many windows per regime
 _WINDOW = 5_000  # typical window length (rows) when K is chosen on part of a long record
-_MODELS = ("sparse", "affine")
-_FINAL_FITS = ("integral", "derivative")
 #: Sample intervals per window of the integral-form refit (measured on the reactor demo:
 #: 8 to 23 give the same spread of the high-branch coefficients, 40 a larger one).
 INTEGRAL_WINDOW = 16
+
+
+@dataclass
+class FitContext:
+    """What one :meth:`RegimeFinder.fit` knows once the data are read.
+
+    Attributes
+    ----------
+    local : BoundLocalModel
+        The local model with its library for these variables and this form.
+    settings : RefineSettings
+        How the refinement fits, scores and relabels.
+    engine : Engine
+        Where per-block work runs.
+    state_names : list of str
+    derivative : dict
+        Derivative settings actually used (continuous form).
+    notes : list of str
+        Notes gathered on the way (for ``notes_``).
+    """
+
+    local: BoundLocalModel
+    settings: RefineSettings
+    engine: Engine
+    state_names: list[str]
+    derivative: dict[str, Any]
+    notes: list[str] = field(default_factory=list)
+    _work: tuple[Any, Any, RowWork] | None = None
+
+    @property
+    def library(self) -> Any:
+        return self.local.library
+
+    def work(self, rows: Rows) -> RowWork:
+        """``rows`` bound to the engine, placed there once per set of rows."""
+        cached = self._work
+        if cached is None or cached[0] is not rows.Z or cached[1] is not rows.Y:
+            self._work = cached = (rows.Z, rows.Y, RowWork(rows, self.engine))
+        return cached[2]
 
 
 class RegimeFinder(BaseEstimator):
@@ -77,10 +122,9 @@ class RegimeFinder(BaseEstimator):
         Number of regimes; "auto" chooses 1..max_regimes by BIC.
     max_regimes : int, default 6
     form : {"continuous", "discrete"}, default "continuous"
-    model : {"sparse", "affine"}, default "sparse"
-    degree : int, default 2
-        Degree of the candidate monomials (sparse model).
-    threshold : "auto" or float, default "auto"
+    local_model : LocalModel or None, default None
+        Each regime's model (:mod:`modemap.fit.local_model`); None: a
+        :class:`~modemap.fit.local_model.SparseLocalModel` with its defaults.
     derivative : str, default "auto"
         Derivative method (continuous form).
     sticky : float, default 0.99
@@ -94,24 +138,23 @@ class RegimeFinder(BaseEstimator):
     min_dwell : int, default 1
         Stretches shorter than this (samples) take the neighbouring regime.
     seed : int, default 0
-    terms : sequence of str or None, default None
-        Explicit candidate terms (overrides ``degree`` and ``model``'s library).
-    custom : sequence of str, default ()
-        Extra candidate terms written in the term grammar (e.g. ``"C_A*exp(-8750/T)"``),
-        added to the polynomial library of the sparse model.
     location_weight : float, default 0.0
         Weight of the Gaussian term on where the state sits in the relabelling.
+    covariance : {"tied", "full"}, default "tied"
+        Residual covariance shared by all regimes, or one per regime.
+    switching_inputs : "auto", str, sequence of str or None, default "auto"
+        Inputs that select the regime rather than enter its equations; "auto": every
+        input with exactly two distinct values.
+    resegment : bool, default True
+        Continuous form: re-estimate derivatives within regime stretches and refine again.
+    engine : {"local", "dask"} or Engine, default "local"
+        Where per-run work runs (:mod:`modemap.engine`).
+    scheduler : str or None, default None
+        Dask scheduler address.
     selection_samples : int, default 200_000
         With ``n_regimes="auto"`` on longer data, K is chosen on about this many rows taken
         as contiguous windows spread over every run; the chosen models are then refined on
         all rows (a note says so).
-    covariance : {"tied", "full"}, default "tied"
-        Residual covariance shared by all regimes, or one per regime.
-    final_fit : {"integral", "derivative"}, default "integral"
-        Continuous form: once the labels are settled, choose each regime's terms (sparse
-        model) and estimate its coefficients again from the integral of the model over
-        windows of ``INTEGRAL_WINDOW`` sample intervals (:mod:`modemap.regimes.integral`), or keep
-        the fit on the derivative estimates.  Ignored in discrete form.
 
     Attributes
     ----------
@@ -125,6 +168,7 @@ class RegimeFinder(BaseEstimator):
         Shares, dwell times, switch counts (:func:`modemap.regimes.summary.statistics`).
     transmat_ : ndarray of shape (K, K)
     library_ : fitted TermLibrary
+    local_model_ : BoundLocalModel
     regression_ : RegressionData
     notes_ : list of str
     convergence_ : ConvergenceRecord of the final refinement
@@ -133,7 +177,29 @@ class RegimeFinder(BaseEstimator):
         Each regime's normal-equation statistics (what its local fit was computed from;
         with the integral final fit, the window statistics scaled to the effective number
         of windows, see :mod:`modemap.regimes.integral`).
+    switching_inputs_ : list of str
     """
+
+    _parameter_constraints: ClassVar[dict[str, list]] = {
+        "n_regimes": [Options(("auto",)), Interval(int, 1, None)],
+        "max_regimes": [Interval(int, 1, None)],
+        "form": [Options(FORMS)],
+        "local_model": [LocalModel, None],
+        "derivative": [str, dict],
+        "sticky": [Interval(float, 0, 1, closed="neither")],
+        "n_restarts": [Interval(int, 1, None)],
+        "max_iter": [Interval(int, 1, None)],
+        "min_samples": [Interval(int, 1, None), None],
+        "min_dwell": [Interval(int, 1, None)],
+        "seed": [Interval(int, 0, 2**32 - 1)],
+        "location_weight": [Interval(float, 0, None)],
+        "covariance": [Options(("tied", "full"))],
+        "switching_inputs": [str, SEQUENCE_OF_STR, None],
+        "resegment": [BOOLEAN],
+        "engine": [Options(ENGINES), Engine],
+        "scheduler": [str, None],
+        "selection_samples": [Interval(int, 1, None)],
+    }
 
     def __init__(
         self,
@@ -141,9 +207,7 @@ class RegimeFinder(BaseEstimator):
         n_regimes: str | int = "auto",
         max_regimes: int = 6,
         form: str = "continuous",
-        model: str = "sparse",
-        degree: int = 2,
-        threshold: str | float = "auto",
+        local_model: LocalModel | None = None,
         derivative: str = "auto",
         sticky: float = 0.99,
         n_restarts: int = 3,
@@ -151,26 +215,18 @@ class RegimeFinder(BaseEstimator):
         min_samples: int | None = None,
         min_dwell: int = 1,
         seed: int = 0,
-        terms: Sequence[str] | None = None,
-        custom: Sequence[str] = (),
         location_weight: float = 0.0,
         covariance: str = "tied",
         switching_inputs: str | Sequence[str] | None = "auto",
         resegment: bool = True,
-        final_fit: str = "integral",
         engine: Any = "local",
         scheduler: str | None = None,
         selection_samples: int = 200_000,
     ) -> None:
-        self.engine = engine
-        self.scheduler = scheduler
-        self.selection_samples = selection_samples
         self.n_regimes = n_regimes
         self.max_regimes = max_regimes
         self.form = form
-        self.model = model
-        self.degree = degree
-        self.threshold = threshold
+        self.local_model = local_model
         self.derivative = derivative
         self.sticky = sticky
         self.n_restarts = n_restarts
@@ -178,49 +234,16 @@ class RegimeFinder(BaseEstimator):
         self.min_samples = min_samples
         self.min_dwell = min_dwell
         self.seed = seed
-        self.terms = terms
-        self.custom = custom
         self.location_weight = location_weight
         self.covariance = covariance
         self.switching_inputs = switching_inputs
         self.resegment = resegment
-        self.final_fit = final_fit
+        self.engine = engine
+        self.scheduler = scheduler
+        self.selection_samples = selection_samples
 
-    # ------------------------------------------------------------------ checks
-    def _check_params(self) -> None:
-        if self.form not in _FORMS:
-            raise FitError(f"form must be one of {', '.join(_FORMS)}, got {self.form!r}")
-        if self.model not in _MODELS:
-            raise FitError(f"model must be one of {', '.join(_MODELS)}, got {self.model!r}")
-        k = self.n_regimes
-        if not (k == "auto" or (isinstance(k, int | np.integer) and not isinstance(k, bool))):
-            raise FitError(f"n_regimes must be 'auto' or an integer, got {k!r}")
-        if k != "auto" and k < 1:
-            raise FitError(f"n_regimes must be >= 1, got {k}")
-        if int(self.max_regimes) < 1:
-            raise FitError(f"max_regimes must be >= 1, got {self.max_regimes}")
-        if not 0.0 < float(self.sticky) < 1.0:
-            raise FitError(f"sticky must be between 0 and 1 (exclusive), got {self.sticky}")
-        if self.covariance not in ("tied", "full"):
-            raise FitError(f"covariance must be 'tied' or 'full', got {self.covariance!r}")
-        if int(self.min_dwell) < 1:
-            raise FitError(f"min_dwell must be >= 1, got {self.min_dwell}")
-        if self.final_fit not in _FINAL_FITS:
-            choices = ", ".join(_FINAL_FITS)
-            raise FitError(f"final_fit must be one of {choices}, got {self.final_fit!r}")
-
-    def _library(self, variables: Sequence[str], excluded: Sequence[str] = ()) -> Any:
-        from modemap.terms.library import TermLibrary
-
-        if self.terms is not None:
-            return TermLibrary.from_terms(list(self.terms), variables)
-        degree = 1 if self.model == "affine" else int(self.degree)
-        custom = () if self.model == "affine" else tuple(self.custom)
-        library = TermLibrary(degree=degree, custom=custom).fit(variables)
-        if not excluded:
-            return library
-        keep = [t for t in library.terms_ if not _uses(t, excluded)]
-        return TermLibrary.from_terms(keep, variables)
+    def _local_spec(self) -> LocalModel:
+        return SparseLocalModel() if self.local_model is None else self.local_model
 
     def _switching_inputs(self, ds: Dataset) -> list[str]:
         """Inputs that select the regime rather than enter its equations.
@@ -260,106 +283,109 @@ class RegimeFinder(BaseEstimator):
         -------
         self
         """
-        from modemap.engine import get_engine
-
-        self._check_params()
+        check_params(self)
         engine = get_engine(self.engine, self.scheduler)  # FitError on a bad name / no Dask
         try:
-            return self._fit(ds, progress, engine)
+            return self._fit(ds, progress or null_progress, engine)
         finally:
             if isinstance(self.engine, str):  # close only what this fit started or joined
                 engine.close()
-            self._engine, self._scattered = None, None
 
-    def _fit(self, ds: Dataset, progress: ProgressCallback | None, engine: Any) -> RegimeFinder:
-        from modemap.data.regression import prepare_regression
-
-        # the default local engine keeps the fast path: all rows at once, no map over runs
-        self._engine = None if engine.name == "local" else engine
-        self._scattered = None
-        progress = progress or null_progress
-        reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
+    def _context(self, ds: Dataset, reg: Any, engine: Engine) -> FitContext:
+        """The bound local model and the refinement settings for this data set."""
         self.switching_inputs_ = self._switching_inputs(ds)
-        library = self._library(ds.variable_names, self.switching_inputs_)
-        Z, Y = np.asarray(reg.Z, dtype=np.float64), np.asarray(reg.Y, dtype=np.float64)
-        lengths = np.asarray(reg.lengths, dtype=np.int64)
-        if Z.shape[0] < 2:
-            raise FitError(f"{ds.source}: too few samples to find regimes ({Z.shape[0]})")
-        self._min_samples = (
-            default_min_samples(library.n_terms_, ds.n_states)
-            if self.min_samples is None
-            else int(self.min_samples)
+        local = self._local_spec().bind(
+            ds.variable_names,
+            n_states=ds.n_states,
+            form=self.form,
+            exclude=self.switching_inputs_,
         )
-        self._library_fitted = library
-        self._selection_note = None
-        self._reg_time = reg.time
-        self._state_names = list(ds.state_names)
-        self._reg_lengths = lengths
-        self._derivative_settings = dict(reg.derivative or {})
-        integral = self.form == "continuous" and self.final_fit == "integral"
+        min_samples = self.min_samples
+        if min_samples is None:
+            min_samples = default_min_samples(len(local.terms), ds.n_states)
+        settings = RefineSettings(
+            local=local,
+            sticky=float(self.sticky),
+            location_weight=float(self.location_weight),
+            covariance=self.covariance,
+            min_samples=int(min_samples),
+            min_dwell=int(self.min_dwell),
+            max_iter=int(self.max_iter),
+        )
+        derivative = dict(reg.derivative or {})
+        return FitContext(local, settings, engine, list(ds.state_names), derivative)
+
+    def _fit(self, ds: Dataset, progress: ProgressCallback, engine: Engine) -> RegimeFinder:
+        reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
+        ctx = self._context(ds, reg, engine)
+        rows = Rows.of(reg.Z, reg.Y, reg.lengths, reg.time)
+        if rows.n_rows < 2:
+            raise FitError(f"{ds.source}: too few samples to find regimes ({rows.n_rows})")
+        integral = ctx.local.integral_final_fit
         overall, progress = progress, scaled(progress, 0.0, 0.95) if integral else progress
         if self.n_regimes == "auto":
-            kmax = max(1, min(int(self.max_regimes), Z.shape[0] // self._min_samples))
-            sub = self._selection_rows(lengths)
-            if sub is None:
-                table, results = select_regimes(
-                    self._fit_k, library, Z, Y, lengths, kmax, progress=scaled(progress, 0.0, 0.8)
-                )
-            else:
-                table, results = self._select_on_windows(
-                    library, Z, Y, reg.time, lengths, sub, kmax, scaled(progress, 0.0, 0.8)
-                )
-            k = int(table.loc[table["chosen"], "K"].iloc[0])
-            result = self._extend(
-                Z, Y, lengths, results[k], scaled(progress, 0.8, 0.9), all_rows=sub is not None
-            )
-            if result.n_regimes != results[k].n_regimes:  # lost a regime on all rows
-                fresh = self._fit_k(Z, Y, lengths, k, scaled(progress, 0.9, 1.0))
-                if fresh.n_regimes > result.n_regimes:
-                    result = fresh
+            result, table = self._choose(ctx, rows, progress)
         else:
-            result = self._fit_k(Z, Y, lengths, int(self.n_regimes), scaled(progress, 0.0, 1.0))
-            table = self._single_row(result, Y.shape[1], Z.shape[0])
-        if integral and result.labels.size == len(Z):
+            result = self._fit_k(ctx, rows, int(self.n_regimes), scaled(progress, 0.0, 1.0))
+            table = self._single_row(result, rows.n_states, rows.n_rows)
+        if integral and result.labels.size == rows.n_rows:
             overall(0.95, "estimating the coefficients again on the integral form")
-            result = self._integral_refit(Z, reg, library, result)
-        self._set_results(ds, reg, library, result, table)
+            result = self._integral_refit(ctx, rows, result)
+        self._set_results(ds, reg, ctx, result, table)
         overall(1.0, f"{self.n_regimes_} regime(s) found")
         return self
 
-    def _integral_refit(
-        self, Z: np.ndarray, reg: Any, library: Any, result: RefineResult
-    ) -> RefineResult:
+    def _choose(
+        self, ctx: FitContext, rows: Rows, progress: ProgressCallback
+    ) -> tuple[RefineResult, pd.DataFrame]:
+        """``n_regimes="auto"``: the selection table and the chosen K's fit on all rows."""
+        min_samples = ctx.settings.min_samples
+        kmax = max(1, min(int(self.max_regimes), rows.n_rows // min_samples))
+        sub = self._selection_rows(rows.lengths, min_samples)
+
+        def fit_k(part: Rows, k: int, step: ProgressCallback) -> RefineResult:
+            return self._fit_k(ctx, part, k, step)
+
+        chosen_rows = rows if sub is None else rows.subset(sub[0], sub[1])
+        table, results = select_regimes(
+            fit_k, ctx.library, chosen_rows, kmax, progress=scaled(progress, 0.0, 0.8)
+        )
+        if sub is not None:
+            ctx.notes.append(
+                f"number of regimes chosen on {int(sub[0].sum())} of {sub[0].size} samples "
+                f"({sub[1].size} contiguous windows); the chosen models were then refined on all"
+            )
+        k = int(table.loc[table["chosen"], "K"].iloc[0])
+        step = scaled(progress, 0.8, 0.9)
+        result = self._extend(ctx, rows, results[k], step, all_rows=sub is not None)
+        if result.n_regimes != results[k].n_regimes:  # lost a regime on all rows
+            fresh = self._fit_k(ctx, rows, k, scaled(progress, 0.9, 1.0))
+            if fresh.n_regimes > result.n_regimes:
+                result = fresh
+        return result, table
+
+    def _integral_refit(self, ctx: FitContext, rows: Rows, result: RefineResult) -> RefineResult:
         """The final fits and statistics re-estimated on the integral form (module notes)."""
         from modemap.regimes.integral import integral_refit
 
-        select = None
-        if self.model == "sparse":
-
-            def select(stats):
-                return fit_regimes(
-                    [stats], library.terms_, threshold=self.threshold, variables=library.variables_
-                )[0]
-
+        local = ctx.local
         done = integral_refit(
-            library,
-            Z,
-            np.asarray(reg.Y).shape[1],
-            np.asarray(reg.time),
-            np.asarray(reg.lengths),
+            local.library,
+            rows,
             result.labels,
             result.fits,
             result.stats,
             window=INTEGRAL_WINDOW,
-            select=select,
+            select=local.fit if local.spec.selects_terms else None,
         )
         notes = list(result.notes)
         if not done.compensated.all():  # ids as reported: ordered like _set_results does
-            _, order = order_regimes(result.labels, Z[:, 0], result.n_regimes)
-            states = list(self._state_names)
+            _, order = order_regimes(result.labels, rows.Z[:, 0], result.n_regimes)
             for new, old in enumerate(order):
                 if not done.compensated[old].all():
-                    names = ", ".join(states[j] for j in np.flatnonzero(~done.compensated[old]))
+                    names = ", ".join(
+                        ctx.state_names[j] for j in np.flatnonzero(~done.compensated[old])
+                    )
                     notes.append(
                         f"regime {new}: measurement noise too large against the signal to "
                         f"compensate in the integral-form fit of {names}; the plain integral "
@@ -368,12 +394,7 @@ class RegimeFinder(BaseEstimator):
         return dataclasses.replace(result, fits=done.fits, stats=done.stats, notes=notes)
 
     def _fit_k(
-        self,
-        Z: np.ndarray,
-        Y: np.ndarray,
-        lengths: np.ndarray,
-        k: int,
-        progress: ProgressCallback,
+        self, ctx: FitContext, rows: Rows, k: int, progress: ProgressCallback
     ) -> RefineResult:
         """Proposals then refinement for one number of regimes; the best likelihood wins.
 
@@ -385,12 +406,12 @@ class RegimeFinder(BaseEstimator):
         at least five windows per regime.
         """
         progress(0.0, f"proposing {k} regime(s)")
-        starts = [(self._features(Z, Y), lengths, None)]
+        starts = [(self._features(rows), rows.lengths, None)]
         if k > 1:
-            starts.append((self._global_residuals(Z, Y), lengths, None))
-            per_run, sizes = window_lengths(lengths, self._window())
+            starts.append((self._global_residuals(ctx, rows), rows.lengths, None))
+            per_run, sizes = window_lengths(rows.lengths, self._window(ctx))
             if sizes.size >= _WINDOWS_PER_REGIME * k:  # enough windows to tell K groups apart
-                coef = window_coefficients(self._library_fitted, Z, Y, sizes)
+                coef = window_coefficients(ctx.library, rows.Z, rows.Y, sizes)
                 starts.append((coef, per_run, sizes))
         best = None
         for i, (features, runs, sizes) in enumerate(starts):
@@ -405,18 +426,17 @@ class RegimeFinder(BaseEstimator):
             if sizes is not None:  # one label per window -> one per row
                 labels = np.repeat(labels, sizes)
             step = scaled(progress, i / len(starts), (i + 1) / len(starts))
-            result = self._refine(Z, Y, lengths, labels, k, step)
+            result = self._refine(ctx, rows, labels, k, step)
             if best is None or result.loglik > best.loglik:
                 best = result
         if self.form == "continuous" and self.resegment and best.n_regimes > 1:
-            best = self._resegment(Z, Y, lengths, best, progress)
+            best = self._resegment(ctx, rows, best, progress)
         return best
 
     def _extend(
         self,
-        Z: np.ndarray,
-        Y: np.ndarray,
-        lengths: np.ndarray,
+        ctx: FitContext,
+        rows: Rows,
         chosen: RefineResult,
         progress: ProgressCallback,
         *,
@@ -425,7 +445,7 @@ class RegimeFinder(BaseEstimator):
         """Refit the chosen labelling of the training part on all rows.
 
         With ``all_rows`` (K was chosen on windows of the data, see
-        :meth:`_select_on_windows`) every row is decoded with the chosen models first.
+        :meth:`_selection_rows`) every row is decoded with the chosen models first.
 
         The held-out tails are decoded by Viterbi with the chosen models and chain, and
         the refinement on all rows starts from those labels.  A fresh proposal with the
@@ -434,42 +454,30 @@ class RegimeFinder(BaseEstimator):
         this refit still loses a regime (hygiene on all rows), :meth:`fit` also tries
         a fresh fit of the chosen K and keeps the one with more regimes.
         """
+        coefs = [np.asarray(f.coef) for f in chosen.fits]
         if all_rows:  # K was chosen on windows: decode every row with the chosen models
-            log_em = regime_log_likelihood(
-                self._library_fitted,
-                Z,
-                Y,
-                [np.asarray(f.coef) for f in chosen.fits],
-                chosen.covariances,
-            )
-            labels, _ = viterbi_runs(log_em, lengths, chosen.log_start, chosen.log_trans)
-            held = np.zeros(Z.shape[0], dtype=bool)
+            log_em = regime_log_likelihood(ctx.library, rows.Z, rows.Y, coefs, chosen.covariances)
+            labels, _ = viterbi_runs(log_em, rows.lengths, chosen.log_start, chosen.log_trans)
+            held = np.zeros(rows.n_rows, dtype=bool)
         else:
-            held = holdout_split(lengths)
-            labels = np.empty(Z.shape[0], dtype=np.int64)
+            held = holdout_split(rows.lengths)
+            labels = np.empty(rows.n_rows, dtype=np.int64)
             labels[~held] = chosen.labels
         if held.any():
-            runs = np.repeat(np.arange(lengths.size), lengths)[held]
-            tail_len = np.bincount(runs, minlength=lengths.size)
-            log_em = regime_log_likelihood(
-                self._library_fitted,
-                Z[held],
-                Y[held],
-                [np.asarray(f.coef) for f in chosen.fits],
-                chosen.covariances,
-            )
-            tails, _ = viterbi_runs(
-                log_em, tail_len[tail_len > 0], chosen.log_start, chosen.log_trans
-            )
-            labels[held] = tails
+            tails = rows.subset(held)
+            log_em = regime_log_likelihood(ctx.library, tails.Z, tails.Y, coefs, chosen.covariances)
+            path, _ = viterbi_runs(log_em, tails.lengths, chosen.log_start, chosen.log_trans)
+            labels[held] = path
         k = chosen.n_regimes
         # labels decoded on every row come from settled models: no dense settling phase
-        result = self._refine(Z, Y, lengths, labels, k, progress, settle_dense=not all_rows)
+        result = self._refine(ctx, rows, labels, k, progress, settle_dense=not all_rows)
         if self.form == "continuous" and self.resegment and result.n_regimes > 1:
-            result = self._resegment(Z, Y, lengths, result, progress)
+            result = self._resegment(ctx, rows, result, progress)
         return result
 
-    def _selection_rows(self, lengths: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    def _selection_rows(
+        self, lengths: np.ndarray, min_samples: int
+    ) -> tuple[np.ndarray, np.ndarray] | None:
         """Rows on which K is chosen when the data are long: None when all rows are used.
 
         Above ``selection_samples`` rows, about that many rows are taken as contiguous
@@ -482,7 +490,7 @@ class RegimeFinder(BaseEstimator):
         if n <= cap:
             return None
         n_windows = max(lengths.size, cap // _WINDOW)
-        width = max(cap // n_windows, 2 * self._min_samples)
+        width = max(cap // n_windows, 2 * min_samples)
         mask = np.zeros(n, dtype=bool)
         sizes = []
         offset = 0
@@ -500,54 +508,24 @@ class RegimeFinder(BaseEstimator):
             offset += length
         return mask, np.asarray(sizes, dtype=np.int64)
 
-    def _select_on_windows(self, library, Z, Y, time, lengths, sub, kmax, progress):
-        """:func:`select_regimes` on the selection windows (see :meth:`_selection_rows`)."""
-        mask, sizes = sub
-        self._reg_time, self._reg_lengths = time[mask], sizes
-        try:
-            out = select_regimes(
-                self._fit_k, library, Z[mask], Y[mask], sizes, kmax, progress=progress
-            )
-        finally:
-            self._reg_time, self._reg_lengths = time, lengths
-        self._selection_note = (
-            f"number of regimes chosen on {int(mask.sum())} of {mask.size} samples "
-            f"({sizes.size} contiguous windows); the chosen models were then refined on all"
-        )
-        return out
-
     def _resegment(
-        self,
-        Z: np.ndarray,
-        Y: np.ndarray,
-        lengths: np.ndarray,
-        result: RefineResult,
-        progress: ProgressCallback,
+        self, ctx: FitContext, rows: Rows, result: RefineResult, progress: ProgressCallback
     ) -> RefineResult:
         """Re-estimate derivatives within regime stretches and refine again (twice at most).
 
         See :mod:`modemap.regimes.segments`.  The targets used by the final refinement are
         kept in ``result.targets`` so that the fitted models and the likelihood agree.
         """
-        time = self._row_time(Z.shape[0])
         for _ in range(2):
-            y2 = self._segment(time, Z, Y, lengths, result.labels, self._derivative_settings)
-            new = self._refine(Z, y2, lengths, result.labels, result.n_regimes, progress)
+            y2 = _segment(rows, result.labels, ctx.derivative)
+            k = result.n_regimes
+            new = self._refine(ctx, rows.with_targets(y2), result.labels, k, progress)
             new.targets = y2
             unchanged = np.array_equal(new.labels, result.labels)
             result = new
             if unchanged:
                 break
         return result
-
-    def _segment(self, time, Z, Y, lengths, labels, settings) -> np.ndarray:
-        """Derivatives re-estimated within stretches of constant label and stepped inputs."""
-        m = Y.shape[1]
-        # every stepped input cuts, those that select the regime too: the labels cut there
-        # only once they are right, and a sample left on the wrong side of a step keeps a
-        # derivative that agrees with its wrong label
-        stepped = Z[:, m:] if Z.shape[1] > m else None
-        return segment_derivatives(time, Z[:, :m], Y, lengths, labels, settings, stepped)
 
     def segment_targets(self, reg: Any, labels: np.ndarray) -> np.ndarray:
         """Derivative targets of ``reg`` re-estimated within the stretches of ``labels``.
@@ -559,7 +537,8 @@ class RegimeFinder(BaseEstimator):
         Parameters
         ----------
         reg : RegressionData
-            Rows from :func:`modemap.data.regression.prepare_regression` with this finder's form.
+            Rows from :func:`modemap.data.regression.prepare_regression` with this
+            finder's form.
         labels : ndarray of shape (n_rows,)
             Regime of each row.
 
@@ -570,82 +549,38 @@ class RegimeFinder(BaseEstimator):
         Y = np.asarray(reg.Y, dtype=np.float64)
         if self.form != "continuous":
             return Y
-        return self._segment(
-            np.asarray(reg.time),
-            np.asarray(reg.Z, dtype=np.float64),
-            Y,
-            np.asarray(reg.lengths),
-            np.asarray(labels),
-            dict(reg.derivative or {}),
-        )
+        rows = Rows.of(reg.Z, Y, reg.lengths, reg.time)
+        return _segment(rows, np.asarray(labels), dict(reg.derivative or {}))
 
-    def _row_time(self, n: int) -> np.ndarray:
-        """Time stamps of the rows given to ``_fit_k`` (all rows, or the selection's part)."""
-        time = np.asarray(self._reg_time)
-        if n == time.size:
-            return time
-        held = holdout_split(self._reg_lengths)
-        if n == int((~held).sum()):
-            return time[~held]
-        raise FitError("internal: rows given to the regime fit do not match the data")
+    def _refine(
+        self,
+        ctx: FitContext,
+        rows: Rows,
+        labels: np.ndarray,
+        k: int,
+        progress: ProgressCallback,
+        settle_dense: bool = True,
+    ) -> RefineResult:
+        settings = dataclasses.replace(ctx.settings, settle_dense=settle_dense)
+        work = ctx.work(rows)
+        return refine(work, labels, settings, n_regimes=k, progress=progress)
 
-    def _refine(self, Z, Y, lengths, labels, k, progress, settle_dense=True) -> RefineResult:
-        return refine(
-            Z,
-            Y,
-            lengths,
-            labels,
-            self._library_fitted,
-            n_regimes=k,
-            model=self.model,
-            threshold=self.threshold,
-            sticky=float(self.sticky),
-            location_weight=float(self.location_weight),
-            covariance=self.covariance,
-            min_samples=self._min_samples,
-            min_dwell=int(self.min_dwell),
-            max_iter=int(self.max_iter),
-            settle_dense=settle_dense,
-            increments=self.form == "discrete",
-            interior=self.form == "discrete",
-            progress=progress,
-            engine=self._engine,
-            runs=self._runs(Z, Y, lengths),
-        )
-
-    def _runs(self, Z: np.ndarray, Y: np.ndarray, lengths: np.ndarray) -> Any:
-        """Runs placed on the engine's workers once per set of rows (None on the local path)."""
-        if self._engine is None:
-            return None
-        from modemap.engine import split_runs
-
-        cached = self._scattered
-        if cached is None or cached[0] is not Z or cached[1] is not Y:
-            self._scattered = cached = (Z, Y, self._engine.scatter(split_runs(Z, Y, lengths)))
-        return cached[2]
-
-    def _window(self) -> int:
+    @staticmethod
+    def _window(ctx: FitContext) -> int:
         """Rows per window of the local-model proposal: four per term, at least 12."""
-        return max(12, 4 * int(self._library_fitted.n_terms_))
+        return max(12, 4 * len(ctx.local.terms))
 
-    def _global_residuals(self, Z: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    @staticmethod
+    def _global_residuals(ctx: FitContext, rows: Rows) -> np.ndarray:
         """Residuals of a single model fitted to all rows (a dynamics-aware feature)."""
-        stats = accumulate(self._library_fitted, Z, Y)
-        fit = fit_regimes(
-            [stats],
-            self._library_fitted.terms_,
-            model=self.model,
-            threshold=self.threshold,
-            variables=self._library_fitted.variables_,
-            increments=self.form == "discrete",
-        )[0]
-        return residuals(self._library_fitted, Z, Y, np.asarray(fit.coef))
+        fit = ctx.local.fit(accumulate(ctx.library, rows.Z, rows.Y))
+        return residuals(ctx.library, rows.Z, rows.Y, np.asarray(fit.coef))
 
-    def _features(self, Z: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    def _features(self, rows: Rows) -> np.ndarray:
         """``[states, increments (discrete) or derivatives (continuous), inputs]``."""
-        m = Y.shape[1]
-        x, u = Z[:, :m], Z[:, m:]
-        motion = Y - x if self.form == "discrete" else Y
+        m = rows.n_states
+        x, u = rows.Z[:, :m], rows.Z[:, m:]
+        motion = rows.Y - x if self.form == "discrete" else rows.Y
         return np.hstack([x, motion, u])
 
     # ----------------------------------------------------------------- predict
@@ -664,8 +599,6 @@ class RegimeFinder(BaseEstimator):
             One label array per run of ``ds``.
         """
         from sklearn.utils.validation import check_is_fitted
-
-        from modemap.data.regression import prepare_regression
 
         check_is_fitted(self, "local_fits_")
         fitted = tuple(self.library_.variables_)
@@ -709,7 +642,7 @@ class RegimeFinder(BaseEstimator):
         return pd.DataFrame([row])
 
     def _set_results(
-        self, ds: Dataset, reg: Any, library: Any, result: RefineResult, table: pd.DataFrame
+        self, ds: Dataset, reg: Any, ctx: FitContext, result: RefineResult, table: pd.DataFrame
     ) -> None:
         k = result.n_regimes
         labels, order = order_regimes(result.labels, np.asarray(reg.Z)[:, 0], k)
@@ -724,14 +657,13 @@ class RegimeFinder(BaseEstimator):
         self.selection_ = table
         self.statistics_ = statistics(full, k, float(ds.step) if np.isfinite(ds.step) else 1.0)
         self.transmat_ = trans / trans.sum(axis=1, keepdims=True)
-        self.library_ = library
+        self.library_ = ctx.library
+        self.local_model_ = ctx.local
         if result.targets is not None and result.targets.shape == np.shape(reg.Y):
             reg = dataclasses.replace(reg, Y=result.targets)
         self.regression_ = reg
         self.convergence_ = result.monitor
-        self.notes_ = list(result.notes)
-        if getattr(self, "_selection_note", None):
-            self.notes_.append(self._selection_note)
+        self.notes_ = list(result.notes) + list(ctx.notes)
         if not result.monitor.converged:
             self.notes_.append(
                 f"refinement stopped after {result.monitor.iterations} iterations "
@@ -739,12 +671,16 @@ class RegimeFinder(BaseEstimator):
             )
 
 
-def _uses(term: str, names: Sequence[str]) -> bool:
-    """True when the canonical term string mentions one of ``names``."""
-    import re
-
-    tokens = set(re.findall(r"[A-Za-z_][A-Za-z0-9_]*", term))
-    return any(n in tokens for n in names)
+def _segment(rows: Rows, labels: np.ndarray, settings: dict[str, Any]) -> np.ndarray:
+    """Derivatives re-estimated within stretches of constant label and stepped inputs."""
+    m = rows.n_states
+    # every stepped input cuts, those that select the regime too: the labels cut there
+    # only once they are right, and a sample left on the wrong side of a step keeps a
+    # derivative that agrees with its wrong label
+    stepped = rows.Z[:, m:] if rows.Z.shape[1] > m else None
+    return segment_derivatives(
+        rows.time, rows.Z[:, :m], rows.Y, rows.lengths, labels, settings, stepped
+    )
 
 
 def _labels_per_sample(labels: np.ndarray, sample_index: np.ndarray, ds: Dataset) -> list:

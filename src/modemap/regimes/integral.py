@@ -63,6 +63,7 @@ from modemap.data.derivatives import estimate_noise
 from modemap.fit.sparse import LocalFit
 from modemap.fit.statistics import GramStats
 from modemap.fit.uncertainty import standard_errors
+from modemap.regimes.rows import Rows
 from modemap.regimes.segments import stepped_columns
 
 __all__ = ["IntegralRefit", "integral_refit", "right_ends", "window_bounds"]
@@ -306,10 +307,7 @@ def _end_correction(theta: np.ndarray, dt: np.ndarray, at: np.ndarray) -> np.nda
 
 def integral_refit(
     library: Any,
-    Z: np.ndarray,
-    n_states: int,
-    time: np.ndarray,
-    lengths: Sequence[int],
+    rows: Rows,
     labels: np.ndarray,
     fits: Sequence[LocalFit],
     derivative_stats: Sequence[GramStats],
@@ -326,12 +324,9 @@ def integral_refit(
     ----------
     library : fitted TermLibrary
         The terms of ``fits`` (same order).
-    Z : ndarray of shape (n, n_vars)
-        States then inputs of every sample, runs one after another.
-    n_states : int
-    time : ndarray of shape (n,)
-    lengths : sequence of int
-        Samples per run.
+    rows : Rows
+        Every sample's variables (states then inputs), time and run lengths; the targets
+        give the number of states only.
     labels : ndarray of int, shape (n,)
         Regime of every sample (negative: unassigned, left out).
     fits : sequence of LocalFit
@@ -353,8 +348,8 @@ def integral_refit(
     -------
     IntegralRefit
     """
-    Z = np.asarray(Z, dtype=np.float64)
-    time = np.asarray(time, dtype=np.float64)
+    Z, n_states, lengths = rows.Z, rows.n_states, rows.lengths
+    time = np.asarray(rows.time, dtype=np.float64)
     labels = np.asarray(labels, dtype=np.int64)
     k, p = len(fits), library.n_terms_
     if int(window) < 1:
@@ -372,7 +367,8 @@ def integral_refit(
             stats[g] = stats[g] + GramStats.from_arrays(X[rows], Y[rows])
         if np.any(noise_var > 0):
             _, _, s, e = windows.bounds(i, j)
-            _add_noise_bias(windows, lo, hi, s, e, labels[lo:hi], noise_var, bias, bias_cross)
+            acc = (bias, bias_cross)
+            _add_noise_bias(windows, (lo, hi), s, e, labels[lo:hi], noise_var, acc)
     fits = list(fits)
     solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
     spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
@@ -402,14 +398,12 @@ def integral_refit(
 
 def _add_noise_bias(
     windows: _Windows,
-    lo: int,
-    hi: int,
+    span: tuple[int, int],
     s: np.ndarray,
     e: np.ndarray,
     labels: np.ndarray,
     noise_var: np.ndarray,
-    bias: np.ndarray,
-    bias_cross: np.ndarray,
+    acc: tuple[np.ndarray, np.ndarray],
 ) -> None:
     """Expected noise products of the windows ``s, e`` (offsets from ``lo``), per regime.
 
@@ -418,8 +412,10 @@ def _add_noise_bias(
     interval ``i`` (left end: ``B_i = dt_i/2`` times the partials at sample ``i``).  A
     window's noise is ``B_s eps_s + sum (A_i + B_i) eps_i + A_e eps_e`` over its interior,
     and its target's noise ``eps_e - eps_s``.  Every window lies in one stretch, so all of
-    a sample's roles belong to its own regime.
+    a sample's roles belong to its own regime.  ``span`` is the rows ``lo, hi`` of the
+    chunk; the products are added to ``acc = (bias, bias_cross)``, (K, p, p) and (K, p, m).
     """
+    (lo, hi), (bias, bias_cross) = span, acc
     m, n = noise_var.size, hi - lo
 
     def partials(z: np.ndarray) -> np.ndarray:

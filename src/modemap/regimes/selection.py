@@ -35,18 +35,16 @@ import pandas as pd
 
 from modemap._exceptions import FitCancelled, FitError
 from modemap._progress import ProgressCallback, null_progress, scaled
-from modemap.regimes.refine import (
-    RefineResult,
-    predict_by_label,
-    regime_log_likelihood,
-)
+from modemap.regimes.likelihood import predict_by_label, regime_log_likelihood
+from modemap.regimes.refine import RefineResult
+from modemap.regimes.rows import Rows
 from modemap.regimes.viterbi import viterbi_runs
 
 __all__ = ["count_parameters", "holdout_split", "information_criterion", "select_regimes"]
 
 HOLDOUT_FRACTION = 0.2
 
-FitK = Callable[[np.ndarray, np.ndarray, np.ndarray, int, ProgressCallback], RefineResult]
+FitK = Callable[[Rows, int, ProgressCallback], RefineResult]
 
 
 def count_parameters(result: RefineResult, n_targets: int) -> int:
@@ -76,20 +74,12 @@ def holdout_split(lengths: np.ndarray, fraction: float = HOLDOUT_FRACTION) -> np
     return mask
 
 
-def _run_lengths(lengths: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    """Per-run counts of the rows selected by ``mask`` (zero-length runs dropped)."""
-    runs = np.repeat(np.arange(lengths.size), lengths)
-    counts = np.bincount(runs[mask], minlength=lengths.size)
-    return counts[counts > 0]
-
-
-def holdout_error(
-    result: RefineResult, library: Any, Z: np.ndarray, Y: np.ndarray, lengths: np.ndarray
-) -> float:
+def holdout_error(result: RefineResult, library: Any, rows: Rows) -> float:
     """Normalised RMS one-step error on held-out rows decoded with the trained models."""
     coefs = [f.coef for f in result.fits]
+    Z, Y = rows.Z, rows.Y
     log_em = regime_log_likelihood(library, Z, Y, coefs, result.covariances)
-    labels, _ = viterbi_runs(log_em, lengths, result.log_start, result.log_trans)
+    labels, _ = viterbi_runs(log_em, rows.lengths, result.log_start, result.log_trans)
     sse = predict_by_label(library, Z, Y, coefs, labels)
     scale = Y.var(axis=0)
     scale[~(scale > 0)] = 1.0
@@ -99,9 +89,7 @@ def holdout_error(
 def select_regimes(
     fit_k: FitK,
     library: Any,
-    Z: np.ndarray,
-    Y: np.ndarray,
-    lengths: np.ndarray,
+    rows: Rows,
     max_regimes: int,
     *,
     progress: ProgressCallback | None = None,
@@ -111,11 +99,10 @@ def select_regimes(
     Parameters
     ----------
     fit_k : callable
-        ``fit_k(Z, Y, lengths, K, progress) -> RefineResult`` (proposal + refinement).
+        ``fit_k(rows, K, progress) -> RefineResult`` (proposal + refinement).
     library : fitted TermLibrary
-    Z, Y : ndarray
-        Variables and targets, all runs stacked.
-    lengths : ndarray of int
+    rows : Rows
+        Variables, targets, run lengths and times of all runs.
     max_regimes : int
     progress : callable, optional
 
@@ -128,36 +115,33 @@ def select_regimes(
         K -> RefineResult on the training part.
     """
     progress = progress or null_progress
-    held = holdout_split(lengths)
-    train_len, test_len = _run_lengths(lengths, ~held), _run_lengths(lengths, held)
-    zt, yt, zh, yh = Z[~held], Y[~held], Z[held], Y[held]
-    rows, results = [], {}
+    held = holdout_split(rows.lengths)
+    train, test = rows.subset(~held), rows.subset(held)
+    table_rows, results = [], {}
     for k in range(1, max_regimes + 1):
         progress((k - 1) / max_regimes, f"trying {k} regime(s)")
         try:
-            res = fit_k(
-                zt, yt, train_len, k, scaled(progress, (k - 1) / max_regimes, k / max_regimes)
-            )
+            res = fit_k(train, k, scaled(progress, (k - 1) / max_regimes, k / max_regimes))
         except FitCancelled:
             raise
         except FitError:  # e.g. no regime left with enough samples: stop adding regimes
             break
-        n_params = count_parameters(res, Y.shape[1])
-        rmse = holdout_error(res, library, zh, yh, test_len) if zh.shape[0] else float("nan")
-        rows.append(
+        n_params = count_parameters(res, rows.n_states)
+        rmse = holdout_error(res, library, test) if test.n_rows else float("nan")
+        table_rows.append(
             {
                 "K": k,
                 "n_regimes": res.n_regimes,
                 "loglik": res.loglik,
                 "n_params": n_params,
-                "bic": information_criterion(res.loglik, n_params, zt.shape[0]),
+                "bic": information_criterion(res.loglik, n_params, train.n_rows),
                 "holdout_rmse": rmse,
             }
         )
         results[k] = res
-    if not rows:
+    if not table_rows:
         raise FitError("no number of regimes could be fitted")
-    table = pd.DataFrame(rows)
+    table = pd.DataFrame(table_rows)
     table["chosen"] = False
     bic = table["bic"].to_numpy()
     # the smaller K on a tie, round-off included (1e-9 of the criterion's size): two K that
