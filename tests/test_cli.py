@@ -245,12 +245,9 @@ def test_module_entry_point(write_file):
 
 
 def test_bench_workdir_that_cannot_be_a_folder_is_a_one_line_error(tmp_path, capsys):
-    # `python -m modemap.app.bench` goes through the same handler as `modemap bench`
-    from modemap.app.bench import main as bench_main
-
     blocker = tmp_path / "afile"
     blocker.write_text("not a folder\n", encoding="utf-8")
-    argv = ["--workdir", str(blocker / "sub"), "--sizes", "2000", "--skip-markov"]
-    assert bench_main(argv) == 2
+    argv = ["bench", "--workdir", str(blocker / "sub"), "--sizes", "2000", "--skip-markov"]
+    assert cli.main(argv) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "Not a directory" in err and "Traceback" not in err

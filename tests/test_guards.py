@@ -9,8 +9,9 @@ import pytest
 from sklearn.base import clone
 from sklearn.linear_model import LogisticRegression
 
-from modemap import FitError
-from modemap.model.guards import SwitchingSurfaces, guard_text, place_equilibria, predict_labels
+from modemap import FitError, ParameterError
+from modemap.model.equilibria import place_equilibria
+from modemap.model.guards import SwitchingSurfaces, guard_text, predict_labels
 from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
 from modemap.simulation.simulator import simulate
 
@@ -174,7 +175,7 @@ def test_degenerate_cases():
     assert surf.guards_[0].text == "switch 0 -> 1 when x > 0.50"
     with pytest.raises(FitError, match="lengths sum"):
         SwitchingSurfaces().fit(Z, labels, [40], ["x"])
-    with pytest.raises(FitError, match="kind"):
+    with pytest.raises(ParameterError, match="kind"):
         SwitchingSurfaces(kind="other").fit(Z, labels, [50], ["x"])
 
 

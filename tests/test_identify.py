@@ -7,7 +7,8 @@ import pytest
 from sklearn.base import clone
 
 import modemap
-from modemap.identify.identifier import HybridIdentifier, labels_frame
+from modemap.identify import HybridIdentifier, labels_frame
+from modemap.regimes import RegimeFinder
 from relay_data import relay_frame
 
 
@@ -15,7 +16,7 @@ from relay_data import relay_frame
 def relay():
     frame = relay_frame()
     ds = modemap.read_data(frame, time="t", states=["x"], run="run")
-    return frame, ds, HybridIdentifier(seed=0).fit(ds)
+    return frame, ds, HybridIdentifier().fit(ds)
 
 
 def test_relay_oscillator_is_recovered(relay) -> None:
@@ -68,10 +69,20 @@ def test_labels_frame_has_one_row_per_input_row_in_order(relay) -> None:
 
 
 def test_estimator_conventions() -> None:
-    est = HybridIdentifier(n_regimes=2, degree=1, seed=3)
+    est = HybridIdentifier.from_options(n_regimes=2, degree=1, seed=3)
     twin = clone(est)
-    assert twin.get_params() == est.get_params()
+
+    def settings(e):  # every nested setting that is a value (sub-estimators are new copies)
+        return {k: v for k, v in e.get_params(deep=True).items() if not hasattr(v, "get_params")}
+
+    assert settings(twin) == settings(est) and repr(twin) == repr(est)
+    assert twin.regimes is not est.regimes
     assert not hasattr(twin, "model_")
+    # scikit-learn's nested parameters reach every stage's settings (sklearn.base)
+    deep = est.get_params(deep=True)
+    assert deep["regimes__local_model__degree"] == 1 and deep["guards__seed"] == 3
+    est.set_params(regimes__sticky=0.995, regimes__local_model__threshold=0.05)
+    assert est.regimes.sticky == 0.995 and est.regimes.local_model.threshold == 0.05
 
 
 @pytest.mark.parametrize(
@@ -85,14 +96,14 @@ def test_estimator_conventions() -> None:
 )
 def test_bad_parameters_are_reported_at_fit(relay, params, message) -> None:
     _, ds, _ = relay
-    with pytest.raises(modemap.FitError, match=message):
-        HybridIdentifier(**params).fit(ds)
+    with pytest.raises(modemap.ParameterError, match=message):
+        HybridIdentifier.from_options(**params).fit(ds)
 
 
 def test_single_run_holds_out_its_tail() -> None:
     frame = relay_frame(n_runs=1, duration=30.0)
     ds = modemap.read_data(frame, time="t", states=["x"], run="run")
-    ident = HybridIdentifier(n_regimes=2, seed=0).fit(ds)
+    ident = HybridIdentifier(regimes=RegimeFinder(n_regimes=2)).fit(ds)
     assert ident.model_.validation["holdout"] == "tails"
     assert len(ident.labels_) == len(frame)
     assert (ident.labels_["regime"] >= 0).all()

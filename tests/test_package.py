@@ -6,11 +6,12 @@ import sys
 import modemap
 
 EXPECTED = {
-    "DataError", "Dataset", "Equilibrium", "ExpressionError", "FitCancelled", "FitError", "Gap",
-    "Guard", "HybridIdentifier", "HybridModel", "LocalDynamics", "ModelFileError",
-    "ModemapError", "RegimeFinder", "RegimeModel", "Run", "SimulationError", "SimulationResult",
-    "SwitchingSurfaces", "TermLibrary", "__version__", "load_model", "read_data", "save_model",
-    "simulate", "split_holdout", "summarize", "validate",
+    "AffineLocalModel", "DataError", "Dataset", "Equilibrium", "ExpressionError", "FitCancelled",
+    "FitError", "Gap", "Guard", "HybridIdentifier", "HybridModel", "LocalDynamics", "LocalModel",
+    "ModelFileError", "ModemapError", "ParameterError", "RegimeFinder", "RegimeModel", "Run",
+    "SimulationError", "SimulationResult", "SparseLocalModel", "SwitchingSurfaces", "TermLibrary",
+    "__version__", "load_model", "read_data", "save_model", "simulate", "split_holdout",
+    "summarize", "validate",
 }  # fmt: skip
 
 
@@ -33,5 +34,6 @@ def test_library_imports_without_the_dashboard_toolkit() -> None:
 
 def test_every_user_error_is_a_modemap_error() -> None:
     for cls in (modemap.DataError, modemap.ExpressionError, modemap.ModelFileError,
-                modemap.FitError, modemap.FitCancelled, modemap.SimulationError):  # fmt: skip
+                modemap.FitError, modemap.FitCancelled, modemap.SimulationError,
+                modemap.ParameterError):  # fmt: skip
         assert issubclass(cls, modemap.ModemapError)

@@ -10,8 +10,10 @@ from sklearn.metrics import mean_squared_error, r2_score
 
 from modemap import DataError
 from modemap.data.dataset import Dataset, Run
+from modemap.data.split import split_holdout
 from modemap.model.hybrid import Guard, HybridModel, RegimeModel
-from modemap.simulation.validation import match_switches, one_step_quality, split_holdout, validate
+from modemap.model.switches import match_switches
+from modemap.simulation.validation import one_step_quality, validate
 
 
 def regime(rid: int, terms: list[str], coef) -> RegimeModel:

@@ -9,6 +9,7 @@ from modemap._exceptions import (
     FitError,
     ModelFileError,
     ModemapError,
+    ParameterError,
     SimulationError,
 )
 from modemap._version import __version__
@@ -19,7 +20,10 @@ from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
 # The estimators pull in scikit-learn, SciPy and hmmlearn: load them on first use so that
 # `modemap check` and `import modemap` stay quick (PEP 562 module __getattr__).
 _LAZY = {
-    "HybridIdentifier": "modemap.identify.identifier",
+    "AffineLocalModel": "modemap.fit.local_model",
+    "HybridIdentifier": "modemap.identify",
+    "LocalModel": "modemap.fit.local_model",
+    "SparseLocalModel": "modemap.fit.local_model",
     "LocalDynamics": "modemap.identify.local_dynamics",
     "RegimeFinder": "modemap.regimes",
     "SimulationResult": "modemap.simulation.simulator",
@@ -28,7 +32,7 @@ _LAZY = {
     "load_model": "modemap.model.modelfile",
     "save_model": "modemap.model.modelfile",
     "simulate": "modemap.simulation.simulator",
-    "split_holdout": "modemap.simulation.validation",
+    "split_holdout": "modemap.data.split",
     "validate": "modemap.simulation.validation",
 }
 
@@ -49,6 +53,7 @@ def __dir__() -> list[str]:
 
 
 __all__ = [
+    "AffineLocalModel",
     "DataError",
     "Dataset",
     "Equilibrium",
@@ -60,13 +65,16 @@ __all__ = [
     "HybridIdentifier",
     "HybridModel",
     "LocalDynamics",
+    "LocalModel",
     "ModelFileError",
     "ModemapError",
+    "ParameterError",
     "RegimeFinder",
     "RegimeModel",
     "Run",
     "SimulationError",
     "SimulationResult",
+    "SparseLocalModel",
     "SwitchingSurfaces",
     "TermLibrary",
     "__version__",

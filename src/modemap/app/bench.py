@@ -1,6 +1,6 @@
 """Scale benchmark: wall time and peak memory of a fit against a floor measured in the same run.
 
-Run it as ``python -m modemap.app.bench`` (or ``modemap bench``); it is not part of the test suite's
+Run it as ``modemap bench`` (or ``python -m modemap bench``); it is not part of the test suite's
 pass/fail.  For every size N (default 10^5, 10^6, 10^7 samples) it
 
 1. generates an invented system (:func:`invented_system`: three regimes of a three-state,
@@ -47,7 +47,6 @@ __all__ = [
     "invented_switching_ar",
     "invented_system",
     "machine_info",
-    "main",
     "run",
 ]
 
@@ -277,12 +276,11 @@ class _Stopwatch:
 
 @contextlib.contextmanager
 def _stage_timers(watch: _Stopwatch) -> Iterator[None]:
-    import modemap.identify.local_dynamics
     import modemap.regimes.finder as finder
     import modemap.regimes.selection as selection
 
     undo = [
-        watch.wrap(modemap.identify.local_dynamics, "prepare_regression", "regression rows"),
+        watch.wrap(finder, "prepare_regression", "regression rows"),
         watch.wrap(finder, "propose", "proposal"),
         watch.wrap(finder, "refine", "refinement"),
         watch.wrap(selection, "holdout_error", "held-out scoring"),
@@ -303,6 +301,7 @@ def measure_fit(
 ) -> dict[str, Any]:
     """``read_data`` + ``RegimeFinder`` (auto K, discrete form, degree 2), time per stage."""
     from modemap.data.intake import read_data
+    from modemap.fit.local_model import SparseLocalModel
     from modemap.regimes.finder import RegimeFinder
 
     watch = _Stopwatch()
@@ -313,7 +312,11 @@ def measure_fit(
     if engine != "local" or scheduler:
         options = {"engine": engine, "scheduler": scheduler}
     finder = RegimeFinder(
-        n_regimes="auto", max_regimes=max_regimes, form="discrete", degree=DEGREE, **options
+        n_regimes="auto",
+        max_regimes=max_regimes,
+        form="discrete",
+        local_model=SparseLocalModel(degree=DEGREE),
+        **options,
     )
     with _stage_timers(watch):
         finder.fit(ds)
@@ -356,7 +359,7 @@ def _child(args: argparse.Namespace) -> int:
 
 def _in_subprocess(kind: str, data: Path, args: argparse.Namespace) -> dict[str, Any]:
     """Run one measurement in a fresh interpreter so peaks and caches do not mix."""
-    cmd = [sys.executable, "-m", "modemap.app.bench", "--child", kind, "--data", str(data)]
+    cmd = [sys.executable, "-m", "modemap", "bench", "--child", kind, "--data", str(data)]
     cmd += ["--max-regimes", str(args.max_regimes), "--engine", args.engine]
     if args.scheduler:
         cmd += ["--scheduler", args.scheduler]
@@ -387,6 +390,7 @@ def compare_markov(n: int = 10_000, seed: int = 0) -> dict[str, Any]:
     from statsmodels.tsa.regime_switching.markov_autoregression import MarkovAutoregression
 
     from modemap.data.intake import read_data
+    from modemap.fit.local_model import AffineLocalModel
     from modemap.regimes.finder import RegimeFinder
 
     y, truth = invented_switching_ar(n, seed)
@@ -407,7 +411,9 @@ def compare_markov(n: int = 10_000, seed: int = 0) -> dict[str, Any]:
     t0 = time.perf_counter()
     frame = pd.DataFrame({"t": np.arange(n, dtype=np.float64), "y": y.to_numpy()})
     ds = read_data(frame, time="t", states=["y"])
-    finder = RegimeFinder(n_regimes=2, form="discrete", model="affine", covariance="full").fit(ds)
+    finder = RegimeFinder(
+        n_regimes=2, form="discrete", local_model=AffineLocalModel(), covariance="full"
+    ).fit(ds)
     t_ours = time.perf_counter() - t0
     ours = _ar_parameters(finder)
     return {
@@ -562,17 +568,3 @@ def run(args: argparse.Namespace) -> int:
 
         write_text_atomic(args.json, json.dumps(results, indent=2) + "\n")
     return 0
-
-
-def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of ``python -m modemap.app.bench``: the same as ``modemap bench`` (errors are
-    one line with exit code 2; ``--debug`` first shows the traceback)."""
-    from modemap.app.cli import main as cli_main
-
-    argv = sys.argv[1:] if argv is None else list(argv)
-    debug = [a for a in argv if a == "--debug"]
-    return cli_main([*debug, "bench", *(a for a in argv if a != "--debug")])
-
-
-if __name__ == "__main__":
-    sys.exit(main())

@@ -359,14 +359,14 @@ def _threshold(text: str) -> str | float:
 
 
 def identifier_from_args(args: argparse.Namespace):
-    """A :class:`modemap.identify.identifier.HybridIdentifier` configured from the command line."""
-    from modemap.identify.identifier import HybridIdentifier
+    """A :class:`modemap.identify.HybridIdentifier` configured from the command line."""
+    from modemap.identify import HybridIdentifier
 
     if args.degree < 0:
         raise ModemapError(f"--degree: expected a whole number >= 0, got {args.degree}")
     if not 0 <= args.holdout < 1:
         raise ModemapError(f"--holdout: expected a share in [0, 1), got {args.holdout}")
-    return HybridIdentifier(
+    return HybridIdentifier.from_options(
         n_regimes=_regimes(args.regimes),
         max_regimes=args.max_regimes,
         form=args.form,

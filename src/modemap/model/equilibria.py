@@ -13,6 +13,11 @@ equilibrium solves ``f(x, u) = 0``; in the discrete form a fixed point solves
   small residual inside that search box are kept, merged when closer than
   ``1e-5`` of the box size, and sorted by their coordinates.
 
+Each regime's equilibria are computed with its inputs at typical values
+(:func:`typical_inputs`), given standard errors by the delta method
+(:func:`equilibrium_stderr`, :func:`regime_equilibria`), and marked reachable or virtual
+once the guards are known (:func:`place_equilibria`).
+
 Stability follows the linearisation ("Nonlinear Dynamics and Chaos",
 Westview/CRC Press, 2nd ed., 2015, chapters 5-6 for flows; chapter 10 for maps);
 see :func:`classify` for the exact rule.
@@ -28,7 +33,8 @@ from scipy.optimize import root
 from scipy.stats import qmc
 
 from modemap._exceptions import FitError
-from modemap.model.hybrid import FORMS, Equilibrium
+from modemap.model.guards import guard_values
+from modemap.model.hybrid import FORMS, Equilibrium, Guard, HybridModel, RegimeModel
 
 __all__ = [
     "affine_equilibrium",
@@ -36,6 +42,9 @@ __all__ = [
     "equilibrium_stderr",
     "find_equilibria",
     "jacobian",
+    "place_equilibria",
+    "regime_equilibria",
+    "typical_inputs",
 ]
 
 SEARCH_MARGIN = 0.25  # search box = data box widened by this fraction of its width, each side
@@ -418,6 +427,129 @@ class _Problem:
             period=period,
             note=note,
         )
+
+
+def typical_inputs(u: np.ndarray) -> np.ndarray:
+    """Inputs at which a regime's equilibria are computed.
+
+    A stepped input (at most 20 distinct levels) takes the level the regime spends
+    most samples at; a continuously varying one its median.
+    """
+    out = np.empty(u.shape[1])
+    for j, column in enumerate(u.T):
+        levels, counts = np.unique(column, return_counts=True)
+        out[j] = levels[np.argmax(counts)] if levels.size <= 20 else np.median(column)
+    return out
+
+
+def regime_equilibria(
+    library: Any,
+    fit: Any,
+    stats: Any,
+    input_values: np.ndarray,
+    bounds: np.ndarray,
+    *,
+    form: str = "continuous",
+    step: float = 1.0,
+    seed: int = 0,
+    state_names: Sequence[str],
+) -> list[Equilibrium]:
+    """One regime's equilibria (:func:`find_equilibria`) with their standard errors.
+
+    Parameters
+    ----------
+    library : fitted TermLibrary
+        The regime's terms.
+    fit : LocalFit
+        The regime's coefficients and support.
+    stats : GramStats
+        What ``fit`` was computed from (for the standard errors).
+    input_values : ndarray of shape (n_inputs,)
+    bounds : ndarray of shape (n_states, 2)
+    form, step, seed
+        As in :func:`find_equilibria`.
+    state_names : sequence of str
+
+    Returns
+    -------
+    list of Equilibrium
+        ``stderr`` filled in per state (:func:`equilibrium_stderr`).
+    """
+    n_states = len(state_names)
+    found = find_equilibria(
+        library,
+        fit.coef,
+        n_states=n_states,
+        input_values=input_values,
+        bounds=bounds,
+        form=form,
+        step=step,
+        seed=seed,
+        state_names=list(state_names),
+    )
+    for e in found:
+        z = np.concatenate([[e.point[s] for s in state_names], np.asarray(input_values)])
+        se = equilibrium_stderr(library, fit.coef, stats, fit.support, z, n_states, form=form)
+        e.stderr = {s: float(v) for s, v in zip(state_names, se, strict=True)}
+    return found
+
+
+def place_equilibria(
+    model_or_guards: HybridModel | Sequence[Guard],
+    regimes: Sequence[RegimeModel] | None = None,
+    variables: Sequence[str] | None = None,
+    input_values: Sequence[float] | dict[str, float] | None = None,
+) -> None:
+    """Mark every equilibrium as reachable (``inside=True``) or virtual.
+
+    An equilibrium of regime ``i`` is inside when none of the guards leaving
+    ``i`` fires at it, with the inputs at ``input_values``.
+
+    Parameters
+    ----------
+    model_or_guards : HybridModel or sequence of Guard
+    regimes : sequence of RegimeModel, optional
+        Defaults to the model's regimes.
+    variables : sequence of str, optional
+        Defaults to the model's variables (states then inputs).
+    input_values : sequence or dict, optional
+        Inputs at their typical value; defaults to the midpoint of each input's
+        ``data_range`` for a model, else 0.
+    """
+    if isinstance(model_or_guards, HybridModel):
+        model = model_or_guards
+        guards = list(model.guards)
+        regimes = model.regimes if regimes is None else regimes
+        variables = model.variables if variables is None else variables
+        if input_values is None:
+            input_values = {
+                u: 0.5 * sum(model.data_range[u]) if u in model.data_range else 0.0
+                for u in model.inputs
+            }
+    else:
+        guards = list(model_or_guards)
+        if regimes is None or variables is None:
+            raise FitError("place_equilibria needs regimes and variables when given guards")
+    variables = list(variables)
+    for reg in regimes:
+        out = [g for g in guards if g.source == reg.id]
+        for eq in reg.equilibria:
+            z = _point(eq, variables, input_values)
+            eq.inside = not any(guard_values(g, variables, z[None])[0] > 0 for g in out)
+
+
+def _point(eq: Equilibrium, variables: list[str], input_values) -> np.ndarray:
+    """Variables at an equilibrium: its state values, inputs from ``input_values``."""
+    z = np.zeros(len(variables))
+    extra = list(v for v in variables if v not in eq.point)
+    for i, v in enumerate(variables):
+        if v in eq.point:
+            z[i] = eq.point[v]
+        elif isinstance(input_values, dict):
+            z[i] = float(input_values.get(v, 0.0))
+        elif input_values is not None:
+            z[i] = float(np.asarray(input_values, dtype=float)[extra.index(v)])
+    return z
 
 
 def _check_form(form: str) -> None:

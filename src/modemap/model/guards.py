@@ -48,7 +48,7 @@ Choice of family (``kind="auto"``): both families are fitted on the first
 ``1 - holdout`` of every run, the label sequence of the last ``holdout`` part is
 re-predicted from its first measured label by evaluating the guards on the
 measured variables, and the predicted switches are matched to the measured
-ones (see :func:`modemap.simulation.validation.match_switches`).  The cost is
+ones (see :func:`modemap.model.switches.match_switches`).  The cost is
 ``(missed + spurious) / max(1, measured) + timing_mae / median_dwell`` (times
 in samples); the lower cost wins, ties go to ``"memoryless"`` (the simpler
 family).  The chosen family is then refitted on all samples.
@@ -59,6 +59,7 @@ from __future__ import annotations
 import math
 import warnings
 from collections.abc import Sequence
+from typing import ClassVar
 
 import numpy as np
 from sklearn.base import BaseEstimator
@@ -66,11 +67,12 @@ from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression
 
 from modemap._exceptions import FitError
-from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
-from modemap.simulation.validation import match_switches
+from modemap._params import Interval, Options, check_params
+from modemap.model.hybrid import Guard
+from modemap.model.switches import match_switches
 from modemap.terms.library import TermLibrary
 
-__all__ = ["SwitchingSurfaces", "guard_text", "place_equilibria", "predict_labels"]
+__all__ = ["SwitchingSurfaces", "guard_text", "guard_values", "predict_labels"]
 
 KINDS = ("auto", "per-source", "memoryless")
 _MAX_ROWS_PER_CLASS = 20_000
@@ -197,12 +199,12 @@ def _after(guard: Guard, variables: list[str], Z: np.ndarray, prev2_ok: np.ndarr
     extrapolation of the source regime shows the crossing.  Inputs jump (a gate),
     and the measured row shows the crossing.  The larger value covers both.
     """
-    after = _values(guard, variables, Z[1:])
+    after = guard_values(guard, variables, Z[1:])
     rows = np.flatnonzero(prev2_ok[1:]) + 1
     if rows.size:
-        ext = _values(guard, variables, 2.0 * Z[rows - 1] - Z[rows - 2])
+        ext = guard_values(guard, variables, 2.0 * Z[rows - 1] - Z[rows - 2])
         after[rows - 1] = np.maximum(after[rows - 1], ext)
-    return np.concatenate([[_values(guard, variables, Z[:1])[0]], after])
+    return np.concatenate([[guard_values(guard, variables, Z[:1])[0]], after])
 
 
 def _recentre(
@@ -217,19 +219,20 @@ def _recentre(
     """
     if events is None or events.size == 0:
         return guard
-    before = _values(guard, variables, Z[events - 1])
-    after = _values(guard, variables, Z[events])
+    before = guard_values(guard, variables, Z[events - 1])
+    after = guard_values(guard, variables, Z[events])
     sel = np.flatnonzero(ok2)
     if sel.size:
         e = events[sel]
-        ext = _values(guard, variables, 2.0 * Z[e - 1] - Z[e - 2])
+        ext = guard_values(guard, variables, 2.0 * Z[e - 1] - Z[e - 2])
         after[sel] = np.maximum(after[sel], ext)
     guard.offset = float(guard.offset - np.median(0.5 * (before + after)))
     return guard
 
 
-def _values(guard: Guard, variables: list[str], Z: np.ndarray) -> np.ndarray:
-    lib = TermLibrary.from_terms(guard.terms, variables)
+def guard_values(guard: Guard, variables: Sequence[str], Z: np.ndarray) -> np.ndarray:
+    """Values of ``guard`` at the raw variables ``Z (n, n_vars)``; it fires where > 0."""
+    lib = TermLibrary.from_terms(guard.terms, list(variables))
     return lib.transform(Z) @ np.asarray(guard.weights, dtype=float) + guard.offset
 
 
@@ -367,6 +370,15 @@ class SwitchingSurfaces(BaseEstimator):
     variables_ : list of str
     """
 
+    _parameter_constraints: ClassVar[dict[str, list]] = {
+        "kind": [Options(KINDS)],
+        "degree": [Interval(int, 1, None)],
+        "C": [Interval(float, 0, None, closed="neither")],
+        "holdout": [Interval(float, 0, 1, closed="left")],
+        "simplify_tol": [Interval(float, 0, None)],
+        "seed": [Interval(int, 0, 2**32 - 1)],
+    }
+
     def __init__(
         self,
         *,
@@ -455,7 +467,7 @@ class SwitchingSurfaces(BaseEstimator):
         """Values of the guards leaving ``current`` at the raw variables ``z`` (n_vars,)."""
         z = np.asarray(z, dtype=float).reshape(1, -1)
         return {
-            g.target: float(_values(g, self.variables_, z)[0])
+            g.target: float(guard_values(g, self.variables_, z)[0])
             for g in self.guards_
             if g.source == current
         }
@@ -468,14 +480,7 @@ class SwitchingSurfaces(BaseEstimator):
 
     # fitting -----------------------------------------------------------------------------------
     def _validate(self, Z, labels, lengths, variables):
-        if self.kind not in KINDS:
-            raise FitError(f"kind must be one of {KINDS}, not {self.kind!r}")
-        if int(self.degree) < 1:
-            raise FitError(f"degree must be >= 1, not {self.degree!r}")
-        if not float(self.C) > 0:
-            raise FitError(f"C must be > 0, not {self.C!r}")
-        if not 0 <= float(self.holdout) < 1:
-            raise FitError(f"holdout must be in [0, 1), not {self.holdout!r}")
+        check_params(self)
         Z = np.asarray(Z, dtype=float)
         labels = np.asarray(labels).astype(np.int64).reshape(-1)
         lengths = np.asarray(lengths, dtype=np.int64).reshape(-1)
@@ -610,11 +615,11 @@ class SwitchingSurfaces(BaseEstimator):
         ``2 z[r-1] - z[r-2]`` when both earlier samples belong to the same run.
         Scoring with the value the simulator and the label prediction use keeps
         a threshold crossed between two samples from counting as a miss."""
-        value = _values(guard, self._vars, self._Z[rows])
+        value = guard_values(guard, self._vars, self._Z[rows])
         sel = np.flatnonzero(self._ok2[rows])
         if sel.size:
             r = rows[sel]
-            ext = _values(guard, self._vars, 2.0 * self._Z[r - 1] - self._Z[r - 2])
+            ext = guard_values(guard, self._vars, 2.0 * self._Z[r - 1] - self._Z[r - 2])
             value[sel] = np.maximum(value[sel], ext)
         return value
 
@@ -633,12 +638,12 @@ class SwitchingSurfaces(BaseEstimator):
         spread = Zr.std(axis=0)
         centre = Zr.mean(axis=0)
         h = np.where(spread > 0, 1e-3 * spread, 1e-6)
-        base = _values(guard, self._vars, centre[None, :])[0]
+        base = guard_values(guard, self._vars, centre[None, :])[0]
         slopes = np.empty(len(self._vars))
         for v in range(len(self._vars)):
             z = centre.copy()
             z[v] += h[v]
-            slopes[v] = (_values(guard, self._vars, z[None, :])[0] - base) / h[v]
+            slopes[v] = (guard_values(guard, self._vars, z[None, :])[0] - base) / h[v]
         return np.abs(slopes) * spread
 
     def _score(self, guards, Z, labels, lengths, test) -> dict:
@@ -671,62 +676,3 @@ class SwitchingSurfaces(BaseEstimator):
             "spurious": int(spurious),
             "n_measured": int(m_all.size),
         }
-
-
-# -- equilibria --------------------------------------------------------------------------------
-def place_equilibria(
-    model_or_guards: HybridModel | Sequence[Guard],
-    regimes: Sequence[RegimeModel] | None = None,
-    variables: Sequence[str] | None = None,
-    input_values: Sequence[float] | dict[str, float] | None = None,
-) -> None:
-    """Mark every equilibrium as reachable (``inside=True``) or virtual.
-
-    An equilibrium of regime ``i`` is inside when none of the guards leaving
-    ``i`` fires at it, with the inputs at ``input_values``.
-
-    Parameters
-    ----------
-    model_or_guards : HybridModel or sequence of Guard
-    regimes : sequence of RegimeModel, optional
-        Defaults to the model's regimes.
-    variables : sequence of str, optional
-        Defaults to the model's variables (states then inputs).
-    input_values : sequence or dict, optional
-        Inputs at their typical value; defaults to the midpoint of each input's
-        ``data_range`` for a model, else 0.
-    """
-    if isinstance(model_or_guards, HybridModel):
-        model = model_or_guards
-        guards = list(model.guards)
-        regimes = model.regimes if regimes is None else regimes
-        variables = model.variables if variables is None else variables
-        if input_values is None:
-            input_values = {
-                u: 0.5 * sum(model.data_range[u]) if u in model.data_range else 0.0
-                for u in model.inputs
-            }
-    else:
-        guards = list(model_or_guards)
-        if regimes is None or variables is None:
-            raise FitError("place_equilibria needs regimes and variables when given guards")
-    variables = list(variables)
-    for reg in regimes:
-        out = [g for g in guards if g.source == reg.id]
-        for eq in reg.equilibria:
-            z = _point(eq, variables, input_values)
-            eq.inside = not any(_values(g, variables, z[None])[0] > 0 for g in out)
-
-
-def _point(eq: Equilibrium, variables: list[str], input_values) -> np.ndarray:
-    """Variables at an equilibrium: its state values, inputs from ``input_values``."""
-    z = np.zeros(len(variables))
-    extra = list(v for v in variables if v not in eq.point)
-    for i, v in enumerate(variables):
-        if v in eq.point:
-            z[i] = eq.point[v]
-        elif isinstance(input_values, dict):
-            z[i] = float(input_values.get(v, 0.0))
-        elif input_values is not None:
-            z[i] = float(np.asarray(input_values, dtype=float)[extra.index(v)])
-    return z

@@ -1,12 +1,5 @@
 """Held-out validation of a hybrid model: re-simulation and one-step figures.
 
-Hold-out split (:func:`split_holdout`)
-    With two runs or more, whole runs are held out: the last
-    ``ceil(fraction * R)`` runs (in dataset order), keeping at least one run for
-    training.  With a single run, the last ``ceil(fraction * n)`` samples form
-    the test run (at least 2 samples stay in each part).  Deterministic, no
-    randomness, so a fit is reproducible.
-
 Re-simulation (:func:`validate`)
     Each test run is simulated from its first measured state with its measured
     inputs (initial regime: the first assigned label when labels are given,
@@ -36,98 +29,18 @@ One-step quality (:func:`one_step_quality`)
 
 from __future__ import annotations
 
-import math
 from collections.abc import Mapping
-from dataclasses import replace
 from typing import Any
 
 import numpy as np
 
 from modemap._exceptions import DataError
-from modemap.data.dataset import Dataset, Run
+from modemap.data.dataset import Dataset
 from modemap.model.hybrid import HybridModel
+from modemap.model.switches import match_switches
 from modemap.terms.library import TermLibrary
 
-__all__ = ["match_switches", "one_step_quality", "split_holdout", "validate"]
-
-
-def match_switches(
-    measured: np.ndarray, predicted: np.ndarray, window: float = np.inf
-) -> tuple[np.ndarray, np.ndarray]:
-    """Match two lists of switch times one to one.
-
-    A measured and a predicted switch are matched when each is the other's
-    nearest neighbour in time and they are at most ``window`` apart.
-
-    Parameters
-    ----------
-    measured, predicted : ndarray of shape (n,), (m,)
-    window : float
-
-    Returns
-    -------
-    (mi, pi) : tuple of int ndarrays
-        Indices into ``measured`` and ``predicted`` of the matched pairs.
-    """
-    m = np.asarray(measured, dtype=float).reshape(-1)
-    p = np.asarray(predicted, dtype=float).reshape(-1)
-    if m.size == 0 or p.size == 0:
-        empty = np.zeros(0, dtype=np.int64)
-        return empty, empty
-    om, op = np.argsort(m, kind="stable"), np.argsort(p, kind="stable")
-    ms, ps = m[om], p[op]
-    nm = _nearest(ps, ms)
-    np_ = _nearest(ms, ps)
-    ok = (np_[nm] == np.arange(ms.size)) & (np.abs(ms - ps[nm]) <= window)
-    return om[ok], op[nm[ok]]
-
-
-def _nearest(sorted_ref: np.ndarray, query: np.ndarray) -> np.ndarray:
-    """Index of the nearest element of ``sorted_ref`` for every query (ties to the left)."""
-    j = np.searchsorted(sorted_ref, query)
-    left = np.clip(j - 1, 0, sorted_ref.size - 1)
-    right = np.clip(j, 0, sorted_ref.size - 1)
-    use_right = np.abs(sorted_ref[right] - query) < np.abs(query - sorted_ref[left])
-    return np.where(use_right, right, left)
-
-
-def split_holdout(ds: Dataset, fraction: float = 0.25) -> tuple[Dataset, Dataset]:
-    """Split a dataset into training and test parts (see module notes).
-
-    Parameters
-    ----------
-    ds : Dataset
-    fraction : float
-        Share held out, in (0, 1).
-
-    Returns
-    -------
-    (train, test) : tuple of Dataset
-    """
-    if not 0 < fraction < 1:
-        raise DataError(f"holdout fraction must be in (0, 1), not {fraction!r}", source=ds.source)
-    runs = ds.runs
-    if len(runs) >= 2:
-        n_test = min(max(1, math.ceil(fraction * len(runs))), len(runs) - 1)
-        return replace(ds, runs=runs[:-n_test]), replace(ds, runs=runs[-n_test:])
-    run = runs[0]
-    n = run.n_samples
-    if n < 4:
-        raise DataError(f"run '{run.name}' has {n} samples: too few to hold out a tail")
-    n_test = min(max(2, math.ceil(fraction * n)), n - 2)
-    head, tail = _slice(run, 0, n - n_test), _slice(run, n - n_test, n)
-    return replace(ds, runs=(head,)), replace(ds, runs=(tail,))
-
-
-def _slice(run: Run, a: int, b: int) -> Run:
-    return Run(
-        name=run.name,
-        origin=run.origin,
-        time=run.time[a:b],
-        states=run.states[a:b],
-        inputs=run.inputs[a:b],
-        index=run.index[a:b],
-    )
+__all__ = ["one_step_quality", "validate"]
 
 
 def _labels_per_run(labels: Any, test: Dataset) -> list[np.ndarray] | None:

@@ -59,10 +59,12 @@ PANELS: tuple[tuple[str, type[Panel]], ...] = (
 def default_refit(
     dataset: Dataset, options: dict[str, Any], progress: Callable[[float, str], None]
 ) -> RefitResult:
-    """Fit with :class:`modemap.identify.HybridIdentifier`; returns ``(model_, labels_)``."""
-    from modemap.identify.identifier import HybridIdentifier
+    """Fit with :class:`modemap.identify.HybridIdentifier` built from the dialog's flat
+    options (:meth:`~modemap.identify.HybridIdentifier.from_options`); returns
+    ``(model_, labels_)``."""
+    from modemap.identify import HybridIdentifier
 
-    est = HybridIdentifier(**options).fit(dataset, progress=progress)
+    est = HybridIdentifier.from_options(**options).fit(dataset, progress=progress)
     return est.model_, est.labels_
 
 
