@@ -55,7 +55,7 @@ def test_lorenz_support_and_coefficients(lorenz, noise, window, tol) -> None:
     rel = np.abs(fit.coef[truth != 0] / truth[truth != 0] - 1)
     assert rel.max() < tol
     assert fit.n_params == 7 and fit.n_samples == X.shape[0]
-    assert fit.path is not None and fit.path["chosen"].sum() == 3
+    assert fit.path is not None and sum(row["chosen"] for row in fit.path) == 3
 
 
 def test_tiny_threshold_equals_lstsq() -> None:

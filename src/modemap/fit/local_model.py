@@ -48,7 +48,7 @@ from modemap._params import Interval, Options, check_params
 from modemap.fit.affine import fit_affine
 from modemap.fit.centring import fit_sparse_centred
 from modemap.fit.increments import fit_on_increments
-from modemap.fit.sparse import CRITERIA, LocalFit, fit_sparse
+from modemap.fit.sparse import CRITERIA, LocalFit, fit_sparse, refit_support
 from modemap.fit.statistics import GramStats
 from modemap.terms.library import TermLibrary
 
@@ -97,6 +97,18 @@ class LocalModel(BaseEstimator):
         """The same model keeping every candidate term, or None when it keeps them anyway."""
         return None
 
+    def candidate_degrees(self) -> list[int | None]:
+        """The library orders the choice of model compares (None: one fixed library)."""
+        return [None]
+
+    def search_degree(self) -> int | None:
+        """The library order the regimes are searched with (None: the fixed library)."""
+        return None
+
+    def _at_degree(self, degree: int | None) -> LocalModel:
+        """This model with its library at ``degree`` (None: unchanged)."""
+        return self
+
     # -- shared ----------------------------------------------------------------------------
     def library(self, variables: Sequence[str], exclude: Sequence[str] = ()) -> TermLibrary:
         """The candidate terms over ``variables``, without terms that use ``exclude``.
@@ -116,7 +128,7 @@ class LocalModel(BaseEstimator):
         """
         check_params(self)
         library = self._candidate_library(list(variables))
-        if not exclude:
+        if library.n_terms_ == 0 or not exclude:
             return library
         keep = [t for t in library.terms_ if not uses_names(t, exclude)]
         return TermLibrary.from_terms(keep, list(variables))
@@ -128,6 +140,7 @@ class LocalModel(BaseEstimator):
         n_states: int,
         form: str = "continuous",
         exclude: Sequence[str] = (),
+        degree: int | None = None,
     ) -> BoundLocalModel:
         """This model with its library built for ``variables`` and the rules of ``form``.
 
@@ -140,6 +153,9 @@ class LocalModel(BaseEstimator):
         form : {"continuous", "discrete"}, default "continuous"
         exclude : sequence of str, default ()
             Variables no term may use.
+        degree : int or None, default None
+            The library order (one of :meth:`candidate_degrees`); None: the order the
+            regimes are searched with (:meth:`search_degree`).
 
         Returns
         -------
@@ -148,9 +164,11 @@ class LocalModel(BaseEstimator):
         check_params(self)
         if form not in FORMS:
             raise ParameterError(f"form must be one of {', '.join(FORMS)}, got {form!r}")
-        library = self.library(variables, exclude)
+        degree = self.search_degree() if degree is None else degree
+        spec = self._at_degree(degree)
+        library = spec.library(variables, exclude)
         states = tuple(list(variables)[:n_states])
-        return BoundLocalModel(self, library, states, form)
+        return BoundLocalModel(spec, library, states, form, degree)
 
 
 class SparseLocalModel(LocalModel):
@@ -158,8 +176,12 @@ class SparseLocalModel(LocalModel):
 
     Parameters
     ----------
-    degree : int, default 2
-        Largest total degree of the candidate monomials.
+    degree : "auto" or int, default "auto"
+        Largest total degree of the candidate monomials, or "auto": the library order is
+        part of the choice of model, each of 1 to ``max_degree`` being a candidate (the
+        regimes are searched with ``min(2, max_degree)``).
+    max_degree : int, default 3
+        Highest library order "auto" considers.
     trig : sequence of str, default ()
         Variables that get ``sin`` and ``cos`` terms.
     custom : sequence of str, default ()
@@ -181,7 +203,8 @@ class SparseLocalModel(LocalModel):
 
     _parameter_constraints: ClassVar[dict[str, list]] = {
         **LocalModel._parameter_constraints,
-        "degree": [Interval(int, 0, 10)],
+        "degree": [Options(("auto",)), Interval(int, 0, 10)],
+        "max_degree": [Interval(int, 1, 10)],
         "threshold": [Options(("auto",)), Interval(float, 0, None)],
         "ridge": [Interval(float, 0, None)],
         "criterion": [Options(CRITERIA)],
@@ -190,7 +213,8 @@ class SparseLocalModel(LocalModel):
     def __init__(
         self,
         *,
-        degree: int = 2,
+        degree: str | int = "auto",
+        max_degree: int = 3,
         trig: Sequence[str] = (),
         custom: Sequence[str] = (),
         terms: Sequence[str] | None = None,
@@ -201,6 +225,7 @@ class SparseLocalModel(LocalModel):
     ) -> None:
         super().__init__(final_fit=final_fit)
         self.degree = degree
+        self.max_degree = max_degree
         self.trig = trig
         self.custom = custom
         self.terms = terms
@@ -208,10 +233,28 @@ class SparseLocalModel(LocalModel):
         self.ridge = ridge
         self.criterion = criterion
 
+    def candidate_degrees(self) -> list[int | None]:
+        if self.terms is not None:
+            return [None]
+        if self.degree == "auto":
+            return list(range(1, int(self.max_degree) + 1))
+        return [int(self.degree)]
+
+    def search_degree(self) -> int | None:
+        if self.terms is not None:
+            return None
+        return min(2, int(self.max_degree)) if self.degree == "auto" else int(self.degree)
+
+    def _at_degree(self, degree: int | None) -> LocalModel:
+        if degree is None or degree == self.degree:
+            return self
+        return clone(self).set_params(degree=int(degree))
+
     def _candidate_library(self, variables: Sequence[str]) -> TermLibrary:
         if self.terms is not None:
             return TermLibrary.from_terms(list(self.terms), variables)
-        library = TermLibrary(degree=int(self.degree), trig=tuple(self.trig), custom=self.custom)
+        degree = self.search_degree()
+        library = TermLibrary(degree=int(degree), trig=tuple(self.trig), custom=self.custom)
         return library.fit(variables)
 
     def _estimate(self, stats: Any, terms: list[str], variables: Sequence[str]) -> LocalFit:
@@ -244,6 +287,12 @@ class AffineLocalModel(LocalModel):
     def _candidate_library(self, variables: Sequence[str]) -> TermLibrary:
         return TermLibrary(degree=1).fit(variables)
 
+    def candidate_degrees(self) -> list[int | None]:
+        return [1]
+
+    def search_degree(self) -> int | None:
+        return 1
+
     def _estimate(self, stats: Any, terms: list[str], variables: Sequence[str]) -> LocalFit:
         return fit_affine(sum(stats) if isinstance(stats, list) else stats, terms)
 
@@ -261,12 +310,15 @@ class BoundLocalModel:
     states : tuple of str
         State names, in the order of the targets.
     form : {"continuous", "discrete"}
+    degree : int or None
+        The library order (None: a library given term by term).
     """
 
     spec: LocalModel
     library: TermLibrary
     states: tuple[str, ...]
     form: str
+    degree: int | None = None
 
     @property
     def terms(self) -> list[str]:
@@ -310,10 +362,19 @@ class BoundLocalModel:
         """:meth:`fit` for every regime's statistics."""
         return [self.fit(s) for s in stats]
 
+    def refit(self, stats: GramStats, previous: LocalFit) -> LocalFit:
+        """Least squares on ``previous``'s terms (no new choice of terms): what a pass of the
+        refinement does while its labels move little, the choice being the costly part."""
+        if not self.spec.selects_terms:
+            return self.fit(stats)
+        return refit_support(stats, self.terms, previous.support, threshold=previous.threshold)
+
     def unpruned(self) -> BoundLocalModel | None:
         """This bound model keeping every term (see :meth:`LocalModel.unpruned`)."""
         spec = self.spec.unpruned()
-        return None if spec is None else BoundLocalModel(spec, self.library, self.states, self.form)
+        if spec is None:
+            return None
+        return BoundLocalModel(spec, self.library, self.states, self.form, self.degree)
 
 
 def uses_names(term: str, names: Sequence[str]) -> bool:

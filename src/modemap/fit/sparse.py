@@ -93,9 +93,10 @@ class LocalFit:
         Residual sum of squares per target.
     n_params : int
         Number of active coefficients (``support.sum()``).
-    path : pandas.DataFrame or None
-        Thresholds tried by the automatic choice (target, threshold, nonzeros,
-        rss, criterion, chosen).
+    path : list of dict or None
+        Thresholds tried by the automatic choice, one dict per threshold (target,
+        threshold, nonzeros, rss, criterion, chosen); :attr:`SparseRegression.path_` shows
+        them as a table.
     """
 
     terms: list[str]
@@ -107,7 +108,7 @@ class LocalFit:
     threshold: np.ndarray
     rss: np.ndarray
     n_params: int
-    path: pd.DataFrame | None = None
+    path: list[dict] | None = None
 
     def __sklearn_tags__(self):
         tags = super().__sklearn_tags__()
@@ -370,7 +371,7 @@ def refit_support(
     support: np.ndarray,
     *,
     threshold: np.ndarray | float = 0.0,
-    path: pd.DataFrame | None = None,
+    path: list[dict] | None = None,
 ) -> LocalFit:
     """Ordinary least squares on a given support, with standard errors.
 
@@ -382,7 +383,7 @@ def refit_support(
     support : ndarray of bool, shape (p, m)
     threshold : float or ndarray of shape (m,), default 0
         Recorded in the result.
-    path : DataFrame, optional
+    path : list of dict, optional
         Recorded in the result.
 
     Returns
@@ -476,9 +477,7 @@ def fit_sparse(
             support, thr, rows = _scan_cv(blocks, ridge, max_iter)
         else:
             support, thr, rows = _scan_information(total, ridge, max_iter, criterion)
-        cols = ("target", "threshold", "nonzeros", "rss", "criterion", "chosen")
-        path = pd.DataFrame({c: np.array([r[c] for r in rows]) for c in cols})
-        return refit_support(total, terms, support, threshold=thr, path=path)
+        return refit_support(total, terms, support, threshold=thr, path=rows)
     thr = np.broadcast_to(np.asarray(threshold, dtype=np.float64), (total.n_targets,))
     if np.any(thr < 0) or not np.all(np.isfinite(thr)):
         raise ParameterError(f"threshold must be finite and >= 0, got {threshold!r}")
@@ -611,7 +610,8 @@ class SparseRegression(RegressorMixin, BaseEstimator):
             raise ParameterError(f"solver must be 'lsq' or 'lasso', got {self.solver!r}")
         self.local_fit_, self.n_iter_ = fit, n_iter
         self.coef_, self.support_, self.stderr_ = fit.coef, fit.support, fit.stderr
-        self.threshold_, self.noise_cov_, self.path_ = fit.threshold, fit.noise_cov, fit.path
+        self.threshold_, self.noise_cov_ = fit.threshold, fit.noise_cov
+        self.path_ = None if fit.path is None else _path_frame(fit.path)
         self.n_features_in_ = X.shape[1]
         if given:
             self.feature_names_in_ = np.asarray(names, dtype=object)
@@ -656,3 +656,9 @@ def _lasso_support(
         support[:, j] = model.coef_ != 0
         n_iter = max(n_iter, int(model.n_iter_))
     return support, alphas, n_iter
+
+
+def _path_frame(rows: list[dict]) -> pd.DataFrame:
+    """The thresholds tried, as a table."""
+    cols = ("target", "threshold", "nonzeros", "rss", "criterion", "chosen")
+    return pd.DataFrame({c: np.array([r[c] for r in rows]) for c in cols})

@@ -116,7 +116,7 @@ def fitted_value_covariance(
         try:
             chol = np.linalg.cholesky(gn[np.ix_(i, i)])
         except np.linalg.LinAlgError:
-            u.append((np.full(i.size, np.nan), np.nan))
+            u.append(_pseudo_solve(gn[np.ix_(i, i)], xn[i]))
             continue
         w = np.linalg.solve(chol, xn[i])
         u.append((np.linalg.solve(chol.T, w), float(w @ w)))
@@ -132,6 +132,21 @@ def fitted_value_covariance(
     var = np.sqrt(np.clip(np.diag(out), 0.0, None))
     bound = np.outer(var, var)
     return np.where(np.eye(m, dtype=bool), out, np.clip(out, -bound, bound))
+
+
+def _pseudo_solve(gram: np.ndarray, x: np.ndarray) -> tuple[np.ndarray, float]:
+    """``G^+ x`` and ``x' G^+ x`` through the eigen-decomposition of a Gram matrix that
+    Cholesky refuses (terms collinear to rounding, as cubes of a variable far from zero
+    are).  Directions with eigenvalues below ``1e-12`` of the largest are left out: the
+    fitted value is bounded along the others.  NaN when ``x`` leans on a left-out
+    direction by more than 1e-6 of its norm (the point is not bounded by the data)."""
+    lam, vec = np.linalg.eigh(gram)
+    keep = lam > 1e-12 * max(float(lam[-1]), 0.0)
+    proj = vec.T @ x
+    if not keep.any() or np.linalg.norm(proj[~keep]) > 1e-6 * np.linalg.norm(x):
+        return np.full(x.size, np.nan), np.nan
+    w = proj[keep] / np.sqrt(lam[keep])
+    return vec[:, keep] @ (proj[keep] / lam[keep]), float(w @ w)
 
 
 def default_block_length(lengths: Sequence[int] | np.ndarray) -> int:
