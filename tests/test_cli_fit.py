@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -33,7 +34,11 @@ def test_labels_csv_contract(fitted) -> None:
     data, out = fitted
     source = pd.read_csv(data)
     labels = pd.read_csv(out / "labels.csv")
-    assert list(labels.columns) == ["run", "time", "regime"]
+    # run, time, regime first, then one probability column per regime (rows sum to one)
+    assert list(labels.columns) == ["run", "time", "regime", "prob_0", "prob_1"]
+    probs = labels[["prob_0", "prob_1"]].to_numpy()
+    np.testing.assert_allclose(probs.sum(axis=1), 1.0, atol=1e-9)
+    assert np.mean(probs.argmax(axis=1) == labels["regime"]) > 0.99
     assert len(labels) == len(source)
     assert labels["time"].tolist() == pytest.approx(source["t [s]"].tolist())
     assert labels["regime"].dtype.kind == "i" and labels["regime"].min() >= -1

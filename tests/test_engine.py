@@ -120,7 +120,7 @@ def test_decode_blocks_finds_the_brute_force_path_on_short_runs() -> None:
     log_start, log_trans = np.log([0.5, 0.3, 0.2]), np.log([[0.8, 0.1, 0.1], [0.2, 0.7, 0.1]] * 1)
     log_trans = np.vstack([log_trans, np.log([[0.3, 0.3, 0.4]])])
     runs = split_blocks(Z, Y, lengths)
-    path, log_prob, _ = decode_blocks(
+    path, log_prob, _, _ = decode_blocks(
         LocalEngine(), runs, library, coefs, covs, (log_start, log_trans)
     )
     paths = np.split(path, np.cumsum(lengths)[:-1])
@@ -144,7 +144,7 @@ def test_decode_blocks_equals_stacked_viterbi_and_scores_current_labels(problem:
     runs = split_blocks(Z, Y, LENGTHS)
     current = _per_run(problem["labels"])
     chain = (log_start, log_trans)
-    path, log_prob, cur = decode_blocks(
+    path, log_prob, cur, _ = decode_blocks(
         LocalEngine(), runs, lib, problem["coefs"], covs, chain, current=current
     )
     log_em = regime_log_likelihood(lib, Z, Y, problem["coefs"], covs)

@@ -58,7 +58,7 @@ def test_validation_describes_the_saved_model(relay) -> None:
 def test_labels_frame_has_one_row_per_input_row_in_order(relay) -> None:
     frame, ds, ident = relay
     labels = ident.labels_
-    assert list(labels.columns) == ["run", "time", "regime"]
+    assert list(labels.columns) == ["run", "time", "regime", "prob_0", "prob_1"]
     assert len(labels) == len(frame)
     np.testing.assert_array_equal(labels["time"].to_numpy(), frame["t [s]"].to_numpy())
     assert labels["run"].tolist() == frame["run"].astype(str).tolist()
@@ -107,3 +107,75 @@ def test_single_run_holds_out_its_tail() -> None:
     assert ident.model_.validation["holdout"] == "tails"
     assert len(ident.labels_) == len(frame)
     assert (ident.labels_["regime"] >= 0).all()
+
+
+def _duffing_runs(n_runs: int = 6, seed: int = 0):
+    """The unforced double-well Duffing oscillator x'' = x - x^3 - 0.3 x' (textbook form,
+    from memory; "Nonlinear Dynamics and Chaos", chapter 7): one vector field with a saddle
+    at the origin and two stable spirals at x = +-1, simulated exactly (scipy's solve_ivp)."""
+    import pandas as pd
+    from scipy.integrate import solve_ivp
+
+    rng = np.random.default_rng(seed)
+    t = np.arange(0.0, 30.0, 0.05)
+    frames = []
+    for run in range(n_runs):
+        x0 = rng.uniform([-1.8, -1.0], [1.8, 1.0])
+        sol = solve_ivp(
+            lambda _, s: [s[1], s[0] - s[0] ** 3 - 0.3 * s[1]], (0, t[-1]), x0,
+            t_eval=t, rtol=1e-10, atol=1e-12,
+        )  # fmt: skip
+        noisy = sol.y.T + 1e-3 * rng.standard_normal(sol.y.T.shape)
+        frames.append(pd.DataFrame({"run": run, "t": t, "x": noisy[:, 0], "v": noisy[:, 1]}))
+    return pd.concat(frames, ignore_index=True)
+
+
+def test_cubic_oscillator_is_one_regime_with_its_three_equilibria() -> None:
+    # Several equilibria do not mean several regimes: with the defaults (number of regimes
+    # and library order chosen), one regime with the exact cubic terms and three equilibria.
+    frame = _duffing_runs()
+    ds = modemap.read_data(frame, time="t", states=["x", "v"], run="run")
+    model = HybridIdentifier().fit(ds).model_
+    assert model.n_regimes == 1
+    (regime,) = model.regimes
+    coef = {
+        state: {
+            t: c for t, c in zip(regime.terms, regime.coefficients[:, j], strict=True) if c != 0
+        }
+        for j, state in enumerate(["x", "v"])
+    }
+    assert set(coef["x"]) == {"v"} and set(coef["v"]) == {"x", "x^3", "v"}
+    assert coef["v"]["x"] == pytest.approx(1.0, rel=0.02)
+    assert coef["v"]["x^3"] == pytest.approx(-1.0, rel=0.02)
+    assert coef["v"]["v"] == pytest.approx(-0.3, rel=0.02)
+    points = sorted((round(e.point["x"], 1), e.stability.split()[0]) for e in regime.equilibria)
+    assert points == [(-1.0, "stable"), (0.0, "saddle"), (1.0, "stable")]
+
+
+def test_a_120_sample_file_fits(tmp_path) -> None:
+    # a valid file with enough samples for one regime gets a model (a damped oscillator
+    # with a stepped input: x' = v, v' = -4 x - 0.8 v + 2 u, exact zero-order-hold solution)
+    import pandas as pd
+    from scipy.linalg import expm
+
+    from modemap.app.cli import main
+
+    A = np.array([[0.0, 1.0], [-4.0, -0.8]])
+    B = np.array([[0.0], [2.0]])
+    dt = 0.1
+    M = expm(np.block([[A, B], [np.zeros((1, 3))]]) * dt)
+    Ad, Bd = M[:2, :2], M[:2, 2:]
+    rng = np.random.default_rng(4)
+    u = np.repeat(rng.uniform(-1, 1, 12), 10)
+    x = np.zeros((120, 2))
+    x[0] = [0.5, 0.0]
+    for k in range(119):
+        x[k + 1] = Ad @ x[k] + (Bd * u[k]).ravel()
+    frame = pd.DataFrame({"t": dt * np.arange(120), "x": x[:, 0], "v": x[:, 1], "u": u})
+    path = tmp_path / "small.csv"
+    frame.to_csv(path, index=False)
+    out = tmp_path / "out"
+    args = ["fit", str(path), "--time", "t", "--states", "x,v", "--inputs", "u", "--out", str(out)]
+    assert main([*args, "--quiet"]) == 0
+    model = modemap.load_model(out / "model.json")
+    assert model.n_regimes == 1

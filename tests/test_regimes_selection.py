@@ -1,4 +1,5 @@
-"""Choice of K: likelihood and BIC checked against statsmodels OLS for one regime."""
+"""Choice of model: the marginal likelihood, regime probabilities and the criterion, checked
+against hmmlearn, statsmodels and textbook results."""
 
 from __future__ import annotations
 
@@ -6,11 +7,13 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
+from modemap.regimes.likelihood import regime_log_likelihood
 from modemap.regimes.selection import (
+    autocorrelation_time,
     count_parameters,
-    holdout_split,
     information_criterion,
 )
+from modemap.regimes.viterbi import forward_backward
 from modemap.terms.library import TermLibrary
 from refine_helpers import refine_rows
 
@@ -47,9 +50,105 @@ def test_bic_counts_the_variance_too(one_regime) -> None:
     # statsmodels' OLS BIC counts the coefficients only: ours adds ln(n) for the variance
     bic = information_criterion(result.loglik, n_params, 1500)
     assert bic == pytest.approx(ols.bic + np.log(1500), rel=1e-9)
+    # on an effective sample of n / tau rows, the log-likelihood counts 1 / tau as much
+    assert information_criterion(result.loglik, n_params, 1500, 3.0) == pytest.approx(
+        -2 * result.loglik / 3 + n_params * np.log(500), rel=1e-12
+    )
 
 
-def test_holdout_is_the_tail_of_every_run() -> None:
-    mask = holdout_split(np.array([10, 5]))
-    expected = [False] * 8 + [True] * 2 + [False] * 4 + [True]  # last 20 %, rounded down
-    np.testing.assert_array_equal(mask, expected)
+def _switching_means(n: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A seeded two-regime switching mean (invented): y = mu_s + e, e ~ N(0, 0.6^2)."""
+    rng = np.random.default_rng(seed)
+    trans = np.array([[0.97, 0.03], [0.05, 0.95]])
+    s = np.zeros(n, dtype=np.int64)
+    for t in range(1, n):
+        s[t] = rng.random() < trans[s[t - 1], 1]
+    y = np.array([-1.0, 1.5])[s] + 0.6 * rng.standard_normal(n)
+    return y, s, trans
+
+
+def test_marginal_likelihood_equals_hmmlearn_gaussian_hmm() -> None:
+    # Every regime model a constant (the term "1"): the switching model is a Gaussian HMM,
+    # and its marginal log-likelihood is hmmlearn's GaussianHMM.score (forward algorithm;
+    # reference library), run by run; the regime probabilities its predict_proba.
+    from hmmlearn import hmm
+
+    y, _, trans = _switching_means(900, seed=1)
+    lengths = np.array([400, 500])
+    means, var = np.array([[-0.9], [1.4]]), 0.38
+    ref = hmm.GaussianHMM(n_components=2, covariance_type="tied", init_params="", params="")
+    ref.startprob_ = np.array([0.5, 0.5])
+    ref.transmat_ = trans
+    ref.means_ = means
+    ref.covars_ = np.array([[var]])
+    library = TermLibrary.from_terms(["1"], ["z"])
+    log_em = regime_log_likelihood(
+        library, np.zeros((y.size, 1)), y[:, None], list(means[:, None, :]), np.full((2, 1, 1), var)
+    )
+    loglik, post = forward_backward(log_em, lengths, np.log(ref.startprob_), np.log(trans))
+    assert loglik == pytest.approx(ref.score(y[:, None], lengths), rel=1e-10)
+    np.testing.assert_allclose(post, ref.predict_proba(y[:, None], lengths), atol=1e-10)
+
+
+def test_regime_probabilities_equal_statsmodels_markov_regression() -> None:
+    # statsmodels' MarkovRegression (the switching model of Econometrica 57(2), 1989,
+    # DOI 10.2307/1912559; the smoother of "Dynamic linear models with Markov-switching",
+    # Journal of Econometrics 60, 1994) evaluated at given parameters: switching mean,
+    # one variance; its smoothed probabilities are ours with the same chain and start (its
+    # default start: the chain's stationary distribution).
+    from statsmodels.tsa.regime_switching.markov_regression import MarkovRegression
+
+    y, _, trans = _switching_means(600, seed=2)
+    model = MarkovRegression(y, k_regimes=2)
+    # statsmodels' order: p[0->0], p[1->0], const[0], const[1], sigma2
+    params = np.array([trans[0, 0], trans[1, 0], -0.9, 1.4, 0.38])
+    ref = model.smooth(params)
+    stationary = np.array([trans[1, 0], trans[0, 1]]) / (trans[1, 0] + trans[0, 1])
+    library = TermLibrary.from_terms(["1"], ["z"])
+    coefs = [np.array([[-0.9]]), np.array([[1.4]])]
+    log_em = regime_log_likelihood(
+        library, np.zeros((y.size, 1)), y[:, None], coefs, np.full((2, 1, 1), 0.38)
+    )
+    loglik, post = forward_backward(log_em, [y.size], np.log(stationary), np.log(trans))
+    np.testing.assert_allclose(post, ref.smoothed_marginal_probabilities, atol=1e-10)
+    assert loglik == pytest.approx(ref.llf, rel=1e-10)
+
+
+@pytest.mark.parametrize("phi", [0.0, 0.5, 0.8])
+def test_autocorrelation_time_of_an_ar1_series(phi) -> None:
+    # The integrated autocorrelation time of an AR(1) process with coefficient phi is
+    # 1 + 2 sum_k phi^k = (1 + phi) / (1 - phi) (textbook; common practice): 1, 3 and 9.
+    rng = np.random.default_rng(3)
+    runs = []
+    for _ in range(4):
+        e = rng.standard_normal(20_000)
+        x = np.empty_like(e)
+        x[0] = e[0]
+        for t in range(1, e.size):
+            x[t] = phi * x[t - 1] + e[t]
+        runs.append(x)
+    tau = autocorrelation_time(np.concatenate(runs)[:, None], np.array([20_000] * 4))
+    assert tau == pytest.approx((1 + phi) / (1 - phi), rel=0.12, abs=0.05)
+
+
+def test_windows_hold_a_regime_only_when_their_samples_agree() -> None:
+    # the common targets: increments over windows of h intervals, the regressors their
+    # trapezoidal integrals; exact for x' = 2 (a constant slope: the target is 2 whatever
+    # the window, textbook quadrature)
+    from modemap.regimes.rows import Rows
+    from modemap.regimes.selection import Windows
+
+    t = np.arange(10.0) * 0.5
+    x = 2.0 * t + 1.0
+    rows = Rows.of(x[:, None], np.zeros((10, 1)), [6, 4], t)
+    windows = Windows(rows, x[:, None], 2, integral=True)
+    np.testing.assert_array_equal(windows.start, [0, 2, 6])  # never across the run boundary
+    np.testing.assert_allclose(windows.target[:, 0], 2.0)
+    G = windows.regressors(TermLibrary.from_terms(["1", "x"], ["x"]))
+    np.testing.assert_allclose(G[:, 0], 1.0)  # the mean of the constant term
+    np.testing.assert_allclose(G[:, 1], [2.0, 4.0, 8.0])  # the mean of x over the window
+    labels = np.array([0, 0, 0, 1, 1, 1, 0, 0, 1, 1])
+    np.testing.assert_array_equal(windows.labels(labels), [0, -1, -1])
+    # discrete form: a row holds its regime unless its interval holds a switch
+    discrete = Windows(rows, x[:, None], 1, integral=False)
+    np.testing.assert_array_equal(discrete.labels(labels), [0, 0, -1, 1, 1, 1, 0, -1, 1, 1])

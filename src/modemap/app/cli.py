@@ -269,10 +269,18 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--degree",
+        type=_degree,
+        default="auto",
+        metavar="auto|D",
+        help="polynomial degree of the candidate terms, or 'auto' to choose it among 1 to "
+        "--max-degree with the number of regimes (default: auto)",
+    )
+    group.add_argument(
+        "--max-degree",
         type=int,
-        default=2,
+        default=3,
         metavar="D",
-        help="polynomial degree of the candidate terms (default: 2)",
+        help="highest degree 'auto' considers (default: 3)",
     )
     group.add_argument(
         "--term",
@@ -321,6 +329,15 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
         metavar="N",
         help="shortest stay in a regime, in samples (default: 1)",
     )
+    group.add_argument(
+        "--min-regime-samples",
+        type=int,
+        default=None,
+        metavar="N",
+        help="smallest regime kept, in samples (default: 5 per candidate term and at least "
+        "20 when the number of regimes is chosen; 2 per term plus 2 and at least 10 when it "
+        "is given)",
+    )
     group.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
     group.add_argument(
         "--engine",
@@ -346,6 +363,18 @@ def _regimes(text: str) -> str | int:
     return k
 
 
+def _degree(text: str) -> str | int:
+    if text == "auto":
+        return "auto"
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected 'auto' or a whole number, got {text!r}"
+        ) from None
+    return value
+
+
 def _threshold(text: str) -> str | float:
     if text == "auto":
         return "auto"
@@ -362,8 +391,8 @@ def identifier_from_args(args: argparse.Namespace):
     """A :class:`modemap.identify.HybridIdentifier` configured from the command line."""
     from modemap.identify import HybridIdentifier
 
-    if args.degree < 0:
-        raise ModemapError(f"--degree: expected a whole number >= 0, got {args.degree}")
+    if args.degree != "auto" and args.degree < 0:
+        raise ModemapError(f"--degree: expected 'auto' or a whole number >= 0, got {args.degree}")
     if not 0 <= args.holdout < 1:
         raise ModemapError(f"--holdout: expected a share in [0, 1), got {args.holdout}")
     return HybridIdentifier.from_options(
@@ -372,6 +401,7 @@ def identifier_from_args(args: argparse.Namespace):
         form=args.form,
         model=args.model,
         degree=args.degree,
+        max_degree=args.max_degree,
         custom_terms=tuple(args.terms),
         threshold=_threshold(args.threshold),
         derivative=args.derivative,
@@ -379,6 +409,7 @@ def identifier_from_args(args: argparse.Namespace):
         guard_kind=args.guards,
         holdout=args.holdout,
         min_dwell=args.min_dwell,
+        min_regime_samples=args.min_regime_samples,
         seed=args.seed,
         engine=args.engine,
         scheduler=args.scheduler,

@@ -15,20 +15,23 @@
 6. **validation**: the held-out runs re-simulated (:func:`modemap.simulation.validation.validate`).
 
 The stages are parameters (``regimes``, ``guards``), so every setting is reachable as
-``regimes__sticky``, ``regimes__local_model__degree`` or ``guards__kind``.  The saved model
-is the one fitted on the training part, so the validation figures describe exactly the
-model in the file.
+``regimes__sticky``, ``regimes__local_model__degree`` or ``guards__kind``.  The number of
+regimes and the library are chosen, and the validation figures measured, on the training
+part; the model written is then fitted again on all data with that number of regimes and
+that library (``refit=False`` keeps the model of the training part).
 """
 
 from __future__ import annotations
 
+import copy
 from typing import Any, ClassVar
 
 import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator, clone
 
-from modemap._params import Interval, check_params
+from modemap._exceptions import FitError
+from modemap._params import BOOLEAN, Interval, check_params
 from modemap._progress import ProgressCallback, null_progress, scaled
 from modemap._version import __version__
 from modemap.data.dataset import Dataset
@@ -59,6 +62,11 @@ class HybridIdentifier(BaseEstimator):
     holdout : float, default 0.25
         Share of runs (or of each run's tail when there is one run) kept out of the
         fit and used to validate by re-simulation; 0 disables validation.
+    refit : bool, default True
+        After validation, fit the model again on all data with the number of regimes and
+        the library the training part chose; that is the model written (the validation
+        figures are those of the model fitted on the training part).  False keeps the
+        model fitted on the training part.
     tolerance : float, default 0.1
         Normalised error that ends the prediction horizon.
 
@@ -66,7 +74,9 @@ class HybridIdentifier(BaseEstimator):
     ----------
     model_ : HybridModel
     labels_ : pandas.DataFrame
-        ``run, time, regime`` for every sample of the data, in input order.
+        ``run, time, regime`` for every sample of the data, in input order, then
+        ``prob_0 .. prob_{K-1}``: each sample's regime probabilities given all the data of
+        its run.
     finder_ : RegimeFinder
         The fitted regime stage.
     surfaces_ : SwitchingSurfaces
@@ -85,6 +95,7 @@ class HybridIdentifier(BaseEstimator):
         "regimes": [RegimeFinder, None],
         "guards": [SwitchingSurfaces, None],
         "holdout": [Interval(float, 0, 1, closed="left")],
+        "refit": [BOOLEAN],
         "tolerance": [Interval(float, 0, None, closed="neither")],
     }
 
@@ -94,11 +105,13 @@ class HybridIdentifier(BaseEstimator):
         regimes: RegimeFinder | None = None,
         guards: SwitchingSurfaces | None = None,
         holdout: float = 0.25,
+        refit: bool = True,
         tolerance: float = 0.1,
     ) -> None:
         self.regimes = regimes
         self.guards = guards
         self.holdout = holdout
+        self.refit = refit
         self.tolerance = tolerance
 
     @classmethod
@@ -124,37 +137,96 @@ class HybridIdentifier(BaseEstimator):
         progress = progress or null_progress
         progress(0.0, "splitting off validation data")
         train, test = split_holdout(ds, self.holdout) if self.holdout > 0 else (ds, None)
-        finder = (clone(self.regimes) if self.regimes else RegimeFinder()).fit(
-            train, progress=scaled(progress, 0.02, 0.75)
-        )
-        _, x, u, lengths = train.concat()
-        z = np.hstack([x, u])
-        labels = np.concatenate(finder.labels_)
-        progress(0.75, "equilibria and stability")
-        regimes, inputs = self._regimes(train, finder, z, labels)
-        progress(0.82, "learning switching surfaces")
-        surfaces = (clone(self.guards) if self.guards else SwitchingSurfaces()).fit(
-            z, labels, lengths, list(train.variable_names), units=dict(train.units)
-        )
-        for regime, u_typ in zip(regimes, inputs, strict=True):
-            place_equilibria(surfaces.guards_, [regime], train.variable_names, u_typ)
-        model = self._model(train, finder, surfaces, regimes, z, labels)
-        progress(0.88, "validating on held-out data")
-        all_labels = {r.name: lab for r, lab in zip(train.runs, finder.labels_, strict=True)}
-        if test is not None:
-            test_labels = finder.predict(test)
-            model.validation = validate(model, test, labels=test_labels, tolerance=self.tolerance)
-            model.validation["holdout"] = "runs" if len(ds.runs) >= 2 else "tails"
-            model.validation["one_step"] = _one_step(model, finder, test, test_labels)
-            _merge_labels(all_labels, test, test_labels)
-        self.model_ = model
-        self.labels_ = labels_frame(ds, all_labels)
-        self.finder_ = finder
-        self.surfaces_ = surfaces
-        self.train_ = train
-        self.test_ = test
+        stage = clone(self.regimes) if self.regimes else RegimeFinder()
+        last = 1.0 if test is None or not self.refit else 0.55
+        finder, surfaces, model = self._identify(train, stage, scaled(progress, 0.02, last))
+        model.metadata["options"] = options_record(finder, surfaces, self.holdout, self.tolerance)
+        self.train_, self.test_ = train, test
+        if test is None:
+            self._keep(ds, finder, surfaces, model, {})
+            progress(1.0, "done")
+            return self
+        progress(last, "validating on held-out data")
+        test_labels = finder.predict(test)
+        validation = validate(model, test, labels=test_labels, tolerance=self.tolerance)
+        validation["holdout"] = "runs" if len(ds.runs) >= 2 else "tails"
+        validation["one_step"] = _one_step(model, finder, test, test_labels)
+        model.validation = validation
+        if self.refit:
+            done = self._refit(ds, finder, model, scaled(progress, 0.65, 1.0))
+            if done is not None:
+                self._keep(ds, *done, {})
+                progress(1.0, "done")
+                return self
+        labels = {r.name: lab for r, lab in zip(train.runs, finder.labels_, strict=True)}
+        _merge_labels(labels, test, test_labels)
+        self._keep(ds, finder, surfaces, model, labels)
         progress(1.0, "done")
         return self
+
+    def _identify(
+        self, ds: Dataset, stage: RegimeFinder, progress: ProgressCallback
+    ) -> tuple[RegimeFinder, SwitchingSurfaces, HybridModel]:
+        """Regimes -> equilibria -> guards -> model, on ``ds``."""
+        finder = stage.fit(ds, progress=scaled(progress, 0.0, 0.85))
+        _, x, u, lengths = ds.concat()
+        z = np.hstack([x, u])
+        labels = np.concatenate(finder.labels_)
+        progress(0.85, "equilibria and stability")
+        regimes, inputs = self._regimes(ds, finder, z, labels)
+        progress(0.93, "learning switching surfaces")
+        surfaces = (clone(self.guards) if self.guards else SwitchingSurfaces()).fit(
+            z, labels, lengths, list(ds.variable_names), units=dict(ds.units)
+        )
+        for regime, u_typ in zip(regimes, inputs, strict=True):
+            place_equilibria(surfaces.guards_, [regime], ds.variable_names, u_typ)
+        return finder, surfaces, self._model(ds, finder, surfaces, regimes, z, labels)
+
+    def _refit(
+        self, ds: Dataset, finder: RegimeFinder, validated: HybridModel, progress: ProgressCallback
+    ) -> tuple[RegimeFinder, SwitchingSurfaces, HybridModel] | None:
+        """The model refitted on all data with the number of regimes and the library the
+        training part chose; None (keep the validated model) when that fit fails."""
+        # the training part's regimes, decoded on every row and refined there
+        fixed = copy.deepcopy(finder).set_params(n_regimes=finder.n_regimes_, warm_start=True)
+        try:
+            done = self._identify(ds, fixed, progress)
+        except FitError as exc:
+            validated.metadata["notes"].append(
+                f"the model fitted on the training part is kept: refitting it on all data "
+                f"failed ({exc})"
+            )
+            return None
+        _, _, model = done
+        model.validation = validated.validation
+        model.selection = validated.selection
+        model.metadata["options"] = validated.metadata["options"]
+        n_test = len(self.test_.runs) if len(ds.runs) >= 2 else 0
+        model.metadata["notes"].append(
+            f"number of regimes and library chosen, and validation figures measured, on the "
+            f"training part ({len(ds.runs) - n_test} of {len(ds.runs)} runs"
+            f"{'' if n_test else ', the head of the run'}); the model written was then fitted "
+            f"on all data with {finder.n_regimes_} regime(s)"
+        )
+        return done
+
+    def _keep(self, ds, finder, surfaces, model, labels: dict[str, np.ndarray]) -> None:
+        """Set the learnt attributes (``labels``: per run name, or empty to take the
+        finder's labels of ``ds``)."""
+        fitted = [r.name for r in ds.runs] if not labels else [r.name for r in self.train_.runs]
+        probabilities = dict(zip(fitted, finder.posteriors_, strict=True))
+        if not labels:
+            labels = {r.name: lab for r, lab in zip(ds.runs, finder.labels_, strict=True)}
+        else:  # the held-out part of the data, decoded
+            names = [r.name for r in self.test_.runs]
+            for name, post in zip(names, finder.predict_proba(self.test_), strict=True):
+                probabilities[name] = (
+                    np.vstack([probabilities[name], post]) if name in probabilities else post
+                )
+        self.model_ = model
+        self.labels_ = labels_frame(ds, labels, probabilities)
+        self.finder_ = finder
+        self.surfaces_ = surfaces
 
     # ------------------------------------------------------------ stages
     @staticmethod
@@ -213,7 +285,7 @@ class HybridIdentifier(BaseEstimator):
         metadata: dict[str, Any] = {
             "modemap_version": __version__,
             "seed": finder.seed,
-            "options": options_record(finder, surfaces, self.holdout, self.tolerance),
+            "options": {},
             "source": ds.source,
             "notes": list(finder.notes_),
             "switching_inputs": list(finder.switching_inputs_),
@@ -258,28 +330,58 @@ def _merge_labels(labels: dict[str, np.ndarray], test: Dataset, test_labels) -> 
             labels[r.name] = lab
 
 
-def labels_frame(ds: Dataset, labels: dict[str, np.ndarray]) -> pd.DataFrame:
-    """``run, time, regime`` for every input row of ``ds``, in input order.
+def labels_frame(
+    ds: Dataset,
+    labels: dict[str, np.ndarray],
+    probabilities: dict[str, np.ndarray] | None = None,
+) -> pd.DataFrame:
+    """``run, time, regime`` (then ``prob_0 .. prob_{K-1}``) for every input row of ``ds``,
+    in input order.
 
     ``run`` is the run id as found in the data (before any split at gaps).
     When the data were resampled to a uniform step, the rows are the resampled
     samples (the original rows are no longer samples of the model).  A sample
-    without a label gets regime -1.
+    without a label gets regime -1 (and empty probabilities).
+
+    Parameters
+    ----------
+    ds : Dataset
+    labels : dict
+        Run name -> regime per sample.
+    probabilities : dict, optional
+        Run name -> (n_samples, K) regime probabilities per sample.
     """
+    probabilities = probabilities or {}
+    k = max((np.shape(p)[1] for p in probabilities.values()), default=0)
     if ds.resampled or ds.n_rows == 0:
         parts = []
         for r in ds.runs:
             lab = labels.get(r.name)
             reg = np.asarray(lab, dtype=np.int64) if lab is not None else np.full(r.n_samples, -1)
-            parts.append(pd.DataFrame({"run": r.origin, "time": r.time, "regime": reg}))
+            part = pd.DataFrame({"run": r.origin, "time": r.time, "regime": reg})
+            prob = _probabilities(probabilities.get(r.name), r.n_samples, k)
+            for j in range(k):
+                part[f"prob_{j}"] = prob[:, j]
+            parts.append(part)
         return pd.concat(parts, ignore_index=True)
     run = np.full(ds.n_rows, "", dtype=object)
     time = np.full(ds.n_rows, np.nan)
     regime = np.full(ds.n_rows, -1, dtype=np.int64)
+    prob = np.full((ds.n_rows, k), np.nan)
     for r in ds.runs:
         lab = labels.get(r.name)
         run[r.index] = r.origin
         time[r.index] = r.time
         if lab is not None and len(lab) == r.n_samples:
             regime[r.index] = np.asarray(lab, dtype=np.int64)
-    return pd.DataFrame({"run": run.astype(str), "time": time, "regime": regime})
+        prob[r.index] = _probabilities(probabilities.get(r.name), r.n_samples, k)
+    frame = pd.DataFrame({"run": run.astype(str), "time": time, "regime": regime})
+    for j in range(k):
+        frame[f"prob_{j}"] = prob[:, j]
+    return frame
+
+
+def _probabilities(values: np.ndarray | None, n: int, k: int) -> np.ndarray:
+    if values is None or np.shape(values) != (n, k):
+        return np.full((n, k), np.nan)
+    return np.asarray(values, dtype=np.float64)

@@ -27,6 +27,8 @@ from modemap.fit.statistics import GramStats, accumulate, accumulate_by_label
 from modemap.fit.uncertainty import block_bootstrap
 from modemap.model.equilibria import find_equilibria
 from modemap.model.hybrid import RegimeModel
+from modemap.regimes.rows import Rows
+from modemap.regimes.selection import Windows, library_criteria
 from modemap.terms.equations import format_equations
 from modemap.terms.library import TermLibrary
 
@@ -112,14 +114,9 @@ class LocalDynamics(BaseEstimator):
             raise DataError(f"LocalDynamics.fit expects a Dataset, got {type(ds).__name__}")
         spec = SparseLocalModel() if self.local_model is None else self.local_model
         reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
-        local = spec.bind(ds.variable_names, n_states=ds.n_states, form=self.form)
+        local, fit = self._best_library(spec, ds, reg)
         library = local.library
-        if reg.n_samples <= library.n_terms_:
-            raise FitError(
-                f"{ds.source}: {reg.n_samples} samples for {library.n_terms_} candidate terms; "
-                "lower the degree or give more data"
-            )
-        fit = local.fit(self._statistics(local, reg))
+        spec = local.spec
         self._set_results(ds, reg, library, fit)
         if self.n_bootstrap and isinstance(spec, SparseLocalModel):
             boot = block_bootstrap(
@@ -136,6 +133,32 @@ class LocalDynamics(BaseEstimator):
             )
             self.inclusion_ = boot["inclusion"]
         return self
+
+    def _best_library(self, spec: LocalModel, ds: Dataset, reg: RegressionData) -> tuple:
+        """The local model at the library order (among those the rows can support) that the
+        regime stage's criterion prefers (:func:`modemap.regimes.selection.library_criteria`),
+        and its fit."""
+        n = reg.n_samples
+        locals_ = [
+            spec.bind(ds.variable_names, n_states=ds.n_states, form=self.form, degree=d)
+            for d in spec.candidate_degrees()
+        ]
+        locals_ = [local for local in locals_ if n > local.library.n_terms_]
+        if not locals_:
+            raise FitError(
+                f"{ds.source}: {n} samples are too few for the candidate terms; "
+                "lower the degree or give more data"
+            )
+        local = locals_[0]
+        if len(locals_) > 1:
+            rows = Rows.of(reg.Z, reg.Y, reg.lengths, reg.time)
+            if self.form == "discrete":
+                windows = Windows(rows, rows.Y, 1, integral=False)
+            else:
+                h = max(1, int(reg.derivative.get("window", 3) or 3) // 3)
+                windows = Windows(rows, rows.Z[:, : rows.n_states], h, integral=True)
+            local = locals_[int(np.argmin(library_criteria(locals_, windows)))]
+        return local, local.fit(self._statistics(local, reg))
 
     @staticmethod
     def _statistics(local: BoundLocalModel, reg: RegressionData) -> GramStats | list[GramStats]:

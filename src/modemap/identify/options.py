@@ -25,7 +25,8 @@ OPTION_DEFAULTS: dict[str, Any] = {
     "max_regimes": 6,
     "form": "continuous",
     "model": "sparse",
-    "degree": 2,
+    "degree": "auto",
+    "max_degree": 3,
     "custom_terms": (),
     "threshold": "auto",
     "derivative": "auto",
@@ -33,8 +34,10 @@ OPTION_DEFAULTS: dict[str, Any] = {
     "guard_kind": "auto",
     "guard_degree": 1,
     "holdout": 0.25,
+    "refit": True,
     "tolerance": 0.1,
     "min_dwell": 1,
+    "min_regime_samples": None,
     "seed": 0,
     "engine": "local",
     "scheduler": None,
@@ -48,6 +51,7 @@ def _local_model(o: dict[str, Any]) -> LocalModel:
         raise ParameterError(f"model must be 'sparse' or 'affine', got {o['model']!r}")
     return SparseLocalModel(
         degree=o["degree"],
+        max_degree=o["max_degree"],
         custom=tuple(o["custom_terms"]),
         threshold=o["threshold"],
         final_fit=o["final_fit"],
@@ -84,6 +88,7 @@ def stage_parameters(**options: Any) -> dict[str, Any]:
         local_model=_local_model(o),
         derivative=o["derivative"],
         min_dwell=o["min_dwell"],
+        min_samples=o["min_regime_samples"],
         seed=o["seed"],
         engine=o["engine"],
         scheduler=o["scheduler"],
@@ -93,6 +98,7 @@ def stage_parameters(**options: Any) -> dict[str, Any]:
         "regimes": finder,
         "guards": guards,
         "holdout": o["holdout"],
+        "refit": o["refit"],
         "tolerance": o["tolerance"],
     }
 
@@ -102,12 +108,13 @@ def options_record(
 ) -> dict[str, Any]:
     """The flat options a fit ran with, read off its fitted stages (sorted by name), as the
     model file's ``metadata.options`` records them."""
-    local = finder.local_model_.spec
+    local = finder.local_model if finder.local_model is not None else SparseLocalModel()
     sparse = isinstance(local, SparseLocalModel)
     engine = finder.engine if isinstance(finder.engine, str) else finder.engine.name
     record = {
         "custom_terms": list(local.custom) if sparse else [],
-        "degree": int(local.degree) if sparse else 1,
+        "degree": local.degree if sparse else 1,
+        "max_degree": int(local.max_degree) if sparse else 1,
         "derivative": finder.derivative,
         "engine": engine,
         "final_fit": local.final_fit,
@@ -117,6 +124,7 @@ def options_record(
         "holdout": holdout,
         "max_regimes": finder.max_regimes,
         "min_dwell": finder.min_dwell,
+        "min_regime_samples": finder.min_samples,
         "model": "affine" if isinstance(local, AffineLocalModel) else "sparse",
         "n_regimes": finder.n_regimes,
         "scheduler": finder.scheduler,

@@ -27,8 +27,8 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from modemap.fit.statistics import GramStats, accumulate_by_label
-from modemap.regimes.likelihood import location_density, path_log_prob, regime_log_likelihood
-from modemap.regimes.viterbi import viterbi_runs
+from modemap.regimes.likelihood import path_log_prob, regime_log_likelihood
+from modemap.regimes.viterbi import forward_backward, viterbi_runs
 
 __all__ = ["Decoded", "RunBlock", "decode_blocks", "split_blocks", "stats_by_label"]
 
@@ -112,6 +112,7 @@ class Decoded(NamedTuple):
     path: np.ndarray
     log_prob: float
     current_log_prob: float
+    confident: np.ndarray  # rows whose regime on the path the dynamics alone decide
 
 
 def _block_decode(
@@ -122,21 +123,29 @@ def _block_decode(
     covariances: np.ndarray,
     log_start: np.ndarray,
     log_trans: np.ndarray,
-    location: tuple[float, np.ndarray, np.ndarray] | None,
+    terms: Sequence[Any],
+    margin: float,
 ) -> Decoded:
     """Task: emission log-likelihoods of one block, its runs' Viterbi paths and, with
     ``current``, the joint log-probability of those labels."""
     block, current = item
     log_em = regime_log_likelihood(library, block.Z, block.Y, coefs, covariances)
-    if location is not None:
-        weight, means, chols = location
-        log_em += weight * location_density(block.Z[:, : block.Y.shape[1]], means, chols)
+    if margin < 1.0 and log_em.shape[1] > 1:  # the regime probabilities of the dynamics alone
+        _, posterior = forward_backward(log_em, block.lengths, log_start, log_trans)
+    else:
+        posterior = None
+    for term in terms:
+        log_em += term.log_prob(block.Z, block.Y.shape[1])
     path, log_prob = viterbi_runs(log_em, block.lengths, log_start, log_trans)
     score = float("nan")
     if current is not None and current.size and current.min() >= 0:
         cur = current.astype(np.int64)
         score = path_log_prob(log_em, cur, block.lengths, log_start, log_trans)
-    return Decoded(compact(path), float(log_prob), score)
+    if posterior is None:
+        confident = np.zeros(path.size, dtype=bool)
+    else:
+        confident = posterior[np.arange(path.size), path] > margin
+    return Decoded(compact(path), float(log_prob), score, confident)
 
 
 def decode_blocks(
@@ -148,8 +157,9 @@ def decode_blocks(
     chain: tuple[np.ndarray, np.ndarray],
     *,
     current: Sequence[np.ndarray] | None = None,
-    location: tuple[float, np.ndarray, np.ndarray] | None = None,
-) -> tuple[np.ndarray, float, float]:
+    terms: Sequence[Any] = (),
+    margin: float = 2.0,
+) -> tuple[np.ndarray, float, float, np.ndarray]:
     """Viterbi decoding of every run under per-regime residual models, a map over blocks.
 
     Parameters
@@ -165,8 +175,14 @@ def decode_blocks(
         Markov chain of the regimes (see :func:`modemap.regimes.viterbi.viterbi`).
     current : sequence of ndarray, optional
         Current labels of each block; their joint log-probability is returned as well.
-    location : (weight, means (K, d), Cholesky factors (K, d, d)), optional
-        Adds ``weight`` times a Gaussian log-density of where the states sit.
+    terms : sequence, default ()
+        Further emission terms: objects with ``log_prob(Z, n_states) -> (n, K)``
+        (:class:`~modemap.regimes.likelihood.LocationTerm`,
+        :class:`~modemap.regimes.likelihood.SurfaceTerm`).
+    margin : float, default 2 (none)
+        Below 1: a row is confident when the probability of its regime on the path, given
+        the residual likelihoods and the chain alone (forward-backward), exceeds
+        ``margin``.
 
     Returns
     -------
@@ -176,6 +192,8 @@ def decode_blocks(
         Sum over blocks of the best joint log-probabilities.
     current_log_prob : float
         Sum over blocks of the joint log-probability of ``current`` (NaN without it).
+    confident : ndarray of bool
+        Rows whose regime on the path the residual likelihoods decide (see ``margin``).
     """
     cur = [None] * len(blocks) if current is None else [compact(c) for c in current]
     log_start, log_trans = chain
@@ -187,9 +205,11 @@ def decode_blocks(
         covariances=np.asarray(covariances, dtype=np.float64),
         log_start=np.asarray(log_start, dtype=np.float64),
         log_trans=np.asarray(log_trans, dtype=np.float64),
-        location=location,
+        terms=tuple(terms),
+        margin=float(margin),
     )
     path = np.concatenate([d.path.astype(np.int64) for d in out])
     log_prob = float(sum(d.log_prob for d in out))
     current_log_prob = float(sum(d.current_log_prob for d in out))
-    return path, log_prob, current_log_prob
+    confident = np.concatenate([d.confident for d in out])
+    return path, log_prob, current_log_prob, confident

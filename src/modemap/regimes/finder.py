@@ -41,7 +41,7 @@ import numpy as np
 import pandas as pd
 from sklearn.base import BaseEstimator
 
-from modemap._exceptions import FitError
+from modemap._exceptions import FitCancelled, FitError
 from modemap._params import BOOLEAN, SEQUENCE_OF_STR, Interval, Options, check_params
 from modemap._progress import ProgressCallback, null_progress, scaled
 from modemap.data.dataset import Dataset
@@ -54,15 +54,11 @@ from modemap.regimes.likelihood import regime_log_likelihood, residuals
 from modemap.regimes.proposal import propose
 from modemap.regimes.refine import RefineResult, RefineSettings, refine
 from modemap.regimes.rows import Rows, RowWork
+from modemap.regimes.search import split_starts
 from modemap.regimes.segments import segment_derivatives
-from modemap.regimes.selection import (
-    count_parameters,
-    holdout_split,
-    information_criterion,
-    select_regimes,
-)
-from modemap.regimes.summary import statistics
-from modemap.regimes.viterbi import viterbi_runs
+from modemap.regimes.selection import Candidate, Windows, choose, score
+from modemap.regimes.summary import chain_statistics, statistics
+from modemap.regimes.viterbi import forward_backward, viterbi_runs
 from modemap.regimes.windows import window_coefficients, window_lengths
 
 __all__ = ["FitContext", "RegimeFinder"]
@@ -81,12 +77,17 @@ class FitContext:
     Attributes
     ----------
     local : BoundLocalModel
-        The local model with its library for these variables and this form.
+        The local model with its library for these variables and this form (at the
+        library order the regimes are searched with, or the one chosen).
     settings : RefineSettings
         How the refinement fits, scores and relabels.
     engine : Engine
         Where per-block work runs.
     state_names : list of str
+    variables : list of str
+        States then inputs.
+    exclude : list of str
+        Inputs no term may use (they select the regime).
     derivative : dict
         Derivative settings actually used (continuous form).
     notes : list of str
@@ -97,13 +98,30 @@ class FitContext:
     settings: RefineSettings
     engine: Engine
     state_names: list[str]
+    variables: list[str]
+    exclude: list[str]
     derivative: dict[str, Any]
     notes: list[str] = field(default_factory=list)
     _work: tuple[Any, Any, RowWork] | None = None
+    windows: tuple[Any, Windows] | None = None  # the common targets of a set of rows
 
     @property
     def library(self) -> Any:
         return self.local.library
+
+    def at_degree(self, degree: int | None) -> FitContext:
+        """The same context with the local model at another library order."""
+        if degree == self.local.degree:
+            return self
+        local = self.local.spec.bind(
+            self.variables,
+            n_states=len(self.state_names),
+            form=self.local.form,
+            exclude=self.exclude,
+            degree=degree,
+        )
+        settings = dataclasses.replace(self.settings, local=local)
+        return dataclasses.replace(self, local=local, settings=settings)
 
     def work(self, rows: Rows) -> RowWork:
         """``rows`` bound to the engine, placed there once per set of rows."""
@@ -140,8 +158,17 @@ class RegimeFinder(BaseEstimator):
     seed : int, default 0
     location_weight : float, default 0.0
         Weight of the Gaussian term on where the state sits in the relabelling.
-    covariance : {"tied", "full"}, default "tied"
-        Residual covariance shared by all regimes, or one per regime.
+    surface_weight : float, default 1.0
+        Weight of the term on which side of the switching surfaces the variables are, in
+        the relabelling (a memoryless classifier of the rows the dynamics place with
+        confidence, :class:`~modemap.regimes.likelihood.SurfaceTerm`; it places the switches
+        where the dynamics of two regimes agree).  0 leaves it out.  New data are decoded
+        with it too.  It is not part of the likelihood that compares candidates.
+    covariance : {"auto", "tied", "full"}, default "auto"
+        Residual covariance shared by all regimes, or one per regime; "auto": shared in
+        continuous form (the residuals of the targets are mostly the sensors' noise, the same
+        in every regime), one per regime in discrete form (the residual is the process's
+        own noise, which switches with the regime as in the usual Markov-switching model).
     switching_inputs : "auto", str, sequence of str or None, default "auto"
         Inputs that select the regime rather than enter its equations; "auto": every
         input with exactly two distinct values.
@@ -151,6 +178,10 @@ class RegimeFinder(BaseEstimator):
         Where per-run work runs (:mod:`modemap.engine`).
     scheduler : str or None, default None
         Dask scheduler address.
+    warm_start : bool, default False
+        When fitted already with the same number of regimes (and variables), start from
+        that fit: every row decoded with its models, then refined, without a new search
+        (scikit-learn's meaning of the word).
     selection_samples : int, default 200_000
         With ``n_regimes="auto"`` on longer data, K is chosen on about this many rows taken
         as contiguous windows spread over every run; the chosen models are then refined on
@@ -170,6 +201,12 @@ class RegimeFinder(BaseEstimator):
     library_ : fitted TermLibrary
     local_model_ : BoundLocalModel
     regression_ : RegressionData
+    posteriors_ : list of ndarray of shape (n_samples, K)
+        Each sample's regime probabilities given all the data of its run (forward-backward
+        under the final model, on the common targets), one array per run.
+    transmat_ : ndarray of shape (K, K)
+    degree_ : int or None
+        The library order chosen.
     notes_ : list of str
     convergence_ : ConvergenceRecord of the final refinement
     covariances_ : ndarray of shape (K, m, m)
@@ -193,12 +230,14 @@ class RegimeFinder(BaseEstimator):
         "min_dwell": [Interval(int, 1, None)],
         "seed": [Interval(int, 0, 2**32 - 1)],
         "location_weight": [Interval(float, 0, None)],
-        "covariance": [Options(("tied", "full"))],
+        "surface_weight": [Interval(float, 0, None)],
+        "covariance": [Options(("auto", "tied", "full"))],
         "switching_inputs": [str, SEQUENCE_OF_STR, None],
         "resegment": [BOOLEAN],
         "engine": [Options(ENGINES), Engine],
         "scheduler": [str, None],
         "selection_samples": [Interval(int, 1, None)],
+        "warm_start": [BOOLEAN],
     }
 
     def __init__(
@@ -216,12 +255,14 @@ class RegimeFinder(BaseEstimator):
         min_dwell: int = 1,
         seed: int = 0,
         location_weight: float = 0.0,
-        covariance: str = "tied",
+        surface_weight: float = 1.0,
+        covariance: str = "auto",
         switching_inputs: str | Sequence[str] | None = "auto",
         resegment: bool = True,
         engine: Any = "local",
         scheduler: str | None = None,
         selection_samples: int = 200_000,
+        warm_start: bool = False,
     ) -> None:
         self.n_regimes = n_regimes
         self.max_regimes = max_regimes
@@ -235,12 +276,19 @@ class RegimeFinder(BaseEstimator):
         self.min_dwell = min_dwell
         self.seed = seed
         self.location_weight = location_weight
+        self.surface_weight = surface_weight
         self.covariance = covariance
         self.switching_inputs = switching_inputs
         self.resegment = resegment
         self.engine = engine
         self.scheduler = scheduler
         self.selection_samples = selection_samples
+        self.warm_start = warm_start
+
+    def _covariance(self) -> str:
+        if self.covariance != "auto":
+            return self.covariance
+        return "full" if self.form == "discrete" else "tied"
 
     def _local_spec(self) -> LocalModel:
         return SparseLocalModel() if self.local_model is None else self.local_model
@@ -302,67 +350,217 @@ class RegimeFinder(BaseEstimator):
         )
         min_samples = self.min_samples
         if min_samples is None:
-            min_samples = default_min_samples(len(local.terms), ds.n_states)
+            min_samples = default_min_samples(len(local.terms), self.n_regimes != "auto")
         settings = RefineSettings(
             local=local,
             sticky=float(self.sticky),
             location_weight=float(self.location_weight),
-            covariance=self.covariance,
+            surface_weight=float(self.surface_weight),
+            covariance=self._covariance(),
             min_samples=int(min_samples),
             min_dwell=int(self.min_dwell),
             max_iter=int(self.max_iter),
         )
-        derivative = dict(reg.derivative or {})
-        return FitContext(local, settings, engine, list(ds.state_names), derivative)
+        return FitContext(
+            local,
+            settings,
+            engine,
+            list(ds.state_names),
+            list(ds.variable_names),
+            list(self.switching_inputs_),
+            dict(reg.derivative or {}),
+        )
 
     def _fit(self, ds: Dataset, progress: ProgressCallback, engine: Engine) -> RegimeFinder:
         reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
         ctx = self._context(ds, reg, engine)
-        rows = Rows.of(reg.Z, reg.Y, reg.lengths, reg.time)
+        # the common targets: no regime information (continuous form: derivatives never
+        # taken across a step of a stepped input, as for new data in predict)
+        rows = Rows.of(reg.Z, self._common_targets(reg), reg.lengths, reg.time)
         if rows.n_rows < 2:
             raise FitError(f"{ds.source}: too few samples to find regimes ({rows.n_rows})")
         integral = ctx.local.integral_final_fit
         overall, progress = progress, scaled(progress, 0.0, 0.95) if integral else progress
-        if self.n_regimes == "auto":
-            result, table = self._choose(ctx, rows, progress)
+        if self._warm(ds):
+            chosen, table = self._from_fitted(ctx, rows, ds, progress)
         else:
-            result = self._fit_k(ctx, rows, int(self.n_regimes), scaled(progress, 0.0, 1.0))
-            table = self._single_row(result, rows.n_states, rows.n_rows)
+            chosen, table = self._choose(ctx, rows, progress)
+        ctx = ctx.at_degree(chosen.degree)
+        result = chosen.result
         if integral and result.labels.size == rows.n_rows:
             overall(0.95, "estimating the coefficients again on the integral form")
             result = self._integral_refit(ctx, rows, result)
         self._set_results(ds, reg, ctx, result, table)
+        self._soft_pass(ctx, rows, result)
         overall(1.0, f"{self.n_regimes_} regime(s) found")
         return self
 
+    def _warm(self, ds: Dataset) -> bool:
+        """Start from the regimes of the last fit (``warm_start``)?"""
+        return (
+            bool(self.warm_start)
+            and hasattr(self, "local_fits_")
+            and self.n_regimes == self.n_regimes_
+            and tuple(ds.variable_names) == tuple(self.variables_)
+        )
+
+    def _from_fitted(
+        self, ctx: FitContext, rows: Rows, ds: Dataset, progress: ProgressCallback
+    ) -> tuple[Candidate, pd.DataFrame]:
+        """``warm_start``: every row decoded with the last fit's models, then refined."""
+        log_em, reg = self._emissions(ds)
+        k = self.n_regimes_
+        with np.errstate(divide="ignore"):
+            log_trans = np.log(self.transmat_)
+        labels, _ = viterbi_runs(log_em, np.asarray(reg.lengths), np.full(k, -np.log(k)), log_trans)
+        ctx = ctx.at_degree(self.degree_)
+        result = self._refine(ctx, rows, labels, k, progress, settle_dense=False)
+        if self.form == "continuous" and self.resegment and result.n_regimes > 1:
+            result = self._resegment(ctx, rows, result, progress)
+        candidate = self._score(ctx, rows, Candidate(k, ctx.local.degree, ctx.local, result))
+        table, chosen, _ = choose([candidate], self._windows(ctx, rows))
+        return chosen, table
+
+    def _common_targets(self, reg: Any) -> np.ndarray:
+        Y = np.asarray(reg.Y, dtype=np.float64)
+        if self.form == "continuous" and self.resegment:
+            return self.segment_targets(reg, np.zeros(Y.shape[0], dtype=np.int64))
+        return Y
+
+    def _windows(self, ctx: FitContext, rows: Rows) -> Windows:
+        """The common targets the candidates are scored on (:class:`.selection.Windows`),
+        once per set of rows: continuous form, windows of a third of the derivative's
+        smoothing window (the noise sets both), at least one interval; discrete form, the
+        rows."""
+        cached = ctx.windows
+        if cached is None or cached[0] is not rows.Z:
+            if self.form == "discrete":
+                windows = Windows(rows, rows.Y, 1, integral=False)
+            else:
+                h = max(1, int(ctx.derivative.get("window", 3) or 3) // 3)
+                windows = Windows(rows, rows.Z[:, : rows.n_states], h, integral=True)
+            ctx.windows = cached = (rows.Z, windows)
+        return cached[1]
+
+    def _score(self, ctx: FitContext, rows: Rows, candidate: Candidate) -> Candidate:
+        return score(candidate, self._windows(ctx, rows), sticky=float(self.sticky))
+
     def _choose(
         self, ctx: FitContext, rows: Rows, progress: ProgressCallback
-    ) -> tuple[RefineResult, pd.DataFrame]:
-        """``n_regimes="auto"``: the selection table and the chosen K's fit on all rows."""
+    ) -> tuple[Candidate, pd.DataFrame]:
+        """Search the numbers of regimes and library orders; the chosen candidate on all rows.
+
+        ``n_regimes="auto"``: K = 1, 2, ... by the nested search (:mod:`.search`), stopped
+        when two numbers in a row score worse than the best so far; a given K: that K only
+        (built up through the smaller ones when a direct search loses regimes).  Every K is
+        tried at every library order of the local model (:mod:`.selection`).
+        """
         min_samples = ctx.settings.min_samples
-        kmax = max(1, min(int(self.max_regimes), rows.n_rows // min_samples))
         sub = self._selection_rows(rows.lengths, min_samples)
-
-        def fit_k(part: Rows, k: int, step: ProgressCallback) -> RefineResult:
-            return self._fit_k(ctx, part, k, step)
-
-        chosen_rows = rows if sub is None else rows.subset(sub[0], sub[1])
-        table, results = select_regimes(
-            fit_k, ctx.library, chosen_rows, kmax, progress=scaled(progress, 0.0, 0.8)
-        )
+        part = rows if sub is None else rows.subset(sub[0], sub[1])
         if sub is not None:
             ctx.notes.append(
                 f"number of regimes chosen on {int(sub[0].sum())} of {sub[0].size} samples "
                 f"({sub[1].size} contiguous windows); the chosen models were then refined on all"
             )
-        k = int(table.loc[table["chosen"], "K"].iloc[0])
-        step = scaled(progress, 0.8, 0.9)
-        result = self._extend(ctx, rows, results[k], step, all_rows=sub is not None)
-        if result.n_regimes != results[k].n_regimes:  # lost a regime on all rows
-            fresh = self._fit_k(ctx, rows, k, scaled(progress, 0.9, 1.0))
-            if fresh.n_regimes > result.n_regimes:
-                result = fresh
-        return result, table
+        if self.n_regimes == "auto":
+            kmax = max(1, min(int(self.max_regimes), part.n_rows // min_samples))
+            candidates = self._search_auto(ctx, part, kmax, scaled(progress, 0.0, 0.8))
+        else:
+            candidates = self._search_given(
+                ctx, part, int(self.n_regimes), scaled(progress, 0.0, 0.8)
+            )
+        table, chosen, _ = choose(candidates, self._windows(ctx, part))
+        if sub is not None:  # refined on all rows
+            step = scaled(progress, 0.8, 1.0)
+            chosen = self._extend(ctx.at_degree(chosen.degree), rows, chosen, step)
+        return chosen, table
+
+    def _candidates(
+        self, ctx: FitContext, rows: Rows, k: int, found: dict[int | None, RefineResult]
+    ) -> list[Candidate]:
+        """The search's fits of ``k`` regimes at every library order of the local model,
+        scored; from each library's labels, the better score at each order."""
+        out = []
+        for degree in self._local_spec().candidate_degrees():
+            best = None
+            for source, result in found.items():
+                if degree == source:
+                    fit, local = result, ctx.at_degree(degree).local
+                else:
+                    fit, local = self._refit_at(ctx.at_degree(degree), rows, result)
+                candidate = self._score(ctx, rows, Candidate(k, degree, local, fit))
+                if best is None or (not candidate.collapsed, candidate.loglik) > (
+                    not best.collapsed,
+                    best.loglik,
+                ):
+                    best = candidate
+            out.append(best)
+        return out
+
+    def _refit_at(
+        self, ctx: FitContext, rows: Rows, result: RefineResult
+    ) -> tuple[RefineResult, BoundLocalModel]:
+        """``result``'s labels refined briefly with the local model of ``ctx``."""
+        targets = rows if result.targets is None else rows.with_targets(result.targets)
+        brief = dataclasses.replace(ctx, settings=dataclasses.replace(ctx.settings, max_iter=2))
+        fit = self._refine(brief, targets, result.labels, result.n_regimes, null_progress, False)
+        return fit, ctx.local
+
+    def _search_auto(
+        self, ctx: FitContext, rows: Rows, kmax: int, progress: ProgressCallback
+    ) -> list[Candidate]:
+        candidates: list[Candidate] = []
+        previous, best, worse = None, np.inf, 0
+        for k in range(1, kmax + 1):
+            step = scaled(progress, (k - 1) / kmax, k / kmax)
+            try:
+                found = self._fit_k(ctx, rows, k, step, previous)
+            except FitCancelled:
+                raise
+            except FitError:  # no regime left with enough samples: stop adding regimes
+                break
+            result = found[ctx.local.degree]
+            new = self._candidates(ctx, rows, k, found)
+            candidates += new
+            table, _, _ = choose(candidates, self._windows(ctx, rows))
+            here = table["criterion"].to_numpy()[-len(new) :]
+            live = ~table["collapsed"].to_numpy()[-len(new) :]
+            current = float(np.min(here[live])) if live.any() else np.inf
+            worse = 0 if current < best else worse + 1
+            best = min(best, current)
+            if result.n_regimes < k or worse >= 2:
+                break
+            previous = result
+        if not candidates:
+            raise FitError("no number of regimes could be fitted")
+        return candidates
+
+    def _search_given(
+        self, ctx: FitContext, rows: Rows, k: int, progress: ProgressCallback
+    ) -> list[Candidate]:
+        """Exactly ``k`` regimes: a direct search, else built up K = 1, 2, ... by splits."""
+        found = self._fit_k(ctx, rows, k, scaled(progress, 0.0, 0.5))
+        if max(r.n_regimes for r in found.values()) < k:
+            previous = None
+            for j in range(1, k + 1):
+                step = scaled(progress, 0.5 + 0.5 * (j - 1) / k, 0.5 + 0.5 * j / k)
+                built = self._fit_k(ctx, rows, j, step, previous)
+                previous = built[ctx.local.degree]
+                if previous.n_regimes < j:
+                    break
+            if previous.n_regimes == k:
+                found = built
+        found = {d: r for d, r in found.items() if r.n_regimes == k} or found
+        result = max(found.values(), key=lambda r: r.n_regimes)
+        if result.n_regimes < k:
+            why = [n for n in result.notes if "dropped" in n]
+            reason = f" ({why[-1]})" if why else ""
+            raise FitError(
+                f"{k} regimes were asked for, but no fit with {k} could be supported: the best "
+                f"kept {result.n_regimes}{reason}; use fewer regimes or --min-regime-samples"
+            )
+        return self._candidates(ctx, rows, k, found)
 
     def _integral_refit(self, ctx: FitContext, rows: Rows, result: RefineResult) -> RefineResult:
         """The final fits and statistics re-estimated on the integral form (module notes)."""
@@ -394,16 +592,28 @@ class RegimeFinder(BaseEstimator):
         return dataclasses.replace(result, fits=done.fits, stats=done.stats, notes=notes)
 
     def _fit_k(
-        self, ctx: FitContext, rows: Rows, k: int, progress: ProgressCallback
-    ) -> RefineResult:
+        self,
+        ctx: FitContext,
+        rows: Rows,
+        k: int,
+        progress: ProgressCallback,
+        previous: RefineResult | None = None,
+    ) -> dict[int | None, RefineResult]:
         """Proposals then refinement for one number of regimes; the best likelihood wins.
 
-        Three proposals are refined: the HMM on ``[states, motion, inputs]``, the HMM on the
-        residuals of one model fitted to all rows (regimes that differ by their dynamics show
-        up there even where the states overlap), and the HMM over the coefficients of local
-        models fitted on short windows of rows (:mod:`.windows`: regimes that differ only in
-        their dynamics, where the first two can settle on a split by level), when there are
-        at least five windows per regime.
+        The proposals: the HMM on ``[states, motion, inputs]``, the HMM on the residuals of
+        one model fitted to all rows (regimes that differ by their dynamics show up there
+        even where the states overlap), the HMM over the coefficients of local models fitted
+        on short windows of rows (:mod:`.windows`: regimes that differ only in their
+        dynamics, where the first two can settle on a split by level) when there are at
+        least five windows per regime, and, given the fit of ``k - 1`` regimes, that fit
+        with its worst regime cut in two (:mod:`.search`).
+
+        When the local model chooses its library order, every start is refined both with
+        the affine terms and with the library the regimes are searched with: a richer
+        library lets one regime bend over two affine pieces and hides their boundary, while
+        affine regimes cannot follow a field that is nonlinear within a regime.  The best
+        of each is returned, by library order, for the choice of model to judge.
         """
         progress(0.0, f"proposing {k} regime(s)")
         starts = [(self._features(rows), rows.lengths, None)]
@@ -413,67 +623,76 @@ class RegimeFinder(BaseEstimator):
             if sizes.size >= _WINDOWS_PER_REGIME * k:  # enough windows to tell K groups apart
                 coef = window_coefficients(ctx.library, rows.Z, rows.Y, sizes)
                 starts.append((coef, per_run, sizes))
-        best = None
-        for i, (features, runs, sizes) in enumerate(starts):
-            labels = propose(
-                features,
-                runs,
-                k,
-                sticky=float(self.sticky),
-                n_restarts=int(self.n_restarts),
-                seed=int(self.seed),
-            )
-            if sizes is not None:  # one label per window -> one per row
-                labels = np.repeat(labels, sizes)
-            step = scaled(progress, i / len(starts), (i + 1) / len(starts))
-            result = self._refine(ctx, rows, labels, k, step)
-            if best is None or result.loglik > best.loglik:
-                best = result
-        if self.form == "continuous" and self.resegment and best.n_regimes > 1:
-            best = self._resegment(ctx, rows, best, progress)
+        splits = []
+        if previous is not None and previous.n_regimes == k - 1:
+            fitted = rows if previous.targets is None else rows.with_targets(previous.targets)
+            splits = split_starts(ctx.library, fitted, previous, seed=int(self.seed))
+        n_starts = len(starts) + len(splits)
+        # the starts compete on the dynamics; the surface term then places the best's switches
+        stages = [_without_surface(ctx)]
+        if (
+            k > 1
+            and ctx.local.degree not in (None, 1)
+            and 1 in self._local_spec().candidate_degrees()
+        ):
+            stages.insert(0, _without_surface(ctx.at_degree(1)))
+        best: dict[int | None, RefineResult] = {}
+        for i, start in enumerate(starts + splits):
+            labels = start if isinstance(start, np.ndarray) else self._propose(rows, k, start)
+            step = scaled(progress, i / n_starts, (i + 1) / n_starts)
+            for stage in stages:
+                result = self._refine(stage, rows, labels, k, step)
+                degree = stage.local.degree
+                if degree not in best or _better(result, best[degree]):
+                    best[degree] = result
+        for degree, result in best.items():
+            best[degree] = self._place(ctx.at_degree(degree), rows, result, progress)
         return best
+
+    def _propose(self, rows: Rows, k: int, start: tuple) -> np.ndarray:
+        features, runs, sizes = start
+        labels = propose(
+            features,
+            runs,
+            k,
+            sticky=float(self.sticky),
+            n_restarts=int(self.n_restarts),
+            seed=int(self.seed),
+        )
+        return np.repeat(labels, sizes) if sizes is not None else labels
+
+    def _place(
+        self, ctx: FitContext, rows: Rows, result: RefineResult, progress: ProgressCallback
+    ) -> RefineResult:
+        """The search's best fit with its switches placed by the surface term, and its
+        derivatives re-estimated within its stretches (continuous form)."""
+        if self.surface_weight and result.n_regimes > 1:
+            placed = self._refine(ctx, rows, result.labels, result.n_regimes, progress, False)
+            result = placed if placed.n_regimes == result.n_regimes else result
+        if self.form == "continuous" and self.resegment and result.n_regimes > 1:
+            result = self._resegment(ctx, rows, result, progress)
+        return result
 
     def _extend(
         self,
         ctx: FitContext,
         rows: Rows,
-        chosen: RefineResult,
+        chosen: Candidate,
         progress: ProgressCallback,
-        *,
-        all_rows: bool = False,
-    ) -> RefineResult:
-        """Refit the chosen labelling of the training part on all rows.
-
-        With ``all_rows`` (K was chosen on windows of the data, see
-        :meth:`_selection_rows`) every row is decoded with the chosen models first.
-
-        The held-out tails are decoded by Viterbi with the chosen models and chain, and
-        the refinement on all rows starts from those labels.  A fresh proposal with the
-        chosen K could land on another labelling, or lose regimes to hygiene, so that the
-        model returned would not be the one the selection table describes.  When
-        this refit still loses a regime (hygiene on all rows), :meth:`fit` also tries
-        a fresh fit of the chosen K and keeps the one with more regimes.
-        """
-        coefs = [np.asarray(f.coef) for f in chosen.fits]
-        if all_rows:  # K was chosen on windows: decode every row with the chosen models
-            log_em = regime_log_likelihood(ctx.library, rows.Z, rows.Y, coefs, chosen.covariances)
-            labels, _ = viterbi_runs(log_em, rows.lengths, chosen.log_start, chosen.log_trans)
-            held = np.zeros(rows.n_rows, dtype=bool)
-        else:
-            held = holdout_split(rows.lengths)
-            labels = np.empty(rows.n_rows, dtype=np.int64)
-            labels[~held] = chosen.labels
-        if held.any():
-            tails = rows.subset(held)
-            log_em = regime_log_likelihood(ctx.library, tails.Z, tails.Y, coefs, chosen.covariances)
-            path, _ = viterbi_runs(log_em, tails.lengths, chosen.log_start, chosen.log_trans)
-            labels[held] = path
-        k = chosen.n_regimes
-        # labels decoded on every row come from settled models: no dense settling phase
-        result = self._refine(ctx, rows, labels, k, progress, settle_dense=not all_rows)
-        if self.form == "continuous" and self.resegment and result.n_regimes > 1:
-            result = self._resegment(ctx, rows, result, progress)
-        return result
+    ) -> Candidate:
+        """The chosen candidate (fitted on windows of the rows, see :meth:`_selection_rows`)
+        refined on all rows: every row decoded with the chosen models, then refined."""
+        result = chosen.result
+        coefs = [np.asarray(f.coef) for f in result.fits]
+        log_em = regime_log_likelihood(
+            chosen.local.library, rows.Z, rows.Y, coefs, result.covariances
+        )
+        labels, _ = viterbi_runs(log_em, rows.lengths, result.log_start, result.log_trans)
+        # labels decoded from settled models: no dense settling phase
+        extended = self._refine(ctx, rows, labels, result.n_regimes, progress, settle_dense=False)
+        if self.form == "continuous" and self.resegment and extended.n_regimes > 1:
+            extended = self._resegment(ctx, rows, extended, progress)
+        return dataclasses.replace(chosen, local=ctx.local, result=extended)
 
     def _selection_rows(
         self, lengths: np.ndarray, min_samples: int
@@ -514,15 +733,25 @@ class RegimeFinder(BaseEstimator):
         """Re-estimate derivatives within regime stretches and refine again (twice at most).
 
         See :mod:`modemap.regimes.segments`.  The targets used by the final refinement are
-        kept in ``result.targets`` so that the fitted models and the likelihood agree.
+        kept in ``result.targets`` so that the fitted models and the likelihood agree.  A
+        pass is kept only when it keeps every regime and scores at least as well on the
+        common targets (:mod:`.selection`): with labels cut into many short stretches, the
+        derivatives re-estimated within them are noise, and a refinement on them can lose
+        the regimes it started from.
         """
+        k = result.n_regimes
+        base = self._score(ctx, rows, Candidate(k, ctx.local.degree, ctx.local, result)).loglik
         for _ in range(2):
             y2 = _segment(rows, result.labels, ctx.derivative)
-            k = result.n_regimes
             new = self._refine(ctx, rows.with_targets(y2), result.labels, k, progress)
             new.targets = y2
+            if new.n_regimes < k:
+                break
+            score = self._score(ctx, rows, Candidate(k, ctx.local.degree, ctx.local, new)).loglik
+            if score < base:
+                break
             unchanged = np.array_equal(new.labels, result.labels)
-            result = new
+            result, base = new, score
             if unchanged:
                 break
         return result
@@ -590,36 +819,16 @@ class RegimeFinder(BaseEstimator):
         The regression rows of ``ds`` are built with the same form and derivative
         settings as in :meth:`fit` (continuous form: derivatives never taken across a
         step of a stepped input, see :mod:`modemap.regimes.segments`); each run is
-        decoded by Viterbi with the fitted residual likelihoods and transition matrix
-        (the optional location term is not used: it belongs to the training labels).
+        decoded by Viterbi with the fitted residual likelihoods, the further emission terms
+        of the final fit (location, surface) and the transition matrix.
 
         Returns
         -------
         list of ndarray
             One label array per run of ``ds``.
         """
-        from sklearn.utils.validation import check_is_fitted
-
-        check_is_fitted(self, "local_fits_")
-        fitted = tuple(self.library_.variables_)
-        if tuple(ds.variable_names) != fitted:
-            raise FitError(
-                f"{ds.source}: variables {', '.join(ds.variable_names)} differ from the fitted "
-                f"ones ({', '.join(fitted)})"
-            )
-        reg = prepare_regression(ds, form=self.form, derivative=self.regression_.derivative)
+        log_em, reg = self._emissions(ds)
         k = self.n_regimes_
-        Y = np.asarray(reg.Y, dtype=np.float64)
-        if self.form == "continuous" and self.resegment:
-            # no labels yet, but the steps of the inputs are known: no derivative across them
-            Y = self.segment_targets(reg, np.zeros(Y.shape[0], dtype=np.int64))
-        log_em = regime_log_likelihood(
-            self.library_,
-            np.asarray(reg.Z, dtype=np.float64),
-            Y,
-            [np.asarray(f.coef) for f in self.local_fits_],
-            self.covariances_,
-        )
         with np.errstate(divide="ignore"):
             log_trans = np.log(self.transmat_)
         # (decoding again after re-estimating the derivatives within the decoded stretches,
@@ -627,19 +836,48 @@ class RegimeFinder(BaseEstimator):
         path, _ = viterbi_runs(log_em, np.asarray(reg.lengths), np.full(k, -np.log(k)), log_trans)
         return _labels_per_sample(np.asarray(path), np.asarray(reg.sample_index), ds)
 
-    @staticmethod
-    def _single_row(result: RefineResult, m: int, n: int) -> pd.DataFrame:
-        n_params = count_parameters(result, m)
-        row = {
-            "K": result.n_regimes,
-            "n_regimes": result.n_regimes,
-            "loglik": result.loglik,
-            "n_params": n_params,
-            "bic": information_criterion(result.loglik, n_params, n),
-            "holdout_rmse": float("nan"),
-            "chosen": True,
-        }
-        return pd.DataFrame([row])
+    def predict_proba(self, ds: Dataset) -> list[np.ndarray]:
+        """Each sample's probability of each regime given all of its run (forward-backward
+        with the emissions and chain of :meth:`predict`).
+
+        Returns
+        -------
+        list of ndarray of shape (n_samples, n_regimes)
+            One per run of ``ds``; a sample without a regression row (discrete form: a
+            run's last sample) takes that of the sample before it.
+        """
+        log_em, reg = self._emissions(ds)
+        k = self.n_regimes_
+        with np.errstate(divide="ignore"):
+            log_trans = np.log(self.transmat_)
+        _, post = forward_backward(
+            log_em, np.asarray(reg.lengths), np.full(k, -np.log(k)), log_trans
+        )
+        labels = _labels_per_sample(np.argmax(post, axis=1), np.asarray(reg.sample_index), ds)
+        return _rows_per_sample(post, np.asarray(reg.sample_index), labels)
+
+    def _emissions(self, ds: Dataset) -> tuple[np.ndarray, Any]:
+        """Emission log-likelihoods (n_rows, K) of ``ds``'s regression rows, and the rows."""
+        from sklearn.utils.validation import check_is_fitted
+
+        check_is_fitted(self, "local_fits_")
+        fitted = tuple(self.variables_)
+        if tuple(ds.variable_names) != fitted:
+            raise FitError(
+                f"{ds.source}: variables {', '.join(ds.variable_names)} differ from the fitted "
+                f"ones ({', '.join(fitted)})"
+            )
+        reg = prepare_regression(ds, form=self.form, derivative=self.regression_.derivative)
+        Y = np.asarray(reg.Y, dtype=np.float64)
+        if self.form == "continuous" and self.resegment:
+            # no labels yet, but the steps of the inputs are known: no derivative across them
+            Y = self.segment_targets(reg, np.zeros(Y.shape[0], dtype=np.int64))
+        Z = np.asarray(reg.Z, dtype=np.float64)
+        coefs = [np.asarray(f.coef) for f in self.local_fits_]
+        log_em = regime_log_likelihood(self.library_, Z, Y, coefs, self.covariances_)
+        for term in self.emission_terms_:
+            log_em += term.log_prob(Z, Y.shape[1])
+        return log_em, reg
 
     def _set_results(
         self, ds: Dataset, reg: Any, ctx: FitContext, result: RefineResult, table: pd.DataFrame
@@ -651,14 +889,20 @@ class RegimeFinder(BaseEstimator):
         self.labels_ = full
         self.regression_labels_ = labels
         self.n_regimes_ = k
+        self.order_ = order
         self.local_fits_ = [result.fits[i] for i in order]
         self.regime_stats_ = [result.stats[i] for i in order]
         self.covariances_ = result.covariances[order]
+        self.emission_terms_ = tuple(term.reordered(order) for term in result.terms)
         self.selection_ = table
         self.statistics_ = statistics(full, k, float(ds.step) if np.isfinite(ds.step) else 1.0)
         self.transmat_ = trans / trans.sum(axis=1, keepdims=True)
+        step = float(ds.step) if np.isfinite(ds.step) else 1.0
+        self.statistics_.update(chain_statistics(self.transmat_, full, step))
         self.library_ = ctx.library
+        self.variables_ = list(ctx.variables)
         self.local_model_ = ctx.local
+        self.degree_ = ctx.local.degree
         if result.targets is not None and result.targets.shape == np.shape(reg.Y):
             reg = dataclasses.replace(reg, Y=result.targets)
         self.regression_ = reg
@@ -669,6 +913,52 @@ class RegimeFinder(BaseEstimator):
                 f"refinement stopped after {result.monitor.iterations} iterations "
                 f"with {result.monitor.changes[-1]} labels still changing"
             )
+
+    def _soft_pass(self, ctx: FitContext, rows: Rows, result: RefineResult) -> None:
+        """Each sample's regime probabilities under the final model: forward-backward with
+        its emissions on the common targets and its chain, in the reported order of ids,
+        one array per run."""
+        coefs = [np.asarray(f.coef) for f in self.local_fits_]
+        log_em = regime_log_likelihood(self.library_, rows.Z, rows.Y, coefs, self.covariances_)
+        for term in self.emission_terms_:
+            log_em += term.log_prob(rows.Z, rows.n_states)
+        k = self.n_regimes_
+        with np.errstate(divide="ignore"):
+            log_trans = np.log(self.transmat_)
+        _, post = forward_backward(log_em, rows.lengths, np.full(k, -np.log(k)), log_trans)
+        reg = self.regression_
+        self.posteriors_ = _rows_per_sample(post, np.asarray(reg.sample_index), self.labels_)
+
+
+def _without_surface(ctx: FitContext) -> FitContext:
+    """``ctx`` with the surface term left out of the refinement."""
+    if not ctx.settings.surface_weight:
+        return ctx
+    settings = dataclasses.replace(ctx.settings, surface_weight=0.0)
+    return dataclasses.replace(ctx, settings=settings)
+
+
+def _better(a: RefineResult, b: RefineResult) -> bool:
+    """``a`` keeps more regimes than ``b``, or as many with a higher likelihood."""
+    return (a.n_regimes, a.loglik) > (b.n_regimes, b.loglik)
+
+
+def _rows_per_sample(values: np.ndarray, sample_index: np.ndarray, labels: list) -> list:
+    """Row values (n_rows, K) spread onto every sample of each run; a sample without a row
+    (discrete form: a run's last sample) takes the one-hot of its label."""
+    k = values.shape[1]
+    total = sum(lab.size for lab in labels)
+    full = np.full((total, k), np.nan)
+    full[sample_index] = values
+    out, offset = [], 0
+    for lab in labels:
+        part = full[offset : offset + lab.size]
+        missing = np.isnan(part[:, 0])
+        if missing.any():
+            part[missing] = np.eye(k)[np.clip(lab[missing], 0, k - 1)]
+        out.append(part)
+        offset += lab.size
+    return out
 
 
 def _segment(rows: Rows, labels: np.ndarray, settings: dict[str, Any]) -> np.ndarray:

@@ -2,9 +2,13 @@
 
 * **Small regimes** (:func:`drop_small`): a regime with fewer than ``min_samples`` samples has
   too little data for its own model.  Its samples are marked ``-1`` and the remaining ids are
-  compacted; the refinement then hands those samples to the remaining regimes by Viterbi.  The
-  default ``min_samples`` is ``max(30, 10 x p)`` with ``p`` the number of candidate terms times
-  the number of states (the most parameters one regime can have): :func:`default_min_samples`.
+  compacted; the refinement then hands those samples to the remaining regimes by Viterbi.  A
+  single regime is never dropped.  The minimum follows what a regime must estimate, one
+  equation of ``p`` candidate terms per state (:func:`default_min_samples`): when the number of
+  regimes is chosen, 5 rows per term and at least 20 (a smaller group of rows is a transient
+  the criterion should not have to weigh); when it is given, 2 rows per term plus 2 and at
+  least 10 (any regime whose equations the rows can determine is kept: a 28-sample level
+  regime is legitimate).
 * **Short dwells** (:func:`enforce_min_dwell`): a stretch shorter than ``min_dwell`` samples
   takes the regime of the preceding long-enough stretch of the same run (the following one at
   the start of a run).  ``min_dwell=1`` changes nothing.
@@ -21,9 +25,10 @@ import numpy as np
 __all__ = ["default_min_samples", "drop_small", "enforce_min_dwell", "order_regimes"]
 
 
-def default_min_samples(n_terms: int, n_states: int) -> int:
-    """``max(30, 10 x n_terms x n_states)``."""
-    return max(30, 10 * n_terms * n_states)
+def default_min_samples(n_terms: int, given_k: bool = False) -> int:
+    """Smallest regime kept: ``max(20, 5 p)`` rows when K is chosen, ``max(10, 2 p + 2)``
+    when it is given (``p`` candidate terms per equation)."""
+    return max(10, 2 * n_terms + 2) if given_k else max(20, 5 * n_terms)
 
 
 def drop_small(
@@ -41,6 +46,8 @@ def drop_small(
     """
     labels = np.asarray(labels, dtype=np.int64)
     counts = np.bincount(labels + 1, minlength=n_regimes + 1)[1:]
+    if n_regimes == 1 and counts[0] > 0:
+        return labels, 1, []  # one regime holds every row: nothing to give its rows to
     keep = np.flatnonzero(counts >= min_samples)
     notes = [
         f"regime {k} dropped: {int(counts[k])} samples < minimum {min_samples}; "

@@ -10,12 +10,15 @@ from __future__ import annotations
 
 import functools
 from collections.abc import Sequence
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 from threadpoolctl import ThreadpoolController
 
 __all__ = [
+    "LocationTerm",
+    "SurfaceTerm",
     "location_density",
     "location_parameters",
     "one_blas_thread",
@@ -129,6 +132,113 @@ def location_density(x: np.ndarray, means: np.ndarray, chols: np.ndarray) -> np.
         logdet = 2.0 * np.log(np.diag(chol)).sum()
         out[:, j] = -0.5 * (np.einsum("ij,ij->j", w, w) + logdet + d * np.log(2 * np.pi))
     return out
+
+
+@dataclass(frozen=True)
+class LocationTerm:
+    """``weight`` times the Gaussian log-density of where the states sit, per regime
+    (:func:`location_parameters`, :func:`location_density`)."""
+
+    weight: float
+    means: np.ndarray
+    chols: np.ndarray
+
+    @classmethod
+    def fit(cls, Z: np.ndarray, n_states: int, labels: np.ndarray, k: int, **options: Any):
+        """From the states of ``labels``' regimes (``options``: ``weight``, ``kind``)."""
+        kind = options.get("kind", "tied")
+        means, chols = location_parameters(Z[:, :n_states], labels, k, kind)
+        return cls(float(options.get("weight", 1.0)), means, chols)
+
+    def log_prob(self, Z: np.ndarray, n_states: int) -> np.ndarray:
+        """(n, K) to add to the emissions of the rows ``Z``."""
+        return self.weight * location_density(Z[:, :n_states], self.means, self.chols)
+
+    @property
+    def n_regimes(self) -> int:
+        return int(self.means.shape[0])
+
+    def reordered(self, order: np.ndarray) -> LocationTerm:
+        """The term for regimes renumbered so that new id ``i`` is old id ``order[i]``."""
+        return LocationTerm(self.weight, self.means[order], self.chols[order])
+
+
+#: Rows the classifier of :class:`SurfaceTerm` is fitted on at most (evenly strided).
+SURFACE_ROWS = 5_000
+
+
+@dataclass(frozen=True)
+class SurfaceTerm:
+    """``weight`` times the log-probability of each regime given the variables, from a
+    memoryless classifier of the current labels (multinomial logistic regression on the
+    standardised states and inputs, scikit-learn's ``LogisticRegression``; "The regression
+    analysis of binary sequences", Journal of the Royal Statistical Society B 20(2), 1958).
+
+    Where two regimes' dynamics agree (a field that is continuous across a switching
+    surface, a regime chosen by a logged command) the residuals cannot place the switch;
+    the classifier says on which side of the surface the variables are, so every crossing
+    is placed by the one surface all of them share.  Where a hysteresis band lets both
+    regimes occupy the same variables, its probabilities are near even there and the
+    dynamics decide.  The classifier is fitted on the rows whose regime the dynamics
+    decide (the caller passes the others as ``-1``): labels that lag a switch where the
+    dynamics cannot tell would otherwise teach it a surface shifted along the motion.
+    """
+
+    weight: float
+    mean: np.ndarray
+    scale: np.ndarray
+    coef: np.ndarray  # (K, n_vars)
+    intercept: np.ndarray  # (K,)
+    classifier: Any = field(default=None, repr=False, compare=False)
+
+    @classmethod
+    def fit(cls, Z: np.ndarray, n_states: int, labels: np.ndarray, k: int, **options: Any):
+        """From ``labels`` (``options``: ``weight``; ``C``, the inverse regularisation of the
+        classifier on standardised variables, default 1; ``previous``: the term of the last
+        pass, whose classifier the fit starts from); None when fewer than two regimes have
+        rows."""
+        from sklearn.linear_model import LogisticRegression
+
+        rows = np.flatnonzero(labels >= 0)
+        if rows.size > SURFACE_ROWS:
+            rows = rows[np.linspace(0, rows.size - 1, SURFACE_ROWS).astype(np.int64)]
+        present = np.unique(labels[rows])
+        if present.size < 2:
+            return None
+        x = Z[rows]
+        mean, scale = x.mean(axis=0), x.std(axis=0)
+        scale = np.where(scale > 0, scale, 1.0)
+        previous = options.get("previous")
+        clf = previous.classifier if previous is not None else None
+        if clf is None or not np.array_equal(clf.classes_, present):
+            C = float(options.get("C", 1.0))
+            clf = LogisticRegression(C=C, max_iter=500, warm_start=True)
+        clf.fit((x - mean) / scale, labels[rows])
+        W, b = clf.coef_, clf.intercept_
+        if W.shape[0] == 1:  # binary: log-odds of classes_[1] against classes_[0]
+            W, b = np.vstack([-0.5 * W[0], 0.5 * W[0]]), np.array([-0.5 * b[0], 0.5 * b[0]])
+        coef = np.zeros((k, Z.shape[1]))
+        intercept = np.full(k, -30.0)  # a regime without rows: all but impossible
+        coef[clf.classes_], intercept[clf.classes_] = W, b
+        term = cls(float(options.get("weight", 1.0)), mean, scale, coef, intercept)
+        object.__setattr__(term, "classifier", clf)  # kept to start the next pass from
+        return term
+
+    def log_prob(self, Z: np.ndarray, n_states: int) -> np.ndarray:
+        """(n, K) to add to the emissions of the rows ``Z``."""
+        s = ((Z - self.mean) / self.scale) @ self.coef.T + self.intercept
+        s -= s.max(axis=1, keepdims=True)
+        s -= np.log(np.exp(s).sum(axis=1, keepdims=True))
+        return self.weight * s
+
+    @property
+    def n_regimes(self) -> int:
+        return int(self.intercept.shape[0])
+
+    def reordered(self, order: np.ndarray) -> SurfaceTerm:
+        """The term for regimes renumbered so that new id ``i`` is old id ``order[i]``."""
+        coef, intercept = self.coef[order], self.intercept[order]
+        return SurfaceTerm(self.weight, self.mean, self.scale, coef, intercept)
 
 
 def transition_model(

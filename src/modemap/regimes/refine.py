@@ -43,7 +43,7 @@ from modemap._progress import ProgressCallback, null_progress
 from modemap.fit.local_model import BoundLocalModel
 from modemap.fit.statistics import GramStats, accumulate_by_label
 from modemap.regimes.hygiene import drop_small, enforce_min_dwell
-from modemap.regimes.likelihood import location_parameters, pair_counts, transition_model
+from modemap.regimes.likelihood import LocationTerm, SurfaceTerm, pair_counts, transition_model
 from modemap.regimes.rows import RowWork
 
 __all__ = [
@@ -102,6 +102,8 @@ class RefineResult:
     targets : ndarray or None
         The targets the fits used when they were re-estimated after labelling
         (continuous form, see :mod:`modemap.regimes.segments`); None otherwise.
+    terms : tuple
+        Further emission terms of the final fits (location, surface), for decoding new data.
     """
 
     labels: np.ndarray
@@ -117,6 +119,7 @@ class RefineResult:
     covariance: str = "tied"
     location_weight: float = 0.0
     targets: np.ndarray | None = None  # set when the targets differ from the input Y
+    terms: tuple = ()  # the further emission terms of the final state (location, surface)
 
 
 @dataclass(frozen=True)
@@ -133,6 +136,11 @@ class RefineSettings:
         Transition probabilities from switch counts (True) or fixed at ``sticky`` (False).
     location_weight : float
         Weight of the Gaussian term on where the state sits (0 = dynamics only).
+    surface_weight : float
+        Weight of the term on which side of the switching surfaces the variables are
+        (:class:`~modemap.regimes.likelihood.SurfaceTerm`, a memoryless classifier fitted
+        on the rows the residual likelihoods placed with confidence in the last pass;
+        0 = none).
     covariance : {"tied", "full"}
         One residual covariance shared by all regimes (regimes then differ by their dynamics
         only, as with a non-switching variance) or one per regime.
@@ -157,6 +165,7 @@ class RefineSettings:
     sticky: float = 0.99
     learn_transitions: bool = True
     location_weight: float = 0.0
+    surface_weight: float = 0.0
     covariance: str = "tied"
     min_samples: int = 30
     min_dwell: int = 1
@@ -206,11 +215,15 @@ def refine(
     state = None
     settled = int(settings.tol * labels.size)
     max_iter = int(settings.max_iter)
+    # the surface term joins once the labels have settled without it: a regime just split
+    # off has few rows the dynamics place with confidence, and would starve under it
+    surface, confident = False, None
     for it in range(max(1, max_iter)):
         previous = None if state is None else (state.labels, state.stats)
-        state = scorer.fit(labels, k, phase, previous=previous)
+        taught = confident if surface else None
+        state = scorer.fit(labels, k, phase, previous=previous, confident=taught)
         labels, k = state.labels, state.k
-        new, log_prob, _ = scorer.decode(state)
+        new, log_prob, _, confident = scorer.decode(state)
         new = enforce_min_dwell(new, work.lengths, settings.min_dwell)
         changed = int(np.count_nonzero(new != labels))
         monitor.history.append(float(log_prob))
@@ -221,15 +234,22 @@ def refine(
         if changed <= settled and phase is not local:
             phase = local  # labels settled with every term kept: switch to the selection
             continue
+        if changed <= settled and settings.surface_weight and k > 1 and not surface:
+            surface = True  # settled by the dynamics: place the switches with the surface
+            continue
         if changed <= settled:
             monitor.converged = True
             break
-    final = not monitor.converged or monitor.changes[-1] > 0
+    # final fits consistent with the final labels, their terms chosen on these labels
+    final = not monitor.converged or monitor.changes[-1] > 0 or not scorer.fresh
     if final:  # final fits consistent with the final labels
-        state = scorer.fit(labels, k, local, previous=(state.labels, state.stats))
+        previous = (state.labels, state.stats)
+        taught = confident if surface else None
+        scorer.selected = None  # the final fits choose their terms afresh
+        state = scorer.fit(labels, k, local, previous=previous, confident=taught)
         labels, k = state.labels, state.k
         if np.any(labels < 0):
-            labels, _, _ = scorer.decode(state)
+            labels, _, _, _ = scorer.decode(state)
     if not final and settings.min_dwell <= 1:
         loglik = monitor.history[-1]  # the labels are the Viterbi path of this very state
     elif not final:  # the last pass's fits, labels moved by min_dwell: score them
@@ -249,6 +269,7 @@ def refine(
         notes=notes,
         covariance=settings.covariance,
         location_weight=settings.location_weight,
+        terms=state.terms,
     )
 
 
@@ -261,7 +282,7 @@ class _State:
     covs: np.ndarray
     log_start: np.ndarray
     log_trans: np.ndarray
-    location: Any = None  # (weight, means, Cholesky factors) or None
+    terms: tuple = ()  # further emission terms (location, surface)
     pairs: np.ndarray | None = None  # pair_counts of ``labels``
 
 
@@ -271,6 +292,9 @@ class _Scorer:
     def __init__(self, work: RowWork, settings: RefineSettings, notes: list[str]) -> None:
         self.work, self.settings, self.notes = work, settings, notes
         self.library = settings.local.library
+        self.surface = None  # the last surface term (its classifier starts the next fit)
+        self.selected = None  # (model, labels, fits) of the last choice of terms
+        self.fresh = False  # the last fits chose their terms on their own labels
 
     def fit(
         self,
@@ -278,15 +302,19 @@ class _Scorer:
         k: int,
         local: BoundLocalModel,
         previous: tuple[np.ndarray, list[GramStats]] | None = None,
+        confident: np.ndarray | None = None,
     ) -> _State:
         """Steps (a) and (b): drop small regimes, fit each regime, the chain.
 
         ``previous`` (labels and statistics of the last pass) lets the statistics be
-        updated from the samples whose label changed.
+        updated from the samples whose label changed; ``confident`` (rows the last pass
+        placed with confidence) teaches the surface term.
         """
         s, work = self.settings, self.work
         labels, new_k, dropped = drop_small(labels, k, s.min_samples)
         self.notes += dropped
+        if new_k != k:
+            confident = None
         if new_k == 0:
             raise FitError(f"no regime has at least {s.min_samples} samples; use fewer regimes")
         stats = _updated_stats(work, self.library, labels, new_k, previous)
@@ -296,33 +324,59 @@ class _Scorer:
         fit_stats = stats
         if local.interior:
             fit_stats = interior_stats(work.Z, work.Y, work.lengths, labels, k, self.library, stats)
-        fits = local.fit_all(fit_stats)
+        fits = self._fits(local, fit_stats, labels)
         covs = _covariances(stats, fits, s.cov_floor, s.covariance)
         pairs = pair_counts(labels, work.lengths, k)
         log_start, log_trans = transition_model(
             labels, work.lengths, k, s.sticky, s.learn_transitions, counts=pairs
         )
-        location = None
+        terms = []
+        m = work.Y.shape[1]
         if s.location_weight:
-            x = work.Z[:, : work.Y.shape[1]]
-            means, chols = location_parameters(x, labels, k, s.covariance)
-            location = (float(s.location_weight), means, chols)
-        return _State(labels, k, stats, fits, covs, log_start, log_trans, location, pairs)
+            options = {"weight": s.location_weight, "kind": s.covariance}
+            terms.append(LocationTerm.fit(work.Z, m, labels, k, **options))
+        if s.surface_weight and k > 1 and confident is not None:
+            taught = np.where(confident, labels, -1)
+            options = {"weight": s.surface_weight, "previous": self.surface}
+            self.surface = SurfaceTerm.fit(work.Z, m, taught, k, **options)
+            terms += [self.surface] if self.surface is not None else []
+        return _State(labels, k, stats, fits, covs, log_start, log_trans, tuple(terms), pairs)
+
+    def _fits(self, local: BoundLocalModel, stats: list[GramStats], labels: np.ndarray) -> list:
+        """Each regime's fit; the terms are chosen again only when the model or the number
+        of regimes changed, or more than ``_RESELECT_SHARE`` of the rows changed regime
+        since they were last chosen (in between, least squares on those terms)."""
+        last = self.selected
+        if (
+            last is not None
+            and last[0] is local
+            and len(last[2]) == len(stats)
+            and last[1].shape == labels.shape
+            and np.count_nonzero(last[1] != labels) <= _RESELECT_SHARE * labels.size
+        ):
+            self.fresh = np.array_equal(last[1], labels)
+            return [local.refit(s, f) for s, f in zip(stats, last[2], strict=True)]
+        fits = local.fit_all(stats)
+        self.selected, self.fresh = (local, labels, fits), True
+        return fits
 
     def decode(self, state: _State, current: np.ndarray | None = None) -> tuple:
-        """Step (c): Viterbi paths under the fits and chain of ``state``."""
+        """Step (c): Viterbi paths under the fits and chain of ``state`` (with the rows the
+        dynamics place with confidence, when the surface term needs them)."""
+        margin = _CONFIDENT if self.settings.surface_weight and state.k > 1 else 2.0
         return self.work.decode(
             self.library,
             state.fits,
             state.covs,
             (state.log_start, state.log_trans),
             current=current,
-            location=state.location,
+            terms=state.terms,
+            margin=margin,
         )
 
     def log_prob(self, state: _State, labels: np.ndarray) -> float:
         """Joint log-probability of ``labels`` under the fits and chain of ``state``."""
-        if state.location is None and not np.any(labels < 0):
+        if not state.terms and not np.any(labels < 0):
             return _stats_log_prob(state, labels, self.work.lengths)
         return self.decode(state, current=labels)[2]
 
@@ -346,6 +400,14 @@ def _covariances(
         return np.repeat(pooled[None], len(stats), axis=0)
     return np.array([p / c + np.diag(floor) for p, c in zip(products, counts, strict=True)])
 
+
+#: Terms are chosen again when more than this share of the rows changed regime since the
+#: last choice (the fits in between keep the chosen terms).
+_RESELECT_SHARE = 0.01
+
+#: A row teaches the surface term when the probability of its regime, given the residual
+#: likelihoods and the chain alone, exceeds this.
+_CONFIDENT = 0.9
 
 #: Update the statistics from the changed samples when fewer than this share changed (each
 #: changed sample is accumulated twice, out of its old regime and into its new one).

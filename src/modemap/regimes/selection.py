@@ -1,151 +1,434 @@
-"""Choice of the number of regimes: BIC, with a held-out one-step error beside it.
+"""Choice of model: how many regimes, and which library of candidate terms.
 
-For each ``K = 1..max_regimes`` the regimes are proposed and refined on the *training part*:
-the first 80 % of every run (the last 20 % of each run is held out; runs keep their
-boundaries).  On the training part
+Every candidate is a number of regimes ``K`` and a library order ``d`` (one of the local
+model's :meth:`~modemap.fit.local_model.LocalModel.candidate_degrees`), fitted by the
+refinement.  All candidates are scored on the same rows and the same targets with the same
+noise model:
 
-    BIC = -2 loglik + n_params ln(n)
+* **targets**: the regression targets without any regime information (continuous form:
+  derivatives estimated per run, never across a step of a stepped input; discrete form:
+  the next samples);
+* **likelihood**: the marginal likelihood of a Markov-switching model, every regime path
+  counted (the forward pass of :func:`~modemap.regimes.viterbi.forward_backward`; the
+  switching model of "A new approach to the economic analysis of nonstationary time series
+  and the business cycle", Econometrica 57(2), 1989, DOI 10.2307/1912559), with Gaussian
+  residuals of one covariance per regime, the chain's transition probabilities
+  from the candidate's switch counts, and the optional terms of the emissions (location,
+  switching inputs) as in the refinement;
+* **rows next to a switch**: a target whose window holds a switch mixes two regimes (the
+  derivative's smoothing window, or in discrete form the sample interval that holds the
+  switch); such rows of a candidate carry no emission (the same for every regime), and the
+  log-likelihood is scaled up to all rows by the share of rows scored, so that no candidate
+  gains by giving the mixed rows a regime of their own;
+* **serial correlation**: smoothed derivatives and slowly varying model error make
+  neighbouring residuals alike, and a likelihood that counts every row as independent
+  overstates the evidence.  The log-likelihood is divided by the residuals' integrated
+  autocorrelation time ``tau = 1 + 2 sum_k rho_k`` (summed while the estimates stay
+  positive, the initial positive sequence of "Practical Markov chain Monte Carlo",
+  Statistical Science 7(4), 1992, DOI 10.1214/ss/1177011137), estimated once, on the
+  residuals of the candidate that fits best, so every candidate is judged on one scale;
+  ``n / tau`` is the effective number of rows.
 
-("Estimating the dimension of a model", Annals of Statistics 6(2), 1978,
-DOI 10.1214/aos/1176344136), with ``loglik`` the complete-data log-likelihood of the refined
-labelling and the parameters counted honestly:
+The criterion is then
 
-* every nonzero coefficient of every regime and state,
-* ``m (m + 1) / 2`` residual covariance entries per regime (``m`` states), or once in all
-  when the covariance is shared (``covariance="tied"``, the default),
-* ``K (K - 1)`` transition probabilities and ``K - 1`` initial probabilities,
-* with a location term, a mean (``m``) per regime and its covariance (``m (m + 1) / 2``),
-  shared or per regime like the residual covariance.
+    C = -2 loglik / tau + n_params ln(n / tau)
 
-The held-out tails are labelled by Viterbi with the trained models and chain; the error of the
-one-step prediction under the decoded regime is divided, state by state, by the standard
-deviation of that state's target on the held-out part, and the root mean square over samples
-and states is reported as ``holdout_rmse``.  The K with the smallest BIC is chosen (the
-smaller K on a tie, round-off included); the held-out error is reported beside it, not used
-to choose.
+(the Bayesian information criterion of "Estimating the dimension of a model", Annals of
+Statistics 6(2), 1978, DOI 10.1214/aos/1176344136, on the effective sample), with the
+parameters counted honestly: every nonzero coefficient of every regime and state, the
+residual covariances (``K m (m + 1) / 2``), ``K (K - 1)`` transition and ``K - 1``
+initial probabilities, and those of the optional emission terms.  The lowest ``C`` wins, the
+fewer parameters on a tie.  A candidate whose refinement lost regimes (it asked for ``K`` and
+kept fewer) is shown as collapsed and never chosen.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
+import dataclasses
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from modemap._exceptions import FitCancelled, FitError
-from modemap._progress import ProgressCallback, null_progress, scaled
-from modemap.regimes.likelihood import predict_by_label, regime_log_likelihood
+from modemap.fit.statistics import GramStats
+from modemap.regimes.likelihood import SurfaceTerm, pair_counts, transition_model
 from modemap.regimes.refine import RefineResult
 from modemap.regimes.rows import Rows
-from modemap.regimes.viterbi import viterbi_runs
+from modemap.regimes.viterbi import forward_backward, forward_gated
 
-__all__ = ["count_parameters", "holdout_split", "information_criterion", "select_regimes"]
+__all__ = [
+    "Candidate",
+    "Windows",
+    "autocorrelation_time",
+    "choose",
+    "count_parameters",
+    "information_criterion",
+    "library_criteria",
+    "score",
+]
 
-HOLDOUT_FRACTION = 0.2
+#: Lags the autocorrelation time sums at most, as a share of the shortest run's rows.
+_MAX_LAG_SHARE = 0.25
 
-FitK = Callable[[Rows, int, ProgressCallback], RefineResult]
+
+@dataclass
+class Candidate:
+    """One candidate model: ``k`` regimes asked for, a library order, its fit and score.
+
+    Attributes
+    ----------
+    k : int
+        Regimes the search asked for.
+    degree : int or None
+        Library order (None: a library given term by term).
+    local : BoundLocalModel
+        The local model at that library.
+    result : RefineResult
+        The fit (labels, regime models, chain).
+    loglik : float
+        Marginal log-likelihood of the common targets, scaled to all rows.
+    n_params : int
+    scored : int
+        Rows whose emissions were scored (the others are next to a switch).
+    residuals : ndarray of shape (n, m)
+        Each row's residual under its own regime (whitened), for the autocorrelation time.
+    posteriors : ndarray of shape (n, K)
+        Each row's regime probabilities given all the data of its run.
+    """
+
+    k: int
+    degree: int | None
+    local: Any
+    result: RefineResult
+    loglik: float = float("nan")
+    n_params: int = 0
+    scored: int = 0
+    residuals: np.ndarray | None = field(default=None, repr=False)
+    posteriors: np.ndarray | None = field(default=None, repr=False)
+
+    @property
+    def collapsed(self) -> bool:
+        """The refinement kept fewer regimes than asked for."""
+        return self.result.n_regimes < self.k
 
 
-def count_parameters(result: RefineResult, n_targets: int) -> int:
-    """Nonzero coefficients + covariance entries + transition and initial probabilities."""
+def count_parameters(result: RefineResult, n_targets: int, extra: int = 0) -> int:
+    """Nonzero coefficients + covariance entries + transition and initial probabilities
+    (+ ``extra``, the parameters of optional emission terms)."""
     k = result.n_regimes
     coefs = sum(int(np.count_nonzero(f.coef)) for f in result.fits)
     n_cov = 1 if result.covariance == "tied" else k
     cov = n_targets * (n_targets + 1) // 2
     location = (k * n_targets + n_cov * cov) if result.location_weight else 0
-    return coefs + n_cov * cov + location + k * (k - 1) + (k - 1)
+    return coefs + n_cov * cov + location + k * (k - 1) + (k - 1) + int(extra)
 
 
-def information_criterion(loglik: float, n_params: int, n_samples: int) -> float:
-    """``-2 loglik + n_params ln(n)``."""
-    return -2.0 * loglik + n_params * np.log(max(n_samples, 1))
+def information_criterion(
+    loglik: float, n_params: int, n_samples: float, tau: float = 1.0
+) -> float:
+    """``-2 loglik / tau + n_params ln(n / tau)``: BIC on the effective number of rows."""
+    tau = max(float(tau), 1.0)
+    return -2.0 * loglik / tau + n_params * np.log(max(n_samples / tau, 1.0))
 
 
-def holdout_split(lengths: np.ndarray, fraction: float = HOLDOUT_FRACTION) -> np.ndarray:
-    """Boolean mask of the held-out rows: the last ``fraction`` of every run."""
-    lengths = np.asarray(lengths, dtype=np.int64)
-    mask = np.zeros(int(lengths.sum()), dtype=bool)
-    offset = 0
-    for length in lengths:
-        held = int(np.floor(fraction * length))
-        mask[offset + length - held : offset + length] = True
-        offset += length
-    return mask
+class Windows:
+    """The common targets every candidate is scored on: the increments of the states over
+    windows of ``h`` sample intervals, never across runs.
 
-
-def holdout_error(result: RefineResult, library: Any, rows: Rows) -> float:
-    """Normalised RMS one-step error on held-out rows decoded with the trained models."""
-    coefs = [f.coef for f in result.fits]
-    Z, Y = rows.Z, rows.Y
-    log_em = regime_log_likelihood(library, Z, Y, coefs, result.covariances)
-    labels, _ = viterbi_runs(log_em, rows.lengths, result.log_start, result.log_trans)
-    sse = predict_by_label(library, Z, Y, coefs, labels)
-    scale = Y.var(axis=0)
-    scale[~(scale > 0)] = 1.0
-    return float(np.sqrt(np.mean(sse / (Y.shape[0] * scale))))
-
-
-def select_regimes(
-    fit_k: FitK,
-    library: Any,
-    rows: Rows,
-    max_regimes: int,
-    *,
-    progress: ProgressCallback | None = None,
-) -> tuple[pd.DataFrame, dict[int, RefineResult]]:
-    """Fit K = 1..max_regimes on the training part and tabulate BIC and held-out error.
+    Continuous form: window ``[s, s + h]`` has the target ``(x(t_s+h) - x(t_s)) / (t_s+h - t_s)``
+    and, for a library of terms, the regressors ``integral of Theta dt / (t_s+h - t_s)`` by
+    the trapezoidal rule over its intervals (stepped inputs held over each interval, see
+    :func:`modemap.regimes.integral.right_ends`): the integral form of the model, which
+    needs no derivative, so the targets carry neither a smoothing window's bias nor its
+    smearing across switches.  Discrete form: ``h = 1``, the target is the next sample and
+    the regressors the terms at the sample.  A window belongs to a regime when the labels of
+    all its samples agree; the others hold a switch.
 
     Parameters
     ----------
-    fit_k : callable
-        ``fit_k(rows, K, progress) -> RefineResult`` (proposal + refinement).
-    library : fitted TermLibrary
     rows : Rows
-        Variables, targets, run lengths and times of all runs.
-    max_regimes : int
-    progress : callable, optional
+        The regression rows (their variables, time and run lengths).
+    states : ndarray of shape (n, m)
+        Continuous form: the measured states of the rows; discrete form: the next samples.
+    h : int
+        Sample intervals per window (1 in discrete form).
+    integral : bool
+        Continuous form (True) or discrete form.
+    """
+
+    def __init__(self, rows: Rows, states: np.ndarray, h: int, integral: bool) -> None:
+        self.rows, self.h, self.integral = rows, max(1, int(h)), bool(integral)
+        starts, counts = [], []
+        offset = 0
+        span = self.h if self.integral else 1
+        for length in rows.lengths:
+            length = int(length)
+            last = length - 1 - span if self.integral else length - 1  # the last start
+            s = np.arange(offset, offset + last + 1, span) if last >= 0 else np.zeros(0, int)
+            starts.append(s)
+            counts.append(s.size)
+            offset += length
+        self.start = np.concatenate(starts).astype(np.int64) if starts else np.zeros(0, int)
+        self.lengths = np.asarray(counts, dtype=np.int64)
+        if self.integral:
+            stop = self.start + self.h
+            duration = np.asarray(rows.time)[stop] - np.asarray(rows.time)[self.start]
+            self.duration = np.where(duration > 0, duration, np.nan)[:, None]
+            self.target = (states[stop] - states[self.start]) / self.duration
+        else:
+            self.target = np.asarray(states, dtype=np.float64)[self.start]
+        self._cache: dict[tuple, np.ndarray] = {}
+
+    @property
+    def n_windows(self) -> int:
+        return int(self.start.size)
+
+    @property
+    def variables(self) -> np.ndarray:
+        """The states and inputs at the start of every window."""
+        return self.rows.Z[self.start]
+
+    def regressors(self, library: Any) -> np.ndarray:
+        """The regressors of every window for ``library`` (kept for the next call)."""
+        key = (tuple(library.variables_), tuple(library.terms_))
+        if key not in self._cache:
+            self._cache[key] = self._regressors(library)
+        return self._cache[key]
+
+    def _regressors(self, library: Any) -> np.ndarray:
+        Z = self.rows.Z
+        theta = library.transform(Z)
+        if not self.integral:
+            return theta[self.start]
+        from modemap.regimes.integral import right_ends
+
+        right = library.transform(right_ends(Z, self.rows.n_states, self.rows.lengths))
+        dt = np.zeros(Z.shape[0])
+        dt[:-1] = np.diff(np.asarray(self.rows.time, dtype=np.float64))
+        piece = 0.5 * (theta + right) * dt[:, None]
+        cum = np.vstack([np.zeros(piece.shape[1]), np.cumsum(piece, axis=0)])
+        return (cum[self.start + self.h] - cum[self.start]) / self.duration
+
+    def labels(self, row_labels: np.ndarray) -> np.ndarray:
+        """Each window's regime: that of its samples when they all agree, else -1."""
+        row_labels = np.asarray(row_labels, dtype=np.int64)
+        span = self.h if self.integral else 1
+        first = row_labels[self.start]
+        same = np.ones(self.start.size, dtype=bool)
+        for j in range(1, span + 1):
+            idx = np.minimum(self.start + j, row_labels.size - 1)
+            same &= row_labels[idx] == first
+        if not self.integral:  # the row's interval: its next sample in the same run
+            run_end = np.cumsum(self.rows.lengths) - 1
+            same |= np.isin(self.start, run_end)
+        return np.where(same & (first >= 0), first, -1)
+
+
+def score(
+    candidate: Candidate,
+    windows: Windows,
+    *,
+    sticky: float,
+) -> Candidate:
+    """Score ``candidate`` on the common targets (see the module notes), in place.
+
+    Parameters
+    ----------
+    candidate : Candidate
+    windows : Windows
+        The common targets.
+    sticky : float
+        Self-transition weight of the chain's prior (as in the refinement).
 
     Returns
     -------
-    table : DataFrame
-        Columns ``K, n_regimes, loglik, n_params, bic, holdout_rmse, chosen``
-        (``n_regimes``: regimes left after hygiene, may be below ``K``).
-    results : dict
-        K -> RefineResult on the training part.
+    Candidate
+        The same object, with ``loglik``, ``n_params``, ``scored``, ``residuals`` and
+        ``posteriors`` (per window) set.
     """
-    progress = progress or null_progress
-    held = holdout_split(rows.lengths)
-    train, test = rows.subset(~held), rows.subset(held)
-    table_rows, results = [], {}
-    for k in range(1, max_regimes + 1):
-        progress((k - 1) / max_regimes, f"trying {k} regime(s)")
-        try:
-            res = fit_k(train, k, scaled(progress, (k - 1) / max_regimes, k / max_regimes))
-        except FitCancelled:
-            raise
-        except FitError:  # e.g. no regime left with enough samples: stop adding regimes
-            break
-        n_params = count_parameters(res, rows.n_states)
-        rmse = holdout_error(res, library, test) if test.n_rows else float("nan")
-        table_rows.append(
+    result = candidate.result
+    k = result.n_regimes
+    G = windows.regressors(candidate.local.library)
+    target = windows.target
+    labels = windows.labels(result.labels)
+    scored = labels >= 0
+    m = target.shape[1]
+    fits = _window_fits(candidate, G, target, labels)
+    coefs = [np.asarray(f.coef) for f in fits]
+    resid = np.zeros_like(target)
+    for j, c in enumerate(coefs):
+        sel = labels == j
+        resid[sel] = target[sel] - G[sel] @ c
+    # one covariance per regime: regimes may differ in their noise as in their dynamics
+    floor = np.diag(1e-9 * np.atleast_1d(np.var(target, axis=0)) + 1e-300)
+    pooled = np.cov(resid[scored].T, bias=True).reshape(m, m) if scored.sum() > 1 else np.eye(m)
+    log_em = np.empty((labels.size, k))
+    white = np.full_like(resid, np.nan)
+    for j, c in enumerate(coefs):
+        own = labels == j
+        cov = np.cov(resid[own].T, bias=True).reshape(m, m) if own.sum() > m + 1 else pooled
+        chol = np.linalg.cholesky(cov + floor)
+        const = -np.log(np.diag(chol)).sum() - 0.5 * m * np.log(2 * np.pi)
+        w = np.linalg.solve(chol, (target - G @ c).T).T
+        log_em[:, j] = const - 0.5 * np.einsum("ij,ij->i", w, w)
+        white[own] = w[own]
+    log_em[~scored] = 0.0
+    lengths = windows.lengths
+    log_start, log_trans = transition_model(
+        labels, lengths, k, sticky, counts=pair_counts(labels, lengths, k)
+    )
+    loglik, posteriors = forward_backward(log_em, lengths, log_start, log_trans)
+    n_gate = 0
+    z = windows.variables
+    gate = SurfaceTerm.fit(z, m, labels, k, C=1000) if k > 1 else None
+    if gate is not None:  # switches predicted by where the variables are (module notes)
+        gated = forward_gated(log_em, lengths, log_trans, gate.log_prob(z, m))
+        extra = (k - 1) * (z.shape[1] + 1)
+        if gated - 0.5 * extra * np.log(max(labels.size, 2)) > loglik:
+            loglik, n_gate = gated, extra
+    share = max(int(scored.sum()), 1) / max(labels.size, 1)
+    candidate.loglik = float(loglik / share)
+    per_regime = dataclasses.replace(result, fits=fits, covariance="full")
+    candidate.n_params = count_parameters(per_regime, m, n_gate)
+    candidate.scored = int(scored.sum())
+    candidate.residuals = white
+    candidate.posteriors = posteriors
+    return candidate
+
+
+def library_criteria(locals_: list[Any], windows: Windows) -> list[float]:
+    """The criterion of one regime at each of several library orders (lower is better).
+
+    Each bound local model is fitted on the windows' common targets (:class:`Windows`) and
+    scored like a one-regime candidate: Gaussian log-likelihood with its maximum-likelihood
+    covariance, divided by the residuals' autocorrelation time, and the nonzero
+    coefficients plus the covariance counted on the effective number of windows.
+    """
+    target = windows.target
+    m, n = target.shape[1], windows.n_windows
+    out, residuals, fits = [], [], []
+    for local in locals_:
+        G = windows.regressors(local.library)
+        fit = local.fit(_statistics(local, G, target))
+        r = target - G @ np.asarray(fit.coef)
+        cov = np.cov(r.T, bias=True).reshape(m, m) + np.diag(1e-9 * np.var(target, 0) + 1e-300)
+        chol = np.linalg.cholesky(cov)
+        loglik = -0.5 * n * (2.0 * np.log(np.diag(chol)).sum() + m * (1 + np.log(2 * np.pi)))
+        residuals.append(np.linalg.solve(chol, r.T).T)
+        fits.append((loglik, int(np.count_nonzero(fit.coef)) + m * (m + 1) // 2))
+    best = int(np.argmax([f[0] for f in fits]))
+    tau = autocorrelation_time(residuals[best], windows.lengths)
+    for loglik, k in fits:
+        out.append(information_criterion(loglik, k, n, tau))
+    return out
+
+
+def _window_fits(
+    candidate: Candidate, G: np.ndarray, target: np.ndarray, labels: np.ndarray
+) -> list[Any]:
+    """Each regime's model fitted on its windows with the candidate's local model (terms
+    chosen again on them): the candidate judged by its labels and library, with the
+    coefficients the common targets give.  A regime with too few windows keeps its fit."""
+    out = []
+    for j, fit in enumerate(candidate.result.fits):
+        sel = labels == j
+        if sel.sum() <= G.shape[1]:
+            out.append(fit)
+            continue
+        out.append(candidate.local.fit(_statistics(candidate.local, G[sel], target[sel])))
+    return out
+
+
+def _statistics(local: Any, G: np.ndarray, target: np.ndarray) -> GramStats | list[GramStats]:
+    """The windows' statistics, in five contiguous blocks for a model that chooses its
+    threshold by cross-validation."""
+    spec = local.spec
+    if getattr(spec, "criterion", None) == "cv" and getattr(spec, "threshold", 0) == "auto":
+        parts = np.array_split(np.arange(G.shape[0]), 5)
+        return [GramStats.from_arrays(G[i], target[i]) for i in parts]
+    return GramStats.from_arrays(G, target)
+
+
+def autocorrelation_time(residuals: np.ndarray, lengths: np.ndarray) -> float:
+    """Integrated autocorrelation time of residuals (n, m) over runs, averaged over columns.
+
+    Missing rows (NaN) are set to zero after centring.  ``tau = 1 + 2 sum_k rho_k`` with the
+    sum stopped at the first lag whose estimate is not positive (Geyer's initial positive
+    sequence, see the module notes), at most a quarter of the shortest run; never below 1.
+    """
+    r = np.asarray(residuals, dtype=np.float64)
+    r = r[:, None] if r.ndim == 1 else r
+    lengths = np.asarray(lengths, dtype=np.int64)
+    if r.shape[0] < 4 or lengths.size == 0:
+        return 1.0
+    max_lag = max(1, int(_MAX_LAG_SHARE * max(int(lengths.min()), 4)))
+    taus = []
+    for j in range(r.shape[1]):
+        col = r[:, j]
+        ok = np.isfinite(col)
+        if ok.sum() < 4:
+            continue
+        x = np.where(ok, col - col[ok].mean(), 0.0)
+        acf = _acf(x, lengths, max_lag)
+        if acf[0] <= 0:
+            continue
+        rho = acf[1:] / acf[0]
+        stop = np.flatnonzero(rho <= 0)
+        rho = rho[: stop[0]] if stop.size else rho
+        taus.append(1.0 + 2.0 * float(rho.sum()))
+    return max(1.0, float(np.mean(taus))) if taus else 1.0
+
+
+def _acf(x: np.ndarray, lengths: np.ndarray, max_lag: int) -> np.ndarray:
+    """Sums of lagged products within runs, lags 0..max_lag (FFT per run)."""
+    out = np.zeros(max_lag + 1)
+    offset = 0
+    for length in lengths:
+        seg = x[offset : offset + int(length)]
+        offset += int(length)
+        if seg.size < 2:
+            out[0] += float(seg @ seg)
+            continue
+        size = 1 << int(np.ceil(np.log2(2 * seg.size)))
+        f = np.fft.rfft(seg, size)
+        acov = np.fft.irfft(f * np.conj(f), size)[: min(max_lag + 1, seg.size)]
+        out[: acov.size] += acov
+    return out
+
+
+def choose(candidates: list[Candidate], windows: Windows) -> tuple[pd.DataFrame, Candidate, float]:
+    """The selection table, the chosen candidate and the autocorrelation time used.
+
+    The autocorrelation time is that of the best-fitting candidate's residuals (the highest
+    log-likelihood among those that did not collapse); see the module notes.
+    """
+    live = [c for c in candidates if not c.collapsed] or candidates
+    best_fit = max(live, key=lambda c: c.loglik)
+    tau = autocorrelation_time(best_fit.residuals, windows.lengths)
+    n = windows.n_windows
+    table = pd.DataFrame(
+        [
             {
-                "K": k,
-                "n_regimes": res.n_regimes,
-                "loglik": res.loglik,
-                "n_params": n_params,
-                "bic": information_criterion(res.loglik, n_params, train.n_rows),
-                "holdout_rmse": rmse,
+                "K": c.k,
+                "degree": "terms" if c.degree is None else c.degree,
+                "n_regimes": c.result.n_regimes,
+                "loglik": c.loglik,
+                "n_params": c.n_params,
+                "criterion": information_criterion(c.loglik, c.n_params, n, tau),
+                "effective_windows": n / tau,
+                "collapsed": c.collapsed,
+                "chosen": False,
             }
-        )
-        results[k] = res
-    if not table_rows:
-        raise FitError("no number of regimes could be fitted")
-    table = pd.DataFrame(table_rows)
-    table["chosen"] = False
-    bic = table["bic"].to_numpy()
-    # the smaller K on a tie, round-off included (1e-9 of the criterion's size): two K that
-    # end with the same regimes can differ in the last digits through their iteration history
-    tie = 1e-9 * max(float(np.nanmax(np.abs(bic))), 1.0)
-    table.loc[int(np.flatnonzero(bic <= np.nanmin(bic) + tie)[0]), "chosen"] = True
-    return table, results
+            for c in candidates
+        ]
+    )
+    crit = np.where(table["collapsed"].to_numpy(), np.inf, table["criterion"].to_numpy())
+    if not np.isfinite(crit).any():
+        crit = table["criterion"].to_numpy()
+    # the fewer parameters on a tie, round-off included
+    tie = 1e-9 * max(float(np.nanmax(np.abs(table["criterion"]))), 1.0)
+    near = np.flatnonzero(crit <= np.nanmin(crit) + tie)
+    pick = int(near[np.argmin(table["n_params"].to_numpy()[near])])
+    table.loc[pick, "chosen"] = True
+    return table, candidates[pick], tau

@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["segments", "statistics", "switch_counts"]
+__all__ = ["chain_statistics", "segments", "statistics", "switch_counts"]
 
 
 def segments(labels: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -112,4 +112,55 @@ def statistics(
         "share": {str(k): float(counts[k] / total) for k in range(n_regimes)},
         "dwell": dwell,
         "transitions": switch_counts(labels_per_run, n_regimes).tolist(),
+    }
+
+
+def chain_statistics(
+    transmat: np.ndarray, labels_per_run: Sequence[np.ndarray], step: float = 1.0
+) -> dict[str, Any]:
+    """The regimes' Markov chain: transition probabilities and expected stays, with errors.
+
+    The standard error of a transition probability ``p_ij`` estimated from ``n_i`` steps
+    out of regime ``i`` (stays included) is the multinomial ``sqrt(p_ij (1 - p_ij) / n_i)``
+    (common practice); a stay in regime ``i`` lasts ``1 / (1 - p_ii)`` steps on average
+    (a geometric duration), with the delta-method error ``se(p_ii) / (1 - p_ii)^2``.
+
+    Parameters
+    ----------
+    transmat : ndarray of shape (K, K)
+        Row ``i``: probabilities of the next regime after regime ``i``.
+    labels_per_run : list of ndarray of int
+        Regime id per sample of each run (``-1`` = unassigned): the steps counted.
+    step : float
+        Nominal sampling step (time units per sample).
+
+    Returns
+    -------
+    dict
+        ``{"transition_matrix": [[..]], "transition_stderr": [[..]],
+        "expected_duration": {"0": ..}, "expected_duration_stderr": {"0": ..}}``;
+        durations in time units; an error is None where no step leaves the regime.
+    """
+    p = np.asarray(transmat, dtype=np.float64)
+    k = p.shape[0]
+    steps = np.zeros(k)
+    for lab in labels_per_run:
+        lab = np.asarray(lab, dtype=np.int64)
+        prev, cur = lab[:-1], lab[1:]
+        ok = (prev >= 0) & (cur >= 0)
+        steps += np.bincount(prev[ok], minlength=k)[:k]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        se = np.sqrt(p * (1.0 - p) / steps[:, None])
+    stay = np.clip(np.diag(p), 0.0, 1.0 - 1e-12)
+    duration = step / (1.0 - stay)
+    duration_se = step * np.diag(se) / (1.0 - stay) ** 2
+
+    def opt(v: float) -> float | None:
+        return float(v) if np.isfinite(v) else None
+
+    return {
+        "transition_matrix": [[float(v) for v in row] for row in p],
+        "transition_stderr": [[opt(v) for v in row] for row in se],
+        "expected_duration": {str(i): opt(duration[i]) for i in range(k)},
+        "expected_duration_stderr": {str(i): opt(duration_se[i]) for i in range(k)},
     }

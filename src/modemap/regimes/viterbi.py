@@ -1,4 +1,6 @@
-"""Most probable regime sequence (Viterbi decoding) for emissions we compute ourselves.
+"""The Markov chain of regimes over emissions we compute ourselves: the most probable regime
+sequence (Viterbi decoding), and each sample's regime probabilities with the marginal
+likelihood (forward-backward).
 
 The Viterbi recursion ("The Viterbi algorithm", Proceedings of the IEEE 61(3), 1973,
 DOI 10.1109/PROC.1973.9030) runs in hmmlearn's compiled decoder: :class:`_GivenEmissions`
@@ -6,6 +8,14 @@ subclasses hmmlearn's base HMM with an emission log-likelihood that is the matri
 (the Gaussian residual log-likelihood of each regime's local model, plus any location term),
 which is the extension point hmmlearn documents for custom emissions.  A per-sample Python
 loop would take seconds on 10^6 samples; the compiled loop takes a few tens of milliseconds.
+
+The forward-backward recursions ("A maximization technique occurring in the statistical
+analysis of probabilistic functions of Markov chains", Annals of Mathematical Statistics
+41(1), 1970, DOI 10.1214/aoms/1177697196) run in hmmlearn's compiled log-space code the same
+way (:func:`forward_backward`): the forward pass gives the marginal log-likelihood of the
+data, ``log p(y) = log sum over all regime paths of p(path) p(y | path)``, and the two passes
+together each sample's regime probabilities given all the data of its run (the smoothed
+probabilities of a Markov-switching model).
 
 Runs (``lengths``) are decoded independently: each run starts from ``log_start`` whatever the
 previous run ended in, so the best path of the concatenation is the concatenation of the best
@@ -15,10 +25,12 @@ paths of the runs, and the log-probability is their sum (as hmmlearn reports for
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 from hmmlearn.base import BaseHMM
 
-__all__ = ["viterbi", "viterbi_runs"]
+__all__ = ["forward_backward", "forward_gated", "viterbi", "viterbi_runs"]
 
 #: Stand-in for an emission log-likelihood of -inf (hmmlearn's input check rejects
 #: non-finite values); far below any finite score, so such a regime is never chosen
@@ -31,6 +43,26 @@ class _GivenEmissions(BaseHMM):
 
     def _compute_log_likelihood(self, X: np.ndarray) -> np.ndarray:
         return X
+
+
+def _checked(
+    log_emission: np.ndarray, lengths: Any, log_start: np.ndarray, log_trans: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Emissions (n, K) as finite floats (-inf: impossible), run lengths, the chain's logs."""
+    e = np.ascontiguousarray(log_emission, dtype=np.float64)
+    if e.ndim != 2:
+        raise ValueError("log_emission must be 2-D (n_samples, n_regimes)")
+    n, k = e.shape
+    lengths = np.asarray(lengths, dtype=np.int64)
+    if lengths.sum() != n or np.any(lengths < 0):
+        raise ValueError(f"lengths sum to {int(lengths.sum())}, expected {n}")
+    if not np.isfinite(e).all():
+        if np.isnan(e).any():
+            raise ValueError("log_emission contains NaN")
+        e = np.maximum(e, _IMPOSSIBLE)  # -inf -> impossible (+inf is rejected below)
+    log_start = np.asarray(log_start, dtype=np.float64).reshape(k)
+    log_trans = np.asarray(log_trans, dtype=np.float64).reshape(k, k)
+    return e, lengths, log_start, log_trans
 
 
 def viterbi(
@@ -80,28 +112,114 @@ def viterbi_runs(
     log_prob : float
         Sum over runs of each run's best joint log-probability.
     """
-    e = np.ascontiguousarray(log_emission, dtype=np.float64)
-    if e.ndim != 2:
-        raise ValueError("log_emission must be 2-D (n_samples, n_regimes)")
+    e, lengths, log_start, log_trans = _checked(log_emission, lengths, log_start, log_trans)
     n, k = e.shape
-    lengths = np.asarray(lengths, dtype=np.int64)
-    if lengths.sum() != n or np.any(lengths < 0):
-        raise ValueError(f"lengths sum to {int(lengths.sum())}, expected {n}")
     lengths = lengths[lengths > 0]
     if n == 0:
         return np.zeros(0, dtype=np.int64), 0.0
-    log_start = np.asarray(log_start, dtype=np.float64).reshape(k)
-    log_trans = np.asarray(log_trans, dtype=np.float64).reshape(k, k)
     if k == 1:
         runs = lengths.size
         log_prob = e.sum() + log_start[0] * runs + log_trans[0, 0] * (n - runs)
         return np.zeros(n, dtype=np.int64), float(log_prob)
-    if not np.isfinite(e).all():
-        if np.isnan(e).any():
-            raise ValueError("log_emission contains NaN")
-        e = np.maximum(e, _IMPOSSIBLE)  # -inf -> impossible (+inf is rejected below)
     chain = _GivenEmissions(n_components=k, algorithm="viterbi")
     chain.startprob_ = np.exp(log_start)
     chain.transmat_ = np.exp(log_trans)
     log_prob, path = chain.decode(e, lengths=lengths)
     return path.astype(np.int64, copy=False), float(log_prob)
+
+
+def forward_backward(
+    log_emission: np.ndarray,
+    lengths: np.ndarray | list[int],
+    log_start: np.ndarray,
+    log_trans: np.ndarray,
+) -> tuple[float, np.ndarray]:
+    """Marginal log-likelihood and regime probabilities of several runs, never across runs.
+
+    Parameters
+    ----------
+    log_emission : ndarray of shape (n, K)
+        Log-likelihood of each sample under each regime.
+    lengths : sequence of int
+        Samples per run; must sum to ``n``.
+    log_start : ndarray of shape (K,)
+    log_trans : ndarray of shape (K, K)
+        ``log_trans[j, i]`` = log P(regime i at t | regime j at t-1).
+
+    Returns
+    -------
+    log_likelihood : float
+        Sum over runs of ``log p(run's samples)``, every regime path counted.
+    posteriors : ndarray of shape (n, K)
+        ``P(regime at t | all samples of t's run)``; rows sum to one.
+    """
+    e, lengths, log_start, log_trans = _checked(log_emission, lengths, log_start, log_trans)
+    n, k = e.shape
+    if n == 0:
+        return 0.0, np.zeros((0, k))
+    if k == 1:
+        _, log_prob = viterbi_runs(e, lengths, log_start, log_trans)
+        return log_prob, np.ones((n, 1))
+    chain = _GivenEmissions(n_components=k, implementation="log")
+    chain.startprob_ = np.exp(log_start)
+    chain.transmat_ = np.exp(log_trans)
+    log_prob, posteriors = chain.score_samples(e, lengths=lengths[lengths > 0])
+    return float(log_prob), posteriors
+
+
+def forward_gated(
+    log_emission: np.ndarray,
+    lengths: np.ndarray | list[int],
+    log_trans: np.ndarray,
+    log_gate: np.ndarray,
+) -> float:
+    """Marginal log-likelihood of a chain whose transitions depend on the variables.
+
+    The transition from regime ``i`` to ``j`` at step ``t`` has the probability
+    ``trans[i, j] g_t(j) / sum_j' trans[i, j'] g_t(j')``, with ``g_t`` the probability of
+    each regime given the variables at ``t`` (a switching surface's classifier): a chain
+    whose switches are predicted by where the variables are (an input-output hidden
+    Markov model: "Input-output HMMs for sequence processing", IEEE Transactions on Neural
+    Networks 7(5), 1996, DOI 10.1109/72.536317).  The first step of each run has the
+    probabilities ``g_0`` (normalised).  The forward pass runs in log space over all runs at
+    once, one step at a time.
+
+    Parameters
+    ----------
+    log_emission : ndarray of shape (n, K)
+    lengths : sequence of int
+        Steps per run; must sum to ``n``.
+    log_trans : ndarray of shape (K, K)
+    log_gate : ndarray of shape (n, K)
+        ``log g_t(j)``.
+
+    Returns
+    -------
+    float
+        Sum over runs of ``log p(run's samples)``.
+    """
+    from scipy.special import logsumexp
+
+    e, lengths, _, log_trans = _checked(
+        log_emission, lengths, np.zeros(np.shape(log_emission)[1]), log_trans
+    )
+    g = np.maximum(np.asarray(log_gate, dtype=np.float64), _IMPOSSIBLE)
+    lengths = lengths[lengths > 0]
+    if lengths.size == 0:
+        return 0.0
+    top = int(lengths.max())
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
+    # steps laid out (step, run): padded runs stop contributing once they end
+    idx = starts[None, :] + np.arange(top)[:, None]
+    live = np.arange(top)[:, None] < lengths[None, :]
+    idx = np.where(live, idx, 0)
+    first = g[starts] - logsumexp(g[starts], axis=1, keepdims=True)
+    alpha = first + e[starts]
+    for step in range(1, top):
+        rows = idx[step]
+        gate = g[rows]  # (r, K)
+        trans = log_trans[None, :, :] + gate[:, None, :]  # (r, i, j)
+        trans -= logsumexp(trans, axis=2, keepdims=True)
+        new = logsumexp(alpha[:, :, None] + trans, axis=1) + e[rows]
+        alpha = np.where(live[step][:, None], new, alpha)
+    return float(logsumexp(alpha, axis=1).sum())

@@ -58,7 +58,7 @@ def write_fit_outputs(
         raise ModemapError(f"{out}: exists and is not a folder")
     texts = {
         "model.json": dumps_model(model),
-        "labels.csv": labels[["run", "time", "regime"]].to_csv(index=False, float_format="%.10g"),
+        "labels.csv": labels[_label_columns(labels)].to_csv(index=False, float_format="%.10g"),
         "report.md": render_report(
             model, dataset_summary=summarize(dataset) if dataset is not None else None
         ),
@@ -81,3 +81,9 @@ def write_fit_outputs(
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(tmp)
     return [out / name for name in RESULT_FILES]
+
+
+def _label_columns(labels: pd.DataFrame) -> list[str]:
+    """``run, time, regime`` first, then the regime probabilities (``prob_0`` ...)."""
+    probs = sorted((c for c in labels.columns if c.startswith("prob_")), key=lambda c: int(c[5:]))
+    return ["run", "time", "regime", *probs]
