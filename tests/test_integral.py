@@ -20,6 +20,7 @@ import statsmodels.api as sm
 
 from lag_data import held_lag
 from modemap.demos import make_demo
+from modemap.fit.centring import fit_sparse_centred
 from modemap.fit.sparse import LocalFit
 from modemap.fit.statistics import GramStats
 from modemap.regimes.integral import integral_refit, right_ends, window_bounds
@@ -135,6 +136,31 @@ def test_plain_estimate_and_errors_equal_statsmodels_cluster_robust() -> None:
         np.testing.assert_allclose(fit.coef[:, 0], ref.params, rtol=1e-8)
         np.testing.assert_allclose(fit.stderr[:, 0], ref.bse, rtol=1e-6)
         assert done.n_windows[g] == rows.sum()
+
+
+def test_selection_on_windows_over_a_narrow_range_keeps_the_true_terms() -> None:
+    # x' = -0.5 x + 0.1 u + 27 keeps x within about 54-55.2: 1, x and x^2 are nearly
+    # collinear and only centring on the regime's own mean separates them (common
+    # practice: centre before building polynomial terms).  On window statistics the mean is
+    # weighted by the windows' durations (modemap.fit.centring._moments); the plain sum over
+    # the number of windows put it 16 times too far out, and x^2 came in with 1 and x off
+    # by 12-24 % (measured on this data before the fix)
+    rng = np.random.default_rng(0)
+    n, dt = 4000, 0.1
+    u = np.repeat(rng.uniform(0.0, 6.0, n // 50 + 1), 50)[: n - 1]
+    x = held_lag(56.0, u, dt, 0.5, 0.1, 27.0) + 0.01 * rng.standard_normal(n)
+    Z = np.column_stack([x, np.append(u, u[-1])])
+    library = TermLibrary(degree=2).fit(["x", "u"])
+    terms = list(library.terms_)
+
+    def select(stats):
+        return fit_sparse_centred(stats, terms, library.variables_)
+
+    done = _refit(library, Z, dt * np.arange(n), [n], np.zeros(n, dtype=np.int64), 1, select=select)
+    coef = dict(zip(terms, done.fits[0].coef[:, 0], strict=True))
+    assert {t for t, c in coef.items() if c != 0} == {"1", "x", "u"}
+    assert coef["x"] == pytest.approx(-0.5, rel=0.01)
+    assert coef["u"] == pytest.approx(0.1, rel=0.01)
 
 
 @pytest.fixture(scope="module")
