@@ -91,6 +91,17 @@ def _reference_windows(t, Z, labels, window):
     return X, y, start, stretch
 
 
+def _hac_ratio(X, y, stretch, window):
+    """Largest variance of the least-squares coefficients by statsmodels' Newey-West within
+    stretches (two window lengths of lags) over the plain one."""
+    plain = sm.OLS(y, X).fit()
+    hac = sm.OLS(y, X).fit(
+        cov_type="hac-panel",
+        cov_kwds={"groups": stretch, "maxlags": 2 * window, "use_correction": False},
+    )
+    return float(np.max((hac.bse / plain.bse) ** 2))
+
+
 def test_window_bounds_stay_inside_stretches_and_runs() -> None:
     # run 1: label 0 on samples 0-3, label 1 on sample 4; run 2: one sample of each label
     labels = np.array([0, 0, 0, 0, 1, 1, 0])
@@ -181,13 +192,8 @@ def test_effective_windows_follow_the_sandwich_and_never_exceed_the_windows() ->
     labels = np.zeros(n, dtype=np.int64)
     X, y, _, stretch = _reference_windows(t, Z, labels, window)
 
-    def ratio(columns):  # largest Newey-West variance over the plain one, by statsmodels
-        plain = sm.OLS(y, X[:, columns]).fit()
-        hac = sm.OLS(y, X[:, columns]).fit(
-            cov_type="hac-panel",
-            cov_kwds={"groups": stretch, "maxlags": 2 * window, "use_correction": False},
-        )
-        return float(np.max((hac.bse / plain.bse) ** 2))
+    def ratio(columns):
+        return _hac_ratio(X[:, columns], y, stretch, window)
 
     # a model without u: the residual is b times the integral of u, serially correlated
     # across many windows, so the sandwich variance is well above the plain one and the
@@ -203,6 +209,45 @@ def test_effective_windows_follow_the_sandwich_and_never_exceed_the_windows() ->
     done = _refit(library, Z, t, [n], labels, 1, window=window, compensate=False)
     assert ratio([0, 1, 2]) < 1.0
     assert done.stats[0].n == done.n_windows[0]
+
+
+def test_selection_and_effective_windows_are_iterated_until_the_support_settles() -> None:
+    # the fit handed in lacks u, whose contribution, left in its residuals, is serially
+    # correlated over many windows: the first selection sees n / (a large ratio) windows;
+    # it finds u, and the second sees the windows counted on the residuals of 1, x, u
+    # (ratios by statsmodels' Newey-West against plain least squares, at least 1); the
+    # support then stays and the selection stops
+    a, b, dt, window, n = 2.0, 3.0, 0.05, 8, 1500
+    t, Z = _lag(a, b, dt, n, seed=6, noise=0.01)
+    labels = np.zeros(n, dtype=np.int64)
+    X, y, _, stretch = _reference_windows(t, Z, labels, window)
+
+    def ratio(columns):
+        return max(1.0, _hac_ratio(X[:, columns], y, stretch, window))
+
+    library = TermLibrary.from_terms(["1", "x", "u"], ["x", "u"])
+    terms = list(library.terms_)
+    seen = []
+
+    def select(stats):
+        seen.append(stats.n)
+        return fit_sparse_centred(stats, terms, library.variables_)
+
+    old = _start_fit(terms, 1, n)
+    old.support[2] = False  # no u
+    dstats = [GramStats.from_arrays(library.transform(Z), np.zeros((n, 1)))]
+    rows = Rows.of(Z, np.zeros((n, 1)), [n], t)
+    done = integral_refit(
+        library, rows, labels, [old], dstats, window=window, compensate=False, select=select
+    )
+    count = done.n_windows[0]
+    assert ratio([0, 1]) > 2.0
+    assert seen == [
+        pytest.approx(count / ratio([0, 1]), rel=1e-6),
+        pytest.approx(count / ratio([1, 2]), rel=1e-6),
+    ]
+    assert done.fits[0].support[:, 0].tolist() == [False, True, True]
+    assert done.fits[0].coef[1:, 0] == pytest.approx([-a, b], rel=0.01)
 
 
 def test_selection_on_windows_over_a_narrow_range_keeps_the_true_terms() -> None:

@@ -46,8 +46,11 @@ estimate is kept for that state and a note says so.
 window statistics scaled to an effective number of independent windows (the
 largest ratio of a sandwich variance to the plain least-squares one, never
 below 1); those scaled statistics are also what is handed on for the
-equilibria's standard errors.  The residual covariance of each fit stays that
-of the derivative targets, which the decoding of new data and the reports use.
+equilibria's standard errors.  The ratio comes from the residuals of the
+support being chosen among, so selection and ratio are iterated until the
+supports settle (at most ``_SELECTION_ROUNDS`` selections).  The residual
+covariance of each fit stays that of the derivative targets, which the decoding
+of new data and the reports use.
 """
 
 from __future__ import annotations
@@ -74,6 +77,8 @@ _CHUNK_ROWS = 65536
 _LAG_WINDOWS = 2
 #: Scores handled at once by :class:`LongRunVariance` (each group start adds ``lags`` rows).
 _SCORE_ROWS = 4096
+#: Most rounds of selection and effective number of windows (see :func:`integral_refit`).
+_SELECTION_ROUNDS = 3
 #: Windows shorter than this many intervals keep the plain trapezoidal rule.
 _MIN_CORRECTED = 3
 
@@ -329,8 +334,9 @@ def integral_refit(
     select : callable, optional
         ``select(stats) -> LocalFit``: the sparse selection.  When given, each regime's
         terms are chosen again on its window statistics (scaled to the effective number
-        of windows, see :func:`_sandwich`) before the final estimate; otherwise the
-        supports of ``fits`` are kept.
+        of windows, see :func:`_sandwich`, which is counted again on the chosen support
+        until the supports settle) before the final estimate; otherwise the supports of
+        ``fits`` are kept.
 
     Returns
     -------
@@ -360,18 +366,26 @@ def integral_refit(
     fits = list(fits)
     solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
     spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
-    if select is not None:
+    # the effective number of windows comes from the residuals of the support it selects
+    # among; a support that misses a term leaves it in the residuals, serially correlated,
+    # and counts too few windows, so the two are iterated until the supports settle
+    for _ in range(_SELECTION_ROUNDS if select is not None else 0):
+        changed = False
         for g, (coef, normal, _) in enumerate(solved):
             _, effective = _sandwich(fits[g], coef, normal, spread[g], stats[g])
             if effective.n > p:  # enough independent windows to choose among the terms
                 chosen = select(effective)
+                support = np.asarray(chosen.support, dtype=bool)
+                changed |= not np.array_equal(support, fits[g].support)
                 fits[g] = dataclasses.replace(
                     fits[g],
-                    support=np.asarray(chosen.support, dtype=bool),
+                    support=support,
                     n_params=int(chosen.n_params),
                     threshold=np.asarray(chosen.threshold),
                     path=chosen.path,
                 )
+        if not changed:
+            break
         solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
         spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
     new_fits, new_stats = [], []
