@@ -262,5 +262,5 @@ def test_reactor_equilibria_carry_standard_errors(reactor) -> None:
             if q.stability.startswith("stable"):
                 # noise of the demo (truth sidecar): 0.003 mol/L and 0.2 K per sample; the
                 # steady states, seen by thousands of samples, come out well below it
-                # (measured 0.0008-0.0019 mol/L and 0.10-0.14 K)
+                # (measured 0.0006-0.0012 mol/L and 0.07-0.09 K)
                 assert q.stderr["C_A"] < 0.003 and q.stderr["T"] < 0.2

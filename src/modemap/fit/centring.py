@@ -13,8 +13,9 @@ transform without touching the samples: ``G_std = M' G M``,
 :func:`fit_sparse_centred` therefore
 
 1. takes the mean and scale of every variable from the statistics themselves
-   (the constant and linear terms' sums and squares: a regime's own operating
-   point when the statistics are a regime's);
+   (the constant and linear terms' products, weighted by the constant column: a
+   regime's own operating point when the statistics are a regime's, for sample
+   and for integral statistics alike, see :func:`_moments`);
 2. selects terms by sequentially thresholded least squares on the centred
    statistics;
 3. maps each selected centred monomial to the raw monomials of its expansion
@@ -93,17 +94,35 @@ def centring_matrix(
 def _moments(
     stats: GramStats, terms: Sequence[str], variables: Sequence[str]
 ) -> tuple[np.ndarray, np.ndarray] | None:
-    """Mean and standard deviation of each variable from the statistics, if derivable."""
+    """Mean and standard deviation of each variable, weighted by the constant column.
+
+    With ``g`` the constant term's column, a variable's column ``z`` has the mean
+    ``mu = g'z / g'g`` (the least-squares coefficient of ``z`` on ``g``) and the
+    variance ``z'z / g'g - mu^2`` (the squared residual of that fit per unit of
+    ``g'g``), so ``z - mu g`` is orthogonal to ``g``.  On sample statistics ``g`` is a
+    column of ones (weights, when the statistics are weighted): the plain mean and
+    variance.  On integral statistics, whose rows are windows, ``g`` holds the windows'
+    durations ``T`` and ``z`` the integrals ``T zbar`` of the variable: the mean is that of
+    the windows' averages ``zbar`` weighted by ``T^2`` (for windows of one length, their
+    plain mean), where the sum of ``z`` over the number of windows would be ``T`` times
+    too large.
+    None when the library has no constant term (nothing to centre against) or there are
+    fewer than two rows.
+    """
     index = {t: i for i, t in enumerate(terms)}
     if "1" not in index or stats.n <= 1:
+        return None
+    one = index["1"]
+    weight = stats.gram[one, one]
+    if not weight > 0:
         return None
     mean, scale = np.zeros(len(variables)), np.ones(len(variables))
     for v, name in enumerate(variables):
         i = index.get(name)
         if i is None:
             continue  # variable absent from the library (e.g. a switching input)
-        mu = stats.term_sum[i] / stats.n
-        var = stats.gram[i, i] / stats.n - mu * mu
+        mu = stats.gram[one, i] / weight
+        var = stats.gram[i, i] / weight - mu * mu
         mean[v] = mu
         scale[v] = np.sqrt(var) if var > 1e-12 * max(mu * mu, 1.0) else 1.0
     return mean, scale

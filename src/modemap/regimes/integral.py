@@ -24,8 +24,9 @@ the step.
 **Windows.**  Every stretch of one label within a run has a window of
 ``window`` sample intervals starting at each of its samples (shorter stretches:
 one window over all of it).  Windows that overlap have correlated residuals, so
-the standard errors are a sandwich over blocks of ``_BLOCK_WINDOWS`` window
-lengths (batch means, common practice).
+the standard errors are a sandwich whose middle is the Newey-West long-run
+variance of the windows' scores within each stretch, with two window lengths of
+lags (:class:`LongRunVariance`).
 
 **Noise in the regressors.**  The integrated terms are computed from noisy
 states, which biases least squares towards zero on every term that carries
@@ -43,10 +44,13 @@ estimate is kept for that state and a note says so.
 
 **Selection.**  Given a selection function, the terms are chosen again on the
 window statistics scaled to an effective number of independent windows (the
-largest ratio of a sandwich variance to the plain least-squares one); those
-scaled statistics are also what is handed on for the equilibria's standard
-errors.  The residual covariance of each fit stays that of the derivative
-targets, which the decoding of new data and the reports use.
+largest ratio of a sandwich variance to the plain least-squares one, never
+below 1); those scaled statistics are also what is handed on for the
+equilibria's standard errors.  The ratio comes from the residuals of the
+support being chosen among, so selection and ratio are iterated until the
+supports settle (at most ``_SELECTION_ROUNDS`` selections).  The residual
+covariance of each fit stays that of the derivative targets, which the decoding
+of new data and the reports use.
 """
 
 from __future__ import annotations
@@ -66,11 +70,15 @@ from modemap.fit.uncertainty import standard_errors
 from modemap.regimes.rows import Rows
 from modemap.regimes.segments import stepped_columns
 
-__all__ = ["IntegralRefit", "integral_refit", "right_ends", "window_bounds"]
+__all__ = ["IntegralRefit", "LongRunVariance", "integral_refit", "right_ends", "window_bounds"]
 
 _CHUNK_ROWS = 65536
-#: Blocks for the standard errors: this many window lengths of one stretch.
-_BLOCK_WINDOWS = 10
+#: Lags of the long-run variance of the scores, in window lengths (:class:`LongRunVariance`).
+_LAG_WINDOWS = 2
+#: Scores handled at once by :class:`LongRunVariance` (each group start adds ``lags`` rows).
+_SCORE_ROWS = 4096
+#: Most rounds of selection and effective number of windows (see :func:`integral_refit`).
+_SELECTION_ROUNDS = 3
 #: Windows shorter than this many intervals keep the plain trapezoidal rule.
 _MIN_CORRECTED = 3
 
@@ -186,27 +194,12 @@ def _run_ranges(lengths: Sequence[int]) -> list[tuple[int, int]]:
     return list(zip((ends - np.asarray(lengths)).tolist(), ends.tolist(), strict=True))
 
 
-def _blocks(start: np.ndarray, stretch: np.ndarray, length: int) -> np.ndarray:
-    """Block number of every window: its stretch cut into pieces of ``length`` samples."""
-    if start.size == 0:
-        return np.zeros(0, dtype=np.int64)
-    first = np.ones(start.size, dtype=bool)
-    first[1:] = stretch[1:] != stretch[:-1]
-    origin = np.maximum.accumulate(np.where(first, start, 0))
-    piece = (start - origin) // length
-    new = first.copy()
-    new[1:] |= piece[1:] != piece[:-1]
-    return np.cumsum(new) - 1
-
-
-def _chunks(start: np.ndarray, block: np.ndarray) -> list[tuple[int, int]]:
-    """Groups of consecutive windows, about ``_CHUNK_ROWS`` samples each, whole blocks only."""
+def _chunks(start: np.ndarray) -> list[tuple[int, int]]:
+    """Groups of consecutive windows, about ``_CHUNK_ROWS`` samples each."""
     out, i = [], 0
     while i < start.size:
         j = int(np.searchsorted(start, start[i] + _CHUNK_ROWS, side="left"))
         j = max(j, i + 1)
-        if j < start.size:  # move the cut to the next block boundary
-            j = int(np.searchsorted(block, block[j - 1], side="right"))
         out.append((i, j))
         i = j
     return out
@@ -230,10 +223,10 @@ class _Windows:
         self.smooth = _smooth_samples(time, lengths, labels, self.own)
         start, end, stretch = window_bounds(lengths, labels, window)
         keep = (labels[start] >= 0) & (labels[start] < n_regimes)  # unassigned samples: none
-        self.start, self.end, stretch = start[keep], end[keep], stretch[keep]
+        self.start, self.end, self.stretch = start[keep], end[keep], stretch[keep]
         self.regime = labels[self.start].astype(np.int64)
-        self.block = _blocks(self.start, stretch, _BLOCK_WINDOWS * window)
-        self.chunks = _chunks(self.start, self.block)
+        self.lags = _LAG_WINDOWS * window
+        self.chunks = _chunks(self.start)
 
     def at_right(self, func, values: np.ndarray, lo: int, hi: int) -> np.ndarray:
         """``func`` at the right end of intervals ``lo - 1 .. hi - 2``, by sample ``lo .. hi - 1``.
@@ -341,8 +334,9 @@ def integral_refit(
     select : callable, optional
         ``select(stats) -> LocalFit``: the sparse selection.  When given, each regime's
         terms are chosen again on its window statistics (scaled to the effective number
-        of windows, see :func:`_sandwich`) before the final estimate; otherwise the
-        supports of ``fits`` are kept.
+        of windows, see :func:`_sandwich`, which is counted again on the chosen support
+        until the supports settle) before the final estimate; otherwise the supports of
+        ``fits`` are kept.
 
     Returns
     -------
@@ -372,18 +366,26 @@ def integral_refit(
     fits = list(fits)
     solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
     spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
-    if select is not None:
+    # the effective number of windows comes from the residuals of the support it selects
+    # among; a support that misses a term leaves it in the residuals, serially correlated,
+    # and counts too few windows, so the two are iterated until the supports settle
+    for _ in range(_SELECTION_ROUNDS if select is not None else 0):
+        changed = False
         for g, (coef, normal, _) in enumerate(solved):
             _, effective = _sandwich(fits[g], coef, normal, spread[g], stats[g])
             if effective.n > p:  # enough independent windows to choose among the terms
                 chosen = select(effective)
+                support = np.asarray(chosen.support, dtype=bool)
+                changed |= not np.array_equal(support, fits[g].support)
                 fits[g] = dataclasses.replace(
                     fits[g],
-                    support=np.asarray(chosen.support, dtype=bool),
+                    support=support,
                     n_params=int(chosen.n_params),
                     threshold=np.asarray(chosen.threshold),
                     path=chosen.path,
                 )
+        if not changed:
+            break
         solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
         spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
     new_fits, new_stats = [], []
@@ -478,31 +480,96 @@ def _add_noise_bias(
             bias_cross[g][:, j] += noise_var[j] * cross
 
 
+class LongRunVariance:
+    """Newey-West long-run variance of a sequence of scores, fed one piece at a time.
+
+    For scores ``s_i`` (rows, in order) in groups of consecutive rows (rows of different
+    groups are taken as independent) the estimate is::
+
+        S = sum_i s_i s_i' + sum_(l=1..L) (1 - l / (L + 1)) sum_i (s_i s_(i-l)' + s_(i-l) s_i')
+
+    the inner pairs running over rows ``i, i - l`` of the same group: the Bartlett kernel
+    with ``L`` lags ("A simple, positive semi-definite, heteroskedasticity and
+    autocorrelation consistent covariance matrix", Econometrica 55(3), 703-708, 1987, DOI
+    10.2307/1913610).  It is computed as ``sum_t B_t B_t' / (L + 1)`` over the sums ``B_t``
+    of ``L + 1`` consecutive rows of the sequence with ``L`` zero rows between groups and
+    at both ends (every pair ``i, j`` lies together in ``L + 1 - |i - j|`` such sums), so
+    the cost is that of ``sum_i s_i s_i'`` whatever ``L``.  The last ``L`` rows of a piece
+    are kept for the sums that reach into the next one, so cutting the sequence into pieces
+    does not change the result.
+
+    Parameters
+    ----------
+    lags : int
+        ``L`` (>= 0).
+    shape : tuple of int
+        Shape of one score, ``(..., p)``; the result has shape ``(..., p, p)``.
+    """
+
+    def __init__(self, lags: int, shape: tuple[int, ...]) -> None:
+        self.lags = int(lags)
+        if self.lags < 0:
+            raise ValueError(f"lags must be >= 0, got {lags!r}")
+        self._tail = np.zeros((self.lags, *shape))
+        self._group: Any = None
+        self.total = np.zeros((*shape, shape[-1]))
+
+    def add(self, scores: np.ndarray, groups: np.ndarray) -> None:
+        """Append rows ``scores (n, ..., p)`` with their group labels ``groups (n,)``."""
+        scores = np.asarray(scores, dtype=np.float64)
+        groups = np.asarray(groups)
+        for a in range(0, groups.size, _SCORE_ROWS):  # bounds the zero rows held at once
+            self._add(scores[a : a + _SCORE_ROWS], groups[a : a + _SCORE_ROWS])
+
+    def _add(self, scores: np.ndarray, groups: np.ndarray) -> None:
+        new = np.ones(groups.size, dtype=bool)
+        new[1:] = groups[1:] != groups[:-1]
+        new[0] = self._group is None or groups[0] != self._group
+        # row i goes after lags zero rows for every group that starts at or before it
+        place = np.arange(groups.size) + self.lags * np.cumsum(new)
+        piece = np.zeros((int(place[-1]) + 1, *scores.shape[1:]))
+        piece[place] = scores
+        self._group = groups[-1]
+        extra, self._tail = self._sums(piece)
+        self.total += extra
+
+    def _sums(self, piece: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``sum B_t B_t' / (L + 1)`` over the sums ending on the rows of ``piece``, and the
+        last ``L`` rows."""
+        rows = np.concatenate([self._tail, piece])
+        cum = np.zeros((rows.shape[0] + 1, *rows.shape[1:]))
+        np.cumsum(rows, axis=0, out=cum[1:])
+        sums = np.moveaxis(cum[self.lags + 1 :] - cum[: piece.shape[0]], 0, -1)  # (..., p, n)
+        extra = (sums @ np.swapaxes(sums, -1, -2)) / (self.lags + 1)
+        return extra, rows[rows.shape[0] - self.lags :]
+
+    def result(self) -> np.ndarray:
+        """The estimate ``S`` over the rows added so far."""
+        closing = np.zeros((self.lags, *self._tail.shape[1:]))  # sums reaching past the end
+        return self.total + self._sums(closing)[0]
+
+
 def _score_spread(
     windows: _Windows, coefs: Sequence[np.ndarray], k: int, p: int, m: int
 ) -> np.ndarray:
-    """Sum over blocks of the outer products of block score sums, ``(k, m, p, p)``.
+    """Long-run variance of each regime's window scores, ``(k, m, p, p)``.
 
-    The score of a window is its integrated terms times its residual; overlapping windows
-    have correlated residuals, but blocks of ``_BLOCK_WINDOWS`` window lengths barely are,
-    so the sum of the blocks' outer products estimates the scores' covariance (batch
-    means; common practice).
+    The score of a window is its integrated terms times its residual.  Overlapping windows
+    have correlated residuals (the target's noise is shared by windows that end or start on
+    one sample, the terms' noise by windows that overlap), out to about one window length;
+    the Newey-West estimate over the windows of each stretch (:class:`LongRunVariance`,
+    ``_LAG_WINDOWS`` window lengths of lags) takes that in.  Windows of different stretches
+    are taken as independent.
     """
-    out = np.zeros((k, m, p, p))
+    spreads = [LongRunVariance(windows.lags, (m, p)) for _ in range(k)]
     for i, j in windows.chunks:
         _, _, X, Y = windows.chunk(i, j)
-        r, block = windows.regime[i:j], windows.block[i:j]
-        first = np.flatnonzero(np.r_[True, block[1:] != block[:-1]])
-        owner = r[first]
+        r, stretch = windows.regime[i:j], windows.stretch[i:j]
         for g in np.unique(r):
             rows = r == g
             resid = Y[rows] - X[rows] @ coefs[g]
-            sub = np.flatnonzero(owner == g)
-            offsets = np.searchsorted(np.flatnonzero(rows), first[sub])
-            for t in range(m):
-                sums = np.add.reduceat(X[rows] * resid[:, t : t + 1], offsets, axis=0)
-                out[g, t] += sums.T @ sums
-    return out
+            spreads[g].add(resid[:, :, None] * X[rows][:, None, :], stretch[rows])
+    return np.stack([s.result() for s in spreads]) if k else np.zeros((0, m, p, p))
 
 
 def _solve(
@@ -551,11 +618,15 @@ def _sandwich(
     """Sandwich standard errors, and the window statistics scaled to match them.
 
     Standard errors are ``N^-1 S N^-1`` (``N`` the normal matrix solved with, ``S`` the
-    block spread of the scores).  The window statistics' plain least-squares variances are
-    scaled up by the largest ratio of a sandwich variance to the plain one (an effective
-    number of independent windows), so that what is computed from them (the selection's
-    criterion, the equilibria's standard errors) errs on the safe side.  Targets with no
-    more windows than terms keep ``old``'s errors.
+    long-run variance of the scores, :func:`_score_spread`).  The window statistics' plain
+    least-squares variances are scaled up by the largest ratio of a sandwich variance to the
+    plain one (an effective number of independent windows), so that what is computed from
+    them (the selection's criterion, the equilibria's standard errors) errs on the safe
+    side.  The ratio is never taken below 1: overlapping windows never carry more
+    information than as many independent ones, and a ratio below 1 only says that the
+    long-run variance came out low (few windows against the lags: the scores of a regime sum
+    to zero at its least-squares solution).  Targets with no more windows than terms keep
+    ``old``'s errors.
     """
     support = np.asarray(old.support, dtype=bool)
     stderr = np.array(old.stderr, dtype=np.float64, copy=True)
@@ -572,8 +643,8 @@ def _sandwich(
         stderr[idx, j] = np.sqrt(np.clip(var, 0.0, None))
         ok = plain[idx, j] > 0
         ratio.extend((var[ok] / plain[idx, j][ok] ** 2).tolist())
-    factor = max(ratio) if ratio else 1.0
-    return stderr, stats * (1.0 / factor) if factor > 0 else stats
+    factor = max([1.0, *ratio])
+    return stderr, stats * (1.0 / factor)
 
 
 def _local_fit(
