@@ -234,3 +234,34 @@ def test_a_rare_cause_of_switching_is_kept_in_the_guard() -> None:
         return w.get("T", 0.0) * temp + w.get("shed", 0.0) * flag + stop.offset > 0
 
     assert fires(60.0, 1.0) and fires(66.0, 0.0) and not fires(60.0, 0.0)
+
+
+# -- logistic regression with standard errors ----------------------------------------------------
+def test_logistic_fit_matches_statsmodels_logit() -> None:
+    # reference: statsmodels' Logit on the Spector and Mazzeo (1980) grades data it ships;
+    # standard errors from the inverse observed information
+    sm = pytest.importorskip("statsmodels.api")
+    from modemap.model.guards import fit_logistic
+
+    data = sm.datasets.spector.load_pandas()
+    ref = sm.Logit(data.endog, sm.add_constant(data.exog)).fit(disp=0)
+    fit = fit_logistic(data.exog.to_numpy(), data.endog.to_numpy())
+    assert fit.intercept == pytest.approx(ref.params["const"], rel=1e-6)
+    assert fit.coef == pytest.approx(ref.params[["GPA", "TUCE", "PSI"]].to_numpy(), rel=1e-6)
+    se = ref.bse[["GPA", "TUCE", "PSI", "const"]].to_numpy()
+    assert fit.stderr == pytest.approx(se, rel=1e-5)
+    assert fit.loglik == pytest.approx(ref.llf, rel=1e-9)
+    assert fit.wald == pytest.approx(ref.tvalues[["GPA", "TUCE", "PSI"]].to_numpy(), rel=1e-5)
+
+
+def test_penalised_logistic_fit_matches_scikit_learn() -> None:
+    # reference: scikit-learn's LogisticRegression minimises the same ridge-penalised objective
+    from modemap.model.guards import fit_logistic
+
+    rng = np.random.default_rng(2)
+    X = rng.normal(size=(500, 3))
+    y = (X @ [1.5, -0.5, 0.0] + rng.logistic(size=500) > 0).astype(int)
+    ref = LogisticRegression(C=0.5, tol=1e-12, max_iter=10_000).fit(X, y)
+    fit = fit_logistic(X, y, C=0.5)
+    assert fit.coef == pytest.approx(ref.coef_[0], abs=1e-6)
+    assert fit.intercept == pytest.approx(ref.intercept_[0], abs=1e-6)
