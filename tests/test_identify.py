@@ -35,6 +35,11 @@ def test_relay_oscillator_is_recovered(relay) -> None:
     # hysteresis: switch on below 2, off above 8, as one-variable thresholds
     thresholds = sorted(-g.offset / g.weights[g.terms.index("x")] for g in model.guards)
     assert thresholds == pytest.approx([2.0, 8.0], abs=0.02)
+    # the family was chosen by the evidence of hysteresis, recorded in the model's metadata
+    evidence = model.metadata["guard_evidence"]
+    assert evidence["hysteresis"] and evidence["family"] == "per-source"
+    assert evidence["chosen_by"] == "evidence" and evidence["gain"] > evidence["margin"]
+    assert set(model.metadata["guard_significance"]) == {"0->1", "1->0"}
     # both equilibria (0 and 10) are virtual: the relay switches before reaching them
     assert all(not e.inside for r in model.regimes for e in r.equilibria)
     # every sample labelled as the truth, up to the naming of ids

@@ -214,6 +214,49 @@ def test_switching_guards_counts_and_hysteresis() -> None:
     assert "per-source" in text
 
 
+def test_switching_says_which_evidence_chose_the_family() -> None:
+    # invented evidence and significance records, as the fit writes them into the metadata
+    model = two_regime_model()
+    model.metadata["guard_evidence"] = {
+        "memoryless": 0.6,
+        "memory": 0.75,
+        "gain": 0.15,
+        "stderr": 0.02,
+        "critical": 2.43,
+        "margin": 0.01,
+        "alpha": 0.01,
+        "lag": 20,
+        "hysteresis": True,
+        "reason": "knowing the regime 20 samples earlier moves the balanced accuracy "
+        "from 0.600 to 0.750 (hysteresis)",
+        "family": "per-source",
+        "chosen_by": "evidence",
+    }
+    model.metadata["guard_significance"] = {
+        "0->1": {"kept": {"T": 5.0}, "dropped": {"q": -0.4}, "override": {}},
+        "1->0": {"kept": {"T": -4.0, "q": 0.2}, "dropped": {}, "override": {"q": "forces at 1"}},
+    }
+    text = render_report(model)
+    switching = text.split("## Switching")[1].split("\n## ")[0]
+    assert "Why this family: knowing the regime 20 samples earlier" in switching
+    assert "at least 0.01 and significant at the 0.01 level" in switching
+    assert "because the data do not support them at the 0.01 level" in switching
+    assert "0 → 1: q (|coef|/se 0.4)." in switching
+    assert "1 → 0: q forces at 1." in switching
+    # shown once, in the switching section, not again in the run details
+    assert "guard_evidence" not in text and "guard_significance" not in text
+    _tables_are_well_formed(text)
+    assert render_report(loads_model(dumps_model(model))) == text
+    # a family set by hand says so, with what the data show
+    model.metadata["guard_evidence"]["chosen_by"] = "kind"
+    assert "The family was set by the guard_kind option. What the data show: knowing" in (
+        render_report(model)
+    )
+    # a model file from before the evidence was recorded: no such sentences
+    plain = render_report(two_regime_model())
+    assert "Why this family" not in plain and "do not support them" not in plain
+
+
 def test_validation_figures() -> None:
     text = render_report(two_regime_model())
     assert "first exceeds the tolerance of 0.15." in text

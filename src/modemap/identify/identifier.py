@@ -290,6 +290,10 @@ class HybridIdentifier(BaseEstimator):
             "notes": list(finder.notes_),
             "switching_inputs": list(finder.switching_inputs_),
             "regime_centroids": centroids,
+            # which evidence chose the guard family, and the guard terms dropped as not
+            # significant (read by the report's switching section)
+            "guard_evidence": dict(surfaces.family_evidence_),
+            "guard_significance": dict(surfaces.significance_),
         }
         ranges = ds.ranges()
         return HybridModel(

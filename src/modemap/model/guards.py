@@ -2,66 +2,110 @@
 
 A guard ``source -> target`` fires where ``weights @ terms(z) + offset > 0``
 (terms evaluated on raw, unscaled variables); when several guards of the
-current regime fire, the largest value wins.  Two families are fitted:
+current regime fire, the largest value wins.  Two families:
 
-``"per-source"``
-    For every source regime ``i``, a class-balanced logistic regression on the
-    transitions out of ``i`` (classes "stay" and "switch to j", multinomial
-    when ``i`` has several targets).  The guard ``i -> j`` is the log-odds of
-    ``j`` against staying.  Guards depend on the source, so hysteresis (a
-    thermostat switching on at 55 and off at 65) is representable.
 ``"memoryless"``
-    One multinomial logistic regression of the regime from the variables; the
-    guard ``i -> j`` is ``w_j - w_i`` (the regime switches to the most probable
-    one).  Guards are made only for transitions seen in the data.
+    The regime is a function of where the system is.  For every pair of regimes
+    ``i < j`` with a switch seen between them, one logistic regression of "in
+    ``j``" against "in ``i``" on the samples labelled ``i`` or ``j``; the guard
+    ``i -> j`` is its log-odds and ``j -> i`` the same surface with the sign
+    turned, so a pair shares one surface.  Guards are made only for transitions
+    seen in the data.
+``"per-source"``
+    For every source regime ``i`` and target ``j`` seen after it, a logistic
+    regression of "switch to ``j``" against "stay in ``i``" on the samples that
+    follow a sample in ``i``.  Guards depend on the source, so hysteresis (a
+    thermostat switching on at 55 and off at 65) is representable.
 
-Pairing of samples: for consecutive samples ``k, k+1`` of one run (never across
-runs, unassigned labels ``-1`` skipped) the *source* is the regime at ``k`` and
-the *features* are the variables at ``k+1``, the first sample where the new
-regime is observed.  Pairing the variables at ``k+1`` (rather than ``k``) puts
-a threshold between the last sample before and the first sample after the
-crossing, i.e. around the true switching value, and makes a switch on a sampled
+Pairing of samples (per-source): for consecutive samples ``k, k+1`` of one run
+(never across runs, unassigned labels ``-1`` skipped) the *source* is the regime
+at ``k`` and the *features* are the variables at ``k+1``, the first sample where
+the new regime is observed.  This puts a threshold between the last sample
+before and the first sample after the crossing, and makes a switch on a sampled
 input (a gate) separable.
 
-Logistic regression ("The regression analysis of binary sequences", Journal of
-the Royal Statistical Society B, 1958) runs on standardised term columns with
-weak regularisation (large ``C``) so that the boundary location on
-near-separable data is set by the data.  The fitted weights are mapped back to
-raw terms exactly: with standardised columns ``(f - m) / s`` the raw weights are
-``w / s`` and the offset ``b - sum(w m / s)`` (exact for any degree because the
-standardisation is applied to the term columns, not to the variables).  Every
-guard is scaled so that its value is a signed distance in standard deviations
-of the term columns, which keeps values comparable between guards.
+Choice of family (``kind="auto"``): memoryless, unless the labelled samples
+show hysteresis, i.e. the same part of the variables' space seen under both
+regimes, told apart only by the past.  The test (:func:`hysteresis_evidence`)
+compares two classifiers of the regime of every labelled sample by blocked
+cross-validation: a multinomial logistic regression on the guard terms of the
+variables (memoryless) and the same with the regime ``lag`` samples earlier
+added as indicator columns (memory).  ``lag`` defaults to a quarter of the
+median complete stay: the regime one sample earlier predicts the current one by
+persistence alone, and near a crossing blurred by noise or by labels a few
+samples late that persistence pays even without hysteresis; a quarter of a
+stay earlier, such a label is as often wrong (a crossing since) as right, while
+in a hysteresis band it still tells which way the system is going.  Folds are
+contiguous blocks of samples (runs never share a block) assigned in turn, since
+neighbouring samples are strongly correlated ("Cross-validation strategies for
+data with temporal, spatial, hierarchical, or phylogenetic structure", Roberts
+et al., Ecography 40, 2017, doi:10.1111/ecog.02881).  The score is the
+balanced accuracy of the out-of-fold predictions; the gain of the memory model
+is written as a sum over blocks, and its standard error is taken from the
+spread of the block sums (blocks as independent units).  Per-source is chosen
+when the gain is at least ``hysteresis_margin`` and exceeds the one-sided
+Student-t critical value at level ``alpha`` (number of blocks - 1 degrees of
+freedom) times its standard error.  :attr:`SwitchingSurfaces.family_evidence_`
+records both scores, the gain, its error, the margin, the decision and a
+one-line reason.
 
-Readable guards: for every guard, each single variable is tried as a threshold
-``v > c`` or ``v < c`` whose location maximises the balanced accuracy (midpoint
-between the neighbouring samples of the two classes).  When the best single
-variable scores within ``simplify_tol`` of the full guard on the held-out
-samples (training samples when the held-out part lacks a class), it replaces
-the full guard, and the text reads ``switch 0 -> 1 when T < 55.0 degC``.  When
-that would drop a variable the full guard leans on, the threshold must also
-catch every training switch the full guard catches: a rare cause of switching
-(a load shed that turns a heater off below its thermostat threshold) moves the
-balanced accuracy by a percent or so, but losing it makes the model wrong.
+Logistic regression ("The regression analysis of binary sequences", Cox,
+Journal of the Royal Statistical Society B 20, 1958) is fitted by penalised
+Newton-Raphson (iteratively reweighted least squares: "Generalized linear
+models", Nelder and Wedderburn, Journal of the Royal Statistical Society A 135,
+1972, doi:10.2307/2344614) on standardised term columns with a weak ridge
+penalty ``1 / (2 C)`` on the slopes, so the boundary of nearly separable data is
+set by the data yet stays finite.  Standard errors are the square roots of the
+diagonal of the inverse observed information (the Hessian of the penalised
+negative log-likelihood at the estimate).
 
-Choice of family (``kind="auto"``): both families are fitted on the first
-``1 - holdout`` of every run, the label sequence of the last ``holdout`` part is
-re-predicted from its first measured label by evaluating the guards on the
-measured variables, and the predicted switches are matched to the measured
-ones (see :func:`modemap.model.switches.match_switches`).  The cost is
-``(missed + spurious) / max(1, measured) + timing_mae / median_dwell`` (times
-in samples); the lower cost wins, ties go to ``"memoryless"`` (the simpler
-family).  The chosen family is then refitted on all samples.
+Significant terms only: a guard's term whose Wald ratio ``|coef| / se`` is below
+the two-sided normal critical value at ``alpha`` is a candidate for removal;
+the weakest candidate is dropped when a likelihood-ratio test (chi-square, one
+degree of freedom, level ``alpha``) agrees, the guard is refitted without it,
+and this repeats until no term can be dropped (the last term always stays).
+The likelihood-ratio check guards against the Hauck-Donner effect: near
+separation the Wald ratio of a strong term shrinks as the coefficient grows
+("Wald's test as applied to hypotheses in logit analysis", Hauck and Donner,
+Journal of the American Statistical Association 72, 1977,
+doi:10.1080/01621459.1977.10479969), so a rare but sure cause of switching (a
+load shed) would otherwise be dropped.  Serially correlated samples make both
+tests optimistic: they drop only terms the data show nothing for.
+:attr:`SwitchingSurfaces.significance_` lists, per guard, the Wald ratios of
+the terms kept and of the terms dropped.
+
+The fitted weights are mapped back to raw terms exactly: with standardised
+columns ``(f - m) / s`` the raw weights are ``w / s`` and the offset
+``b - sum(w m / s)`` (exact for any degree because the standardisation is
+applied to the term columns, not to the variables).  Every guard is scaled so
+that its value is a signed distance in standard deviations of the term columns.
+Per-source guards are then re-centred on the observed crossings (the "stay"
+class is much larger, which pulls the boundary into it).
+
+Readable guards: for every guard the variable it leans on is tried as a
+threshold ``v > c`` or ``v < c`` whose location maximises the balanced accuracy
+(midpoint between the neighbouring samples of the two classes).  When it scores
+within ``simplify_tol`` of the full guard on the held-out tails of the runs
+(training samples when the held-out part lacks a class), it replaces the full
+guard, and the text reads ``switch 0 -> 1 when T < 55.0 degC``.  When that would
+drop a variable the full guard leans on, the threshold must also catch every
+training switch the full guard catches: a rare cause of switching (a load shed
+that turns a heater off below its thermostat threshold) moves the balanced
+accuracy by a percent or so, but losing it makes the model wrong.
 """
 
 from __future__ import annotations
 
+import itertools
 import math
 import warnings
 from collections.abc import Sequence
-from typing import ClassVar
+from dataclasses import dataclass
+from typing import Any, ClassVar
 
 import numpy as np
+from scipy import stats
+from scipy.special import expit
 from sklearn.base import BaseEstimator
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.linear_model import LogisticRegression
@@ -69,13 +113,23 @@ from sklearn.linear_model import LogisticRegression
 from modemap._exceptions import FitError
 from modemap._params import Interval, Options, check_params
 from modemap.model.hybrid import Guard
-from modemap.model.switches import match_switches
 from modemap.terms.library import TermLibrary
 
-__all__ = ["SwitchingSurfaces", "guard_text", "guard_values", "predict_labels"]
+__all__ = [
+    "LogisticFit",
+    "SwitchingSurfaces",
+    "contiguous_blocks",
+    "fit_logistic",
+    "guard_text",
+    "guard_values",
+    "hysteresis_evidence",
+    "predict_labels",
+]
 
 KINDS = ("auto", "per-source", "memoryless")
 _MAX_ROWS_PER_CLASS = 20_000
+_MAX_EVIDENCE_ROWS = 60_000
+_TARGET_BLOCKS = 40
 
 
 # -- sample pairing ----------------------------------------------------------------------------
@@ -104,6 +158,368 @@ def _split_runs(lengths: Sequence[int], holdout: float) -> tuple[np.ndarray, np.
             test[start + m - n_test : start + m] = True
         start += m
     return ~test, test
+
+
+def _position_in_run(lengths: Sequence[int]) -> np.ndarray:
+    lengths = np.asarray(lengths, dtype=np.int64)
+    return np.arange(int(lengths.sum())) - np.repeat(np.cumsum(lengths) - lengths, lengths)
+
+
+def _median_stay(labels: np.ndarray, lengths: Sequence[int]) -> float:
+    """Median length in samples of the complete stays (a switch at both ends, inside one
+    run); of every labelled stretch when no stay is complete."""
+    complete, cut = [], []
+    start = 0
+    for m in np.asarray(lengths, dtype=np.int64):
+        lab = labels[start : start + m]
+        start += m
+        edges = np.flatnonzero(lab[1:] != lab[:-1]) + 1
+        bounds = np.concatenate([[0], edges, [m]])
+        for a, b in itertools.pairwise(bounds):
+            if lab[a] < 0:
+                continue
+            (complete if 0 < a and b < m else cut).append(b - a)
+    stays = complete or cut
+    return float(np.median(stays)) if stays else float(labels.size)
+
+
+def contiguous_blocks(lengths: Sequence[int], size: int) -> np.ndarray:
+    """Block id of every sample: runs cut into contiguous blocks of ``size`` samples.
+
+    Runs never share a block; the last block of a run may be shorter.  Ids count up
+    through the record in order.
+
+    Parameters
+    ----------
+    lengths : sequence of int
+        Samples per run.
+    size : int
+        Block length in samples (at least 1).
+
+    Returns
+    -------
+    ndarray of shape (sum(lengths),) of int
+    """
+    size = max(1, int(size))
+    out, first = [], 0
+    for m in np.asarray(lengths, dtype=np.int64):
+        ids = np.arange(m) // size
+        out.append(ids + first)
+        first += int(ids[-1]) + 1 if m else 0
+    return np.concatenate(out) if out else np.zeros(0, dtype=np.int64)
+
+
+# -- logistic regression with standard errors --------------------------------------------------
+@dataclass
+class LogisticFit:
+    """A binary logistic regression ``P(y = 1) = expit(X @ coef + intercept)``.
+
+    Attributes
+    ----------
+    coef : ndarray of shape (p,)
+    intercept : float
+    stderr : ndarray of shape (p + 1,)
+        Standard errors of ``coef`` then of ``intercept``: square roots of the diagonal
+        of the inverse observed information at the estimate.
+    loglik : float
+        Log-likelihood (without the penalty) at the estimate.
+    """
+
+    coef: np.ndarray
+    intercept: float
+    stderr: np.ndarray
+    loglik: float
+
+    @property
+    def wald(self) -> np.ndarray:
+        """``coef / stderr`` of the slopes."""
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(self.stderr[:-1] > 0, self.coef / self.stderr[:-1], np.inf)
+
+
+def _objective(A, y, w, beta, pen) -> tuple[float, np.ndarray]:
+    eta = A @ beta
+    loglik = -float(np.sum(w * (np.logaddexp(0.0, eta) - y * eta)))
+    return -loglik + 0.5 * float(np.sum(pen * beta**2)), eta
+
+
+def fit_logistic(
+    X: np.ndarray,
+    y: np.ndarray,
+    *,
+    C: float = np.inf,
+    sample_weight: np.ndarray | None = None,
+    max_iter: int = 100,
+    tol: float = 1e-10,
+) -> LogisticFit:
+    """Binary logistic regression by penalised Newton-Raphson, with standard errors.
+
+    Minimises ``-sum(w log L) + ||coef||^2 / (2 C)`` (the intercept is not penalised;
+    ``C = inf``: maximum likelihood), the objective scikit-learn's
+    ``LogisticRegression(C=C)`` minimises.  Newton steps with step halving on the
+    objective (iteratively reweighted least squares; Nelder and Wedderburn, 1972,
+    doi:10.2307/2344614).
+
+    Parameters
+    ----------
+    X : ndarray of shape (n, p)
+    y : ndarray of shape (n,)
+        0 or 1.
+    C : float, default inf
+        Inverse ridge strength on the slopes.
+    sample_weight : ndarray of shape (n,), optional
+        Frequency weights.
+    max_iter : int
+    tol : float
+        Convergence on the largest Newton step (relative to the coefficients).
+
+    Returns
+    -------
+    LogisticFit
+        With standard errors from the observed information ``A' diag(w p (1-p)) A``
+        (``A = [X, 1]``) plus the penalty's ``1/C`` on the slopes.
+    """
+    X = np.asarray(X, dtype=float)
+    y = np.asarray(y, dtype=float).reshape(-1)
+    n, p = X.shape
+    w = np.ones(n) if sample_weight is None else np.asarray(sample_weight, dtype=float)
+    A = np.hstack([X, np.ones((n, 1))])
+    pen = np.zeros(p + 1)
+    if np.isfinite(C):
+        pen[:p] = 1.0 / float(C)
+    # start from the intercept of the constant model
+    mean = float(np.clip(np.sum(w * y) / max(np.sum(w), 1e-300), 1e-12, 1 - 1e-12))
+    beta = np.zeros(p + 1)
+    beta[-1] = math.log(mean / (1.0 - mean))
+    f, eta = _objective(A, y, w, beta, pen)
+    H = np.eye(p + 1)
+    for _ in range(max_iter):
+        prob = expit(eta)
+        grad = A.T @ (w * (prob - y)) + pen * beta
+        H = (A * (w * prob * (1.0 - prob))[:, None]).T @ A + np.diag(pen)
+        try:
+            step = np.linalg.solve(H, grad)
+        except np.linalg.LinAlgError:
+            step = np.linalg.lstsq(H, grad, rcond=None)[0]
+        t = 1.0
+        for _ in range(40):
+            f_new, eta_new = _objective(A, y, w, beta - t * step, pen)
+            if f_new <= f - 1e-4 * t * float(grad @ step) or f_new <= f:
+                break
+            t *= 0.5
+        else:
+            break
+        beta, f, eta = beta - t * step, f_new, eta_new
+        if np.max(np.abs(t * step)) <= tol * (1.0 + np.max(np.abs(beta))):
+            break
+    prob = expit(eta)
+    H = (A * (w * prob * (1.0 - prob))[:, None]).T @ A + np.diag(pen)
+    try:
+        cov = np.linalg.inv(H)
+    except np.linalg.LinAlgError:
+        cov = np.linalg.pinv(H)
+    se = np.sqrt(np.clip(np.diag(cov), 0.0, None))
+    loglik = -float(np.sum(w * (np.logaddexp(0.0, eta) - y * eta)))
+    return LogisticFit(coef=beta[:p].copy(), intercept=float(beta[p]), stderr=se, loglik=loglik)
+
+
+def _prune(
+    X: np.ndarray, y: np.ndarray, w: np.ndarray, C: float, alpha: float
+) -> tuple[np.ndarray, LogisticFit, dict[int, float]]:
+    """Backward elimination of the columns of ``X`` the data do not support.
+
+    Returns the mask of kept columns, the fit on them and the Wald ratio of every
+    dropped column at the time it was dropped.
+    """
+    z_crit = float(stats.norm.ppf(1.0 - alpha / 2.0))
+    lr_crit = float(stats.chi2.ppf(1.0 - alpha, 1))
+    active = np.ones(X.shape[1], dtype=bool)
+    fit = fit_logistic(X, y, C=C, sample_weight=w)
+    dropped: dict[int, float] = {}
+    while active.sum() > 1:
+        cols = np.flatnonzero(active)
+        z = np.abs(fit.wald)
+        done = True
+        for pos in np.argsort(z, kind="stable"):
+            if z[pos] >= z_crit:
+                break
+            trial = active.copy()
+            trial[cols[pos]] = False
+            reduced = fit_logistic(X[:, trial], y, C=C, sample_weight=w)
+            if 2.0 * (fit.loglik - reduced.loglik) < lr_crit:
+                dropped[int(cols[pos])] = float(fit.wald[pos])
+                active, fit, done = trial, reduced, False
+                break
+        if done:
+            break
+    return active, fit, dropped
+
+
+# -- evidence for the guard family -------------------------------------------------------------
+def _thin_rows(rows: np.ndarray, cap: int) -> np.ndarray:
+    if rows.size <= cap:
+        return rows
+    return rows[:: math.ceil(rows.size / cap)]
+
+
+def _balanced_parts(y: np.ndarray, pred: np.ndarray) -> np.ndarray:
+    """Per-sample shares of the balanced accuracy: ``[pred == y] / (K n_y)``; they sum to
+    the mean recall over the classes present in ``y``."""
+    classes, inverse, counts = np.unique(y, return_inverse=True, return_counts=True)
+    return (pred == y) / (classes.size * counts[inverse])
+
+
+def _cv_predict(X: np.ndarray, y: np.ndarray, folds: np.ndarray, C: float, seed: int) -> np.ndarray:
+    pred = np.empty_like(y)
+    for f in np.unique(folds):
+        test = folds == f
+        train = ~test
+        classes = np.unique(y[train])
+        if classes.size < 2:
+            pred[test] = classes[0] if classes.size else -1
+            continue
+        clf = LogisticRegression(C=C, solver="newton-cholesky", max_iter=200, random_state=seed)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            clf.fit(X[train], y[train])
+        pred[test] = clf.predict(X[test])
+    return pred
+
+
+def hysteresis_evidence(
+    F: np.ndarray,
+    labels: np.ndarray,
+    lengths: Sequence[int],
+    *,
+    lag: int | None = None,
+    n_folds: int = 5,
+    margin: float = 0.01,
+    alpha: float = 0.01,
+    C: float = 1e3,
+    seed: int = 0,
+) -> dict[str, Any]:
+    """Do the labelled samples show hysteresis?
+
+    Blocked cross-validation of two classifiers of the regime of every labelled
+    sample: a multinomial logistic regression on ``F`` (memoryless) and on ``F`` plus
+    indicator columns of the regime ``lag`` samples earlier (memory).  See the module
+    notes for the reasoning.
+
+    Parameters
+    ----------
+    F : ndarray of shape (n, p)
+        Features of every sample (the guard terms of the variables, standardised).
+    labels : ndarray of shape (n,) of int
+        Regime per sample, ``-1`` for unassigned.
+    lengths : sequence of int
+        Samples per run.
+    lag : int, optional
+        How far back the memory looks, in samples; default a quarter of the median
+        complete stay, at least 2.
+    n_folds : int
+        Cross-validation folds (blocks are assigned to them in turn).
+    margin : float
+        Smallest gain of balanced accuracy that counts as hysteresis.
+    alpha : float
+        Level of the one-sided test of the gain.
+    C : float
+        Inverse ridge strength of the classifiers.
+    seed : int
+
+    Returns
+    -------
+    dict
+        ``memoryless`` and ``memory`` (cross-validated balanced accuracies), ``gain``
+        (their difference), ``stderr`` (of the gain, from the block sums), ``critical``
+        (the Student-t value the ratio gain / stderr must reach), ``margin``,
+        ``alpha``, ``lag``, ``samples``, ``blocks``, ``folds``, ``hysteresis``
+        (bool: the decision) and ``reason`` (one line).  With fewer than two regimes
+        or too little data the scores are None and ``hysteresis`` is False.
+    """
+    labels = np.asarray(labels, dtype=np.int64)
+    lengths = np.asarray(lengths, dtype=np.int64)
+    n = labels.size
+    stay = _median_stay(labels, lengths)
+    lag = int(lag) if lag is not None else max(2, round(stay / 4.0))
+    out: dict[str, Any] = {
+        "memoryless": None,
+        "memory": None,
+        "gain": None,
+        "stderr": None,
+        "critical": None,
+        "margin": float(margin),
+        "alpha": float(alpha),
+        "lag": lag,
+        "samples": 0,
+        "blocks": 0,
+        "folds": int(n_folds),
+        "hysteresis": False,
+        "reason": "",
+    }
+    pos = _position_in_run(lengths)
+    past = np.full(n, -1, dtype=np.int64)
+    if lag < n:
+        past[lag:] = labels[:-lag]
+    usable = (labels >= 0) & (pos >= lag) & (past >= 0)
+    rows = np.flatnonzero(usable)
+    classes = np.unique(labels[rows])
+    if np.unique(labels[labels >= 0]).size < 2:
+        out["reason"] = "fewer than two regimes among the labelled samples: nothing to test"
+        return out
+    if classes.size < 2:
+        out["reason"] = (
+            f"too few labelled samples with a labelled sample {lag} earlier to test for "
+            "hysteresis; memoryless by default"
+        )
+        return out
+    size = max(math.ceil(n / _TARGET_BLOCKS), 2 * lag)
+    blocks = contiguous_blocks(lengths, size)
+    used_blocks = np.unique(blocks[rows])
+    if used_blocks.size < max(n_folds, 3):
+        out["reason"] = (
+            f"too few samples to test for hysteresis ({used_blocks.size} blocks of {size} "
+            "samples); memoryless by default"
+        )
+        return out
+    rows = _thin_rows(rows, _MAX_EVIDENCE_ROWS)
+    rank = np.searchsorted(used_blocks, blocks[rows])
+    folds = rank % n_folds
+    y = labels[rows]
+    memory = (past[rows][:, None] == classes[None, :]).astype(float)
+    Xa = np.asarray(F, dtype=float)[rows]
+    Xb = np.hstack([Xa, memory])
+    da = _balanced_parts(y, _cv_predict(Xa, y, folds, C, seed))
+    db = _balanced_parts(y, _cv_predict(Xb, y, folds, C, seed))
+    block_gain = np.bincount(rank, weights=db - da, minlength=used_blocks.size)
+    nb = used_blocks.size
+    gain = float(block_gain.sum())
+    se = float(math.sqrt(nb / (nb - 1) * np.sum((block_gain - gain / nb) ** 2)))
+    crit = float(stats.t.ppf(1.0 - alpha, nb - 1))
+    out.update(
+        memoryless=float(da.sum()),
+        memory=float(db.sum()),
+        gain=gain,
+        stderr=se,
+        critical=crit,
+        samples=int(rows.size),
+        blocks=int(nb),
+    )
+    told = (
+        f"knowing the regime {lag} samples earlier moves the cross-validated balanced "
+        f"accuracy of the regime from the variables from {da.sum():.3f} to {db.sum():.3f} "
+        f"(gain {gain:+.3f} ± {se:.3f} over {nb} blocks)"
+    )
+    if gain < margin:
+        out["reason"] = f"{told}: below the margin {margin:g}, no evidence of hysteresis"
+    elif gain <= crit * se:
+        out["reason"] = f"{told}: not significant at the {alpha:g} level, no evidence of hysteresis"
+    else:
+        out["hysteresis"] = True
+        out["reason"] = (
+            f"{told}: above the margin {margin:g} and significant at the {alpha:g} level, "
+            "so the same variables are seen under both regimes (hysteresis)"
+        )
+    return out
 
 
 # -- fitting helpers ---------------------------------------------------------------------------
@@ -137,32 +553,24 @@ def _threshold(v: np.ndarray, y: np.ndarray) -> tuple[float, int, float]:
     return float(0.5 * (vs[p] + vs[p + 1])), sign, float(0.5 + best)
 
 
-def _thin(y: np.ndarray, cap: int) -> np.ndarray:
-    """Rows to keep: every row of a class with at most ``cap`` rows, else ``cap`` evenly
-    strided rows of it.  With class-balanced weights the objective is unchanged in
-    expectation, and the fit cost stays bounded on long records."""
-    keep = []
+def _thin(y: np.ndarray, cap: int) -> tuple[np.ndarray, np.ndarray]:
+    """Rows to keep and their frequency weights: every row of a class with at most ``cap``
+    rows, else ``cap`` evenly strided rows of it, each standing for ``n_class / cap`` rows.
+    The weighted likelihood approximates the full one, and the fit cost stays bounded on
+    long records."""
+    keep, weight = [], []
     for c in np.unique(y):
         rows = np.flatnonzero(y == c)
         if rows.size > cap:
+            w = rows.size / cap
             rows = rows[np.linspace(0, rows.size - 1, cap).astype(np.int64)]
+        else:
+            w = 1.0
         keep.append(rows)
-    return np.sort(np.concatenate(keep))
-
-
-def _logistic(F: np.ndarray, y: np.ndarray, C: float, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """Class-balanced logistic regression; returns (classes, W (n_classes, p), b (n_classes,))."""
-    rows = _thin(y, _MAX_ROWS_PER_CLASS)
-    F, y = F[rows], y[rows]
-    clf = LogisticRegression(C=C, class_weight="balanced", max_iter=2000, random_state=seed)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", ConvergenceWarning)
-        clf.fit(F, y)
-    W, b = clf.coef_, clf.intercept_
-    if W.shape[0] == 1:  # binary: log-odds of classes_[1] against classes_[0]
-        W = np.vstack([np.zeros_like(W[0]), W[0]])
-        b = np.array([0.0, b[0]])
-    return clf.classes_, W, b
+        weight.append(np.full(rows.size, w))
+    keep_all, weight_all = np.concatenate(keep), np.concatenate(weight)
+    order = np.argsort(keep_all, kind="stable")
+    return keep_all[order], weight_all[order]
 
 
 class _Features:
@@ -214,8 +622,8 @@ def _recentre(
 
     For a switch first observed at row ``r`` the crossing lies between the last
     source sample ``r-1`` and the "after" value of :func:`_after`; the guard is
-    set to zero, in the median, halfway between the two.  Class-balanced
-    weighting alone would pull the boundary into the much larger "stay" class.
+    set to zero, in the median, halfway between the two.  The "stay" class is far
+    larger than the "switch" class, which alone would pull the boundary into it.
     """
     if events is None or events.size == 0:
         return guard
@@ -246,7 +654,10 @@ def _decimals(span: float) -> int:
 def guard_text(
     guard: Guard, units: dict[str, str] | None = None, spans: dict[str, float] | None = None
 ) -> str:
-    """Readable text of a guard: a threshold for one variable, else a normalised half-plane."""
+    """Readable text of a guard: a threshold for one variable, else a normalised half-plane.
+
+    Terms with a zero weight (dropped as not significant) are not shown.
+    """
     spans = spans or {}
     # a dimensionless marker ("-", "1") is not shown after a number
     units = {k: v for k, v in (units or {}).items() if v not in ("-", "1", "")}
@@ -331,42 +742,49 @@ def predict_labels(
     return out
 
 
-def _switch_positions(labels: np.ndarray) -> np.ndarray:
-    """Sample positions where the (forward-filled, assigned) label changes."""
-    idx = np.flatnonzero(labels >= 0)
-    if idx.size < 2:
-        return np.zeros(0, dtype=np.int64)
-    lab = labels[idx]
-    return idx[1:][lab[1:] != lab[:-1]]
-
-
 # -- the estimator -----------------------------------------------------------------------------
 class SwitchingSurfaces(BaseEstimator):
     """Learn the guards of a hybrid model from labelled samples.
 
     Parameters
     ----------
-    kind : {"auto", "per-source", "memoryless"}
-        Guard family; ``"auto"`` chooses by held-out prediction of switch times.
-    degree : int
+    kind : {"auto", "per-source", "memoryless"}, default "auto"
+        Guard family; ``"auto"``: memoryless unless the labelled samples show
+        hysteresis (:func:`hysteresis_evidence`).
+    degree : int, default 1
         Polynomial degree of the guard terms (1: half-planes).
-    C : float
-        Inverse regularisation strength of the logistic regressions (on
-        standardised term columns; large = weak regularisation).
-    holdout : float
-        Fraction at the end of every run used for the family choice and for
-        simplifying guards to one variable.
-    simplify_tol : float
+    C : float, default 1e3
+        Inverse ridge strength of the logistic regressions (on standardised term
+        columns; large = weak regularisation).
+    alpha : float, default 0.01
+        Level of the tests: the one-sided test of the hysteresis evidence and the
+        two-sided tests that drop guard terms the data do not support.
+    hysteresis_margin : float, default 0.01
+        Smallest cross-validated gain of balanced accuracy from knowing the past
+        regime that counts as hysteresis.
+    memory_lag : "auto" or int, default "auto"
+        How far back the memory classifier of the evidence looks, in samples;
+        ``"auto"``: a quarter of the median complete stay, at least 2.
+    n_folds : int, default 5
+        Cross-validation folds of the evidence (contiguous blocks assigned in turn).
+    holdout : float, default 0.25
+        Fraction at the end of every run used to judge the one-variable
+        simplification of guards.
+    simplify_tol : float, default 0.02
         Largest loss of balanced accuracy accepted for a one-variable guard.
-    seed : int
+    seed : int, default 0
 
     Attributes
     ----------
     guards_ : list of Guard
     kind_ : str
-    scores_ : dict
-        Per family: ``cost``, ``timing_mae`` (samples), ``missed``, ``spurious``,
-        ``n_measured``.
+        The family used.
+    family_evidence_ : dict
+        What :func:`hysteresis_evidence` returned, plus ``family`` (the family used)
+        and ``chosen_by`` (``"evidence"`` or ``"kind"`` when the family was set).
+    significance_ : dict
+        ``"i->j"`` -> ``{"kept": {term: wald ratio}, "dropped": {term: wald ratio}}``
+        for every guard (ratios on the standardised term columns).
     variables_ : list of str
     """
 
@@ -374,6 +792,10 @@ class SwitchingSurfaces(BaseEstimator):
         "kind": [Options(KINDS)],
         "degree": [Interval(int, 1, None)],
         "C": [Interval(float, 0, None, closed="neither")],
+        "alpha": [Interval(float, 0, 1, closed="neither")],
+        "hysteresis_margin": [Interval(float, 0, 1, closed="left")],
+        "memory_lag": [Options(("auto",)), Interval(int, 1, None)],
+        "n_folds": [Interval(int, 2, None)],
         "holdout": [Interval(float, 0, 1, closed="left")],
         "simplify_tol": [Interval(float, 0, None)],
         "seed": [Interval(int, 0, 2**32 - 1)],
@@ -385,6 +807,10 @@ class SwitchingSurfaces(BaseEstimator):
         kind: str = "auto",
         degree: int = 1,
         C: float = 1e3,
+        alpha: float = 0.01,
+        hysteresis_margin: float = 0.01,
+        memory_lag: str | int = "auto",
+        n_folds: int = 5,
         holdout: float = 0.25,
         simplify_tol: float = 0.02,
         seed: int = 0,
@@ -392,6 +818,10 @@ class SwitchingSurfaces(BaseEstimator):
         self.kind = kind
         self.degree = degree
         self.C = C
+        self.alpha = alpha
+        self.hysteresis_margin = hysteresis_margin
+        self.memory_lag = memory_lag
+        self.n_folds = n_folds
         self.holdout = holdout
         self.simplify_tol = simplify_tol
         self.seed = seed
@@ -428,37 +858,44 @@ class SwitchingSurfaces(BaseEstimator):
         self._Z = Z
         self._units = dict(units or {})
         self._spans = {v: float(np.ptp(Z[:, i])) for i, v in enumerate(self._vars)}
-        train, test = _split_runs(lengths, self.holdout)
         prev, cur = _pairs(labels, lengths)
         k = int(labels.max()) + 1 if labels.size else 0
         self._transitions = np.zeros((max(k, 1), max(k, 1)), dtype=bool)
         moved = labels[prev] != labels[cur]
         self._transitions[labels[prev][moved], labels[cur][moved]] = True
-        self._choice_map: dict = {}
         self._prev = np.full(labels.size, -2, dtype=np.int64)
         self._prev[cur] = labels[prev]
-        run_start = np.repeat(np.cumsum(lengths) - lengths, lengths)
-        self._ok2 = np.arange(labels.size) - run_start >= 2
-        kinds = ["per-source", "memoryless"] if self.kind == "auto" else [self.kind]
-        scores: dict[str, dict] = {}
-        fitted: dict[str, list[Guard]] = {}
-        for kind in kinds:
-            fitted[kind] = self._fit_kind(kind, Z, labels, lengths, train, test)
-            if test.any():
-                scores[kind] = self._score(fitted[kind], Z, labels, lengths, test)
-        if len(kinds) == 1:
-            chosen = kinds[0]
-        elif not scores:
-            chosen = "per-source"
+        self._ok2 = _position_in_run(lengths) >= 2
+
+        evidence = self._evidence(Z, labels, lengths)
+        if self.kind == "auto":
+            chosen = "per-source" if evidence["hysteresis"] else "memoryless"
         else:
-            chosen = min(kinds, key=lambda k: (scores[k]["cost"], k != "memoryless"))
-        choices = self._choice_map if test.any() else None
+            chosen = self.kind
+        evidence["family"] = chosen
+        evidence["chosen_by"] = "evidence" if self.kind == "auto" else "kind"
+
+        # one-variable simplification judged on the held-out tails, then all samples
+        train, test = _split_runs(lengths, self.holdout)
+        self._choice_map: dict = {}
+        self._significance: dict[tuple[int, int], dict] = {}
+        if test.any():
+            self._fit_kind(chosen, Z, labels, lengths, train, test)
+            choices: dict | None = self._choice_map
+        else:
+            choices = None
+        self._significance = {}
         guards = self._fit_kind(chosen, Z, labels, lengths, np.ones_like(train), None, choices)
         for g in guards:
             g.text = guard_text(g, self._units, self._spans)
         self.guards_ = guards
         self.kind_ = chosen
-        self.scores_ = scores
+        self.family_evidence_ = evidence
+        self.significance_ = {
+            f"{g.source}->{g.target}": self._significance[(g.source, g.target)]
+            for g in guards
+            if (g.source, g.target) in self._significance
+        }
         self.variables_ = list(self._vars)
         del self._Z, self._ok2
         return self
@@ -496,6 +933,26 @@ class SwitchingSurfaces(BaseEstimator):
             raise FitError("Z contains NaN or infinite values")
         return Z, labels, lengths
 
+    def _evidence(self, Z, labels, lengths) -> dict[str, Any]:
+        assigned = labels >= 0
+        if not assigned.any():
+            feats = np.zeros((labels.size, 0))
+        else:
+            f = _Features(self._vars, int(self.degree)).fit(Z[assigned])
+            feats = f(Z)
+        lag = None if self.memory_lag == "auto" else int(self.memory_lag)
+        return hysteresis_evidence(
+            feats,
+            labels,
+            lengths,
+            lag=lag,
+            n_folds=int(self.n_folds),
+            margin=float(self.hysteresis_margin),
+            alpha=float(self.alpha),
+            C=float(self.C),
+            seed=int(self.seed),
+        )
+
     def _fit_kind(self, kind, Z, labels, lengths, train, test, choices=None) -> list[Guard]:
         prev, cur = _pairs(labels, lengths)
         use = train[prev] & train[cur]
@@ -503,7 +960,7 @@ class SwitchingSurfaces(BaseEstimator):
         if kind == "per-source":
             groups = self._per_source_groups(labels, prev, cur)
         else:
-            groups = self._memoryless_groups(labels, prev, cur)
+            groups = self._memoryless_groups(labels)
         guards: list[Guard] = []
         for key, (rows, y, pairs) in groups.items():
             tr = rows[use[pairs]] if pairs is not None else rows[train[rows]]
@@ -513,64 +970,156 @@ class SwitchingSurfaces(BaseEstimator):
                 yho = y[held[pairs]] if pairs is not None else y[test[rows]]
             else:
                 ho, yho = rows[:0], y[:0]
-            new = self._guards_for(kind, key, Z, tr, ytr, ho, yho, choices)
-            guards += new
+            guards += self._guards_for(kind, key, Z, tr, ytr, ho, yho, choices)
         return guards
 
     def _per_source_groups(self, labels, prev, cur):
-        """Source regime -> (feature rows, next labels, pair index)."""
+        """(source, target) -> (feature rows, switched?, pair index)."""
         out = {}
         for src in np.unique(labels[prev]):
-            sel = np.flatnonzero(labels[prev] == src)
-            if np.all(labels[cur[sel]] == src):
-                continue  # never left: no guards
-            out[("per-source", int(src))] = (cur[sel], labels[cur[sel]], sel)
+            sel_src = labels[prev] == src
+            for tgt in np.unique(labels[cur][sel_src]):
+                if tgt == src:
+                    continue
+                sel = np.flatnonzero(sel_src & np.isin(labels[cur], [src, tgt]))
+                out[(int(src), int(tgt))] = (cur[sel], labels[cur[sel]] == tgt, sel)
         return out
 
-    def _memoryless_groups(self, labels, prev, cur):
-        rows = np.flatnonzero(labels >= 0)
-        if np.unique(labels[rows]).size < 2:
-            return {}
-        return {("memoryless", -1): (rows, labels[rows], None)}
+    def _memoryless_groups(self, labels):
+        """(i, j), i < j with a switch seen between them -> (rows, in j?, None)."""
+        out = {}
+        obs = self._transitions
+        for i in range(obs.shape[0]):
+            for j in range(i + 1, obs.shape[0]):
+                if obs[i, j] or obs[j, i]:
+                    rows = np.flatnonzero((labels == i) | (labels == j))
+                    out[(i, j)] = (rows, labels[rows] == j, None)
+        return out
+
+    def _surface(self, kind, Z, tr, ytr) -> tuple[_Features, np.ndarray, float, dict] | None:
+        """Logistic surface on the significant terms: features, standardised weights (zero
+        where dropped), intercept and the Wald ratios kept / dropped.
+
+        Memoryless: a plain (unweighted) logistic regression, whose boundary is where the
+        two regimes are equally likely.  Per-source: switches are rare, so each class is
+        weighted to the size of the smaller one (a balanced case-control sample of the
+        switches, "Logistic regression in rare events data", King and Zeng, Political
+        Analysis 9, 2001, doi:10.1093/oxfordjournals.pan.a004868): the boundary is not
+        swamped by the "stay" samples, and the tests see the information the switches
+        carry, not that of every sample.  The ridge is scaled with the total weight, so
+        the estimate is that of the class-balanced fit with ``C`` per sample.
+        """
+        if ytr.all() or not ytr.any():
+            return None
+        feats = _Features(self._vars, int(self.degree)).fit(Z[tr])
+        keep, weight = _thin(ytr.astype(np.int64), _MAX_ROWS_PER_CLASS)
+        X, y = feats(Z[tr[keep]]), ytr[keep].astype(float)
+        C = float(self.C)
+        if kind == "per-source":
+            n_class = np.array([np.sum(weight[y == c]) for c in (0.0, 1.0)])
+            weight = weight * n_class.min() / n_class[y.astype(np.int64)]
+            C *= n_class.sum() / (2.0 * n_class.min())
+        active, fit, dropped = _prune(X, y, weight, C, float(self.alpha))
+        w = np.zeros(X.shape[1])
+        w[active] = fit.coef
+        record = {
+            "kept": {
+                feats.terms[c]: float(z)
+                for c, z in zip(np.flatnonzero(active), fit.wald, strict=True)
+            },
+            "dropped": {feats.terms[c]: z for c, z in dropped.items()},
+        }
+        return feats, w, fit.intercept, record
 
     def _guards_for(self, kind, key, Z, tr, ytr, ho, yho, choices) -> list[Guard]:
-        src = key[1]
-        classes = np.unique(ytr)
-        if classes.size < 2:
+        surface = self._surface(kind, Z, tr, ytr)
+        if surface is None:
             return []
-        feats = _Features(self._vars, int(self.degree)).fit(Z[tr])
-        cls, W, b = _logistic(feats(Z[tr]), ytr, float(self.C), int(self.seed))
+        feats, w_std, b_std, record = surface
+        w, off = feats.to_raw(w_std, b_std)
+        i, j = key
+        full = Guard(source=i, target=j, terms=list(feats.terms), weights=w, offset=off)
         if kind == "per-source":
-            stay = int(np.flatnonzero(cls == src)[0]) if src in cls else None
-            pairs = [(src, int(c)) for c in cls if c != src]
-        else:
-            transitions = self._observed_transitions(cls)
-            pairs = transitions
-        out = []
-        for i, j in pairs:
-            if kind == "per-source":
-                if stay is None:
-                    continue
-                a, c = stay, int(np.flatnonzero(cls == j)[0])
-                sub_tr, sub_ho = np.isin(ytr, [i, j]), np.isin(yho, [i, j])
-            else:
-                a, c = int(np.flatnonzero(cls == i)[0]), int(np.flatnonzero(cls == j)[0])
-                sub_tr, sub_ho = np.isin(ytr, [i, j]), np.isin(yho, [i, j])
-            w, off = feats.to_raw(W[c] - W[a], float(b[c] - b[a]))
-            full = Guard(source=i, target=j, terms=list(feats.terms), weights=w, offset=off)
-            events = tr[ytr == j] if kind == "per-source" else None
-            ok2 = None if events is None else self._prev[events - 1] == i
+            events = tr[ytr]
+            ok2 = self._prev[events - 1] == i
             full = _recentre(full, self._vars, Z, events, ok2)
-            g = self._simplify(
-                full, kind, (tr[sub_tr], ytr[sub_tr] == j), (ho[sub_ho], yho[sub_ho] == j),
-                choices, (events, ok2),
-            )  # fmt: skip
+        full, record["override"] = self._overrides(full, tr, ytr)
+        if kind == "per-source":
+            g = self._simplify(full, kind, (tr, ytr), (ho, yho), choices, (events, ok2))
+            self._significance[(i, j)] = record
+            return [g]
+        # memoryless: one surface per pair, each direction only where a switch was seen
+        g = self._simplify(full, kind, (tr, ytr), (ho, yho), choices, (None, None))
+        out = []
+        if self._transitions[i, j]:
             out.append(g)
+            self._significance[(i, j)] = record
+        if self._transitions[j, i]:
+            back = Guard(j, i, list(g.terms), -np.asarray(g.weights, dtype=float), -g.offset)
+            out.append(back)
+            turned = {"forces": "blocks", "blocks": "forces"}
+            self._significance[(j, i)] = {
+                **record,
+                "override": {
+                    t: ", ".join(
+                        turned[part.split(" ", 1)[0]] + " " + part.split(" ", 1)[1]
+                        for part in v.split(", ")
+                    )
+                    for t, v in record["override"].items()
+                },
+            }
         return out
 
-    def _observed_transitions(self, cls) -> list[tuple[int, int]]:
-        obs = self._transitions
-        return [(int(i), int(j)) for i in cls for j in cls if i != j and obs[i, j]]
+    def _overrides(self, guard: Guard, rows: np.ndarray, y: np.ndarray) -> tuple[Guard, dict]:
+        """Two-valued terms whose one value is seen only with the switch (or only without).
+
+        At such a value (a load-shed flag at 1, a gate) the maximum-likelihood weight of
+        the term is infinite ("On the existence of maximum likelihood estimates in logistic
+        regression models", Albert and Anderson, Biometrika 71, 1984,
+        doi:10.1093/biomet/71.1.1): raising it makes those samples certain without
+        changing the others.  The ridge keeps the fitted weight finite, just large enough
+        for the values of the other terms seen with it, so the guard would stop forcing
+        (or blocking) the switch a little beyond them.  The weight is therefore raised,
+        with the offset moved so the guard is unchanged at the other value, until at that
+        value the guard is at least 1 (forces) or at most -1 (blocks) everywhere in the box
+        of the data.  Returns the guard and ``{term: "forces at v" | "blocks at v"}`` (both,
+        comma-separated, when each value is seen with one class only: a gate).
+        """
+        lib = TermLibrary.from_terms(guard.terms, self._vars)
+        T = lib.transform(self._Z[rows])
+        box = lib.transform(self._Z)
+        lo, hi = box.min(axis=0), box.max(axis=0)
+        w = np.asarray(guard.weights, dtype=float).copy()
+        off = float(guard.offset)
+        found: dict[str, list[str]] = {}
+        for t in np.flatnonzero(w != 0):
+            values = np.unique(T[:, t])
+            if values.size != 2:
+                continue
+            for b_val, a_val in ((values[1], values[0]), (values[0], values[1])):
+                seen = y[T[:, t] == b_val]
+                if seen.all():
+                    sign = 1.0
+                elif not seen.any():
+                    sign = -1.0
+                else:
+                    continue
+                others = np.arange(w.size) != t
+                wo = w[others]
+                low = np.where(wo > 0, wo * lo[others], wo * hi[others]).sum()
+                high = np.where(wo > 0, wo * hi[others], wo * lo[others]).sum()
+                worst = (low if sign > 0 else high) + w[t] * b_val + off
+                if sign * worst < 1.0:
+                    delta = (sign - worst) / (b_val - a_val)
+                    w[t] += delta
+                    off -= delta * a_val
+                word = "forces" if sign > 0 else "blocks"
+                name = guard.terms[t]
+                found.setdefault(name, []).append(f"{word} at {b_val:.6g}")
+        if not found:
+            return guard, {}
+        text = {name: ", ".join(parts) for name, parts in found.items()}
+        return Guard(guard.source, guard.target, list(guard.terms), w, off), text
 
     def _simplify(self, full, kind, train, held, choices, events) -> Guard:
         """Replace a guard by a one-variable threshold when that scores as well."""
@@ -586,7 +1135,10 @@ class SwitchingSurfaces(BaseEstimator):
         cands = [self._leading_variable(full, tr)] if choices is None else [choices[key]]
         best = None
         for v in cands:
-            thr, sign, _ = _threshold(self._Z[tr, v], ytr)
+            if kind == "memoryless":
+                thr, sign = self._logistic_threshold(self._Z[tr, v], ytr)
+            else:  # the location is set by the crossings (re-centred below)
+                thr, sign, _ = _threshold(self._Z[tr, v], ytr)
             sd = float(np.std(self._Z[tr, v])) or 1.0
             w = np.zeros(len(self._vars))
             w[v] = sign / sd
@@ -608,6 +1160,25 @@ class SwitchingSurfaces(BaseEstimator):
             ok = bool(np.all(self._after_rows(best[2], switches)[caught] > 0))
         self._choice_map[key] = best[1] if ok else None
         return best[2] if ok else full
+
+    def _logistic_threshold(self, v: np.ndarray, y: np.ndarray) -> tuple[float, int]:
+        """Threshold and direction of a one-variable memoryless guard.
+
+        Where the two regimes overlap (noise blurs the boundary) the threshold is where a
+        one-variable logistic regression finds them equally likely; the best balanced
+        accuracy would weigh the smaller regime up and move the cut into the larger one.
+        Where they do not overlap (a gate), the middle of the gap between them.
+        """
+        thr, sign, score = _threshold(v, y)
+        if score >= 1.0:
+            return thr, sign
+        keep, weight = _thin(y.astype(np.int64), _MAX_ROWS_PER_CLASS)
+        mu, sd = float(v.mean()), float(v.std()) or 1.0
+        fit = fit_logistic(((v[keep] - mu) / sd)[:, None], y[keep], C=self.C, sample_weight=weight)
+        coef = float(fit.coef[0])
+        if coef == 0.0:
+            return thr, sign
+        return mu - sd * fit.intercept / coef, 1 if coef > 0 else -1
 
     def _after_rows(self, guard: Guard, rows: np.ndarray) -> np.ndarray:
         """Guard values "after" the given rows, as in :func:`predict_labels` (see
@@ -645,34 +1216,3 @@ class SwitchingSurfaces(BaseEstimator):
             z[v] += h[v]
             slopes[v] = (guard_values(guard, self._vars, z[None, :])[0] - base) / h[v]
         return np.abs(slopes) * spread
-
-    def _score(self, guards, Z, labels, lengths, test) -> dict:
-        """Held-out prediction of switch positions (in samples)."""
-        starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
-        measured, predicted, dwell = [], [], []
-        for s, m in zip(starts, lengths, strict=True):
-            idx = np.arange(s, s + m)[test[s : s + m]]
-            lab = labels[idx]
-            valid = np.flatnonzero(lab >= 0)
-            if valid.size < 2:
-                continue
-            idx, lab = idx[valid[0] :], lab[valid[0] :]
-            pred = predict_labels(guards, self._vars, Z[idx], int(lab[0]))
-            sw_m, sw_p = _switch_positions(lab), _switch_positions(pred)
-            measured.append(sw_m + s)
-            predicted.append(sw_p + s)
-            dwell += list(np.diff(sw_m))
-        m_all = np.concatenate(measured) if measured else np.zeros(0)
-        p_all = np.concatenate(predicted) if predicted else np.zeros(0)
-        med = float(np.median(dwell)) if dwell else float(max(int(test.sum()), 1))
-        mi, pi = match_switches(m_all, p_all, window=0.5 * med)
-        mae = float(np.mean(np.abs(m_all[mi] - p_all[pi]))) if mi.size else 0.0
-        missed, spurious = m_all.size - mi.size, p_all.size - pi.size
-        cost = (missed + spurious) / max(1, m_all.size) + mae / med
-        return {
-            "cost": float(cost),
-            "timing_mae": mae,
-            "missed": int(missed),
-            "spurious": int(spurious),
-            "n_measured": int(m_all.size),
-        }

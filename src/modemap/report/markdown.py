@@ -44,6 +44,10 @@ _KIND_TEXT = {
 }
 
 
+#: Metadata the switching section shows, not repeated in the run details.
+_SHOWN_IN_SWITCHING = ("guard_evidence", "guard_significance")
+
+
 def render_report(model: HybridModel, *, dataset_summary: dict | None = None) -> str:
     """Render a readable Markdown report of a hybrid model.
 
@@ -359,6 +363,9 @@ def _switching_section(model: HybridModel) -> str:
         out.append("One regime only: there is no switching.")
         return "\n\n".join(out)
     out.append("Guard family: " + _KIND_TEXT.get(model.guard_kind, model.guard_kind) + ".")
+    why = _family_evidence_text(model)
+    if why:
+        out.append(why)
     if model.guards:
         rows = [[g.source, g.target, _guard_text(model, g)] for g in model.guards]
         out.append(
@@ -368,6 +375,7 @@ def _switching_section(model: HybridModel) -> str:
         )
     else:
         out.append("No switching surface was learnt.")
+    out += _guard_terms_text(model)
     counts = (model.statistics or {}).get("transitions")
     if counts:
         ids = [r.id for r in model.regimes]
@@ -378,6 +386,61 @@ def _switching_section(model: HybridModel) -> str:
         )
     out += _hysteresis_notes(model)
     return "\n\n".join(out)
+
+
+def _family_evidence_text(model: HybridModel) -> str:
+    """Which evidence chose the guard family (``metadata["guard_evidence"]``, written by
+    the fit; absent in model files from before it): one paragraph, or "" ."""
+    ev = (model.metadata or {}).get("guard_evidence")
+    if not isinstance(ev, dict) or not ev.get("reason"):
+        return ""
+    reason = str(ev["reason"])
+    if ev.get("chosen_by") == "kind":
+        return f"The family was set by the guard_kind option. What the data show: {reason}."
+    rule = (
+        "Hysteresis is concluded only when the cross-validated gain is at least "
+        f"{_num(ev.get('margin'))} and significant at the {_num(ev.get('alpha'))} level; "
+        "otherwise the guards are memoryless."
+    )
+    return f"Why this family: {reason}. {rule}"
+
+
+def _guard_terms_text(model: HybridModel) -> list[str]:
+    """The guard terms left out as not significant, and the two-valued terms that force or
+    block a switch (``metadata["guard_significance"]``, written by the fit)."""
+    sig = (model.metadata or {}).get("guard_significance")
+    if not isinstance(sig, dict):
+        return []
+    dropped, forced = [], []
+    for key, record in sig.items():
+        if not isinstance(record, dict):
+            continue
+        pair = str(key).replace("->", " → ")
+        if record.get("dropped"):
+            names = ", ".join(
+                f"{t} (|coef|/se {_num(abs(z), 2)})" if isinstance(z, int | float) else str(t)
+                for t, z in record["dropped"].items()
+            )
+            dropped.append(f"{pair}: {names}")
+        if record.get("override"):
+            forced.append(
+                pair + ": " + ", ".join(f"{t} {v}" for t, v in record["override"].items())
+            )
+    out = []
+    if dropped:
+        level = ((model.metadata or {}).get("guard_evidence") or {}).get("alpha")
+        at = f" at the {_num(level)} level" if level is not None else ""
+        out.append(
+            f"Terms left out of the guards because the data do not support them{at} (Wald "
+            "ratio |coef|/se, confirmed by a likelihood-ratio test): " + "; ".join(dropped) + "."
+        )
+    if forced:
+        out.append(
+            "Switches forced or blocked by one value of a two-valued variable (every sample "
+            "at that value switched, or none did; the guard holds it across the data's "
+            "range): " + "; ".join(forced) + "."
+        )
+    return out
 
 
 def _threshold(model: HybridModel, g: Guard) -> tuple[str, float, bool] | None:
@@ -565,6 +628,8 @@ def _metadata_section(model: HybridModel) -> str:
             rows.append((key.replace("_", " "), meta.pop(key)))
     options = meta.pop("options", None)
     notes = meta.pop("notes", None)
+    for key in _SHOWN_IN_SWITCHING:
+        meta.pop(key, None)
     rows += [(k, x) for k, x in meta.items()]
     out = ["## Run details"] + ([_table(["Item", "Value"], rows)] if rows else [])
     if isinstance(options, dict) and options:
