@@ -260,14 +260,18 @@ def score(
     for j, c in enumerate(coefs):
         sel = labels == j
         resid[sel] = target[sel] - G[sel] @ c
-    # one covariance per regime: regimes may differ in their noise as in their dynamics
+    # the noise model of the refinement: one covariance per regime ("full", regimes may
+    # differ in their noise as in their dynamics) or one shared ("tied", they differ only
+    # in their dynamics; a change of noise level alone is then no reason for a regime)
     floor = np.diag(1e-9 * np.atleast_1d(np.var(target, axis=0)) + 1e-300)
     pooled = np.cov(resid[scored].T, bias=True).reshape(m, m) if scored.sum() > 1 else np.eye(m)
+    per_regime = result.covariance == "full"
     log_em = np.empty((labels.size, k))
     white = np.full_like(resid, np.nan)
     for j, c in enumerate(coefs):
         own = labels == j
-        cov = np.cov(resid[own].T, bias=True).reshape(m, m) if own.sum() > m + 1 else pooled
+        enough = per_regime and own.sum() > m + 1
+        cov = np.cov(resid[own].T, bias=True).reshape(m, m) if enough else pooled
         chol = np.linalg.cholesky(cov + floor)
         const = -np.log(np.diag(chol)).sum() - 0.5 * m * np.log(2 * np.pi)
         w = np.linalg.solve(chol, (target - G @ c).T).T
@@ -289,8 +293,7 @@ def score(
             loglik, n_gate = gated, extra
     share = max(int(scored.sum()), 1) / max(labels.size, 1)
     candidate.loglik = float(loglik / share)
-    per_regime = dataclasses.replace(result, fits=fits, covariance="full")
-    candidate.n_params = count_parameters(per_regime, m, n_gate)
+    candidate.n_params = count_parameters(dataclasses.replace(result, fits=fits), m, n_gate)
     candidate.scored = int(scored.sum())
     candidate.residuals = white
     candidate.posteriors = posteriors
