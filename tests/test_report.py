@@ -63,26 +63,35 @@ def two_regime_model() -> HybridModel:
         selection=[
             {
                 "K": 1,
+                "degree": 2,
+                "n_regimes": 1,
                 "loglik": -900.0,
                 "n_params": 8,
-                "bic": 1850.0,
-                "holdout_rmse": 0.9,
+                "criterion": 1850.0,
+                "effective_windows": 400.0,
+                "collapsed": False,
                 "chosen": False,
             },
             {
                 "K": 2,
+                "degree": 2,
+                "n_regimes": 2,
                 "loglik": -400.0,
                 "n_params": 18,
-                "bic": 907.5,
-                "holdout_rmse": 0.21,
+                "criterion": 907.5,
+                "effective_windows": 400.0,
+                "collapsed": False,
                 "chosen": True,
             },
             {
                 "K": 3,
+                "degree": 2,
+                "n_regimes": 2,
                 "loglik": -398.0,
                 "n_params": 30,
-                "bic": 975.25,
-                "holdout_rmse": 0.23,
+                "criterion": 975.25,
+                "effective_windows": 400.0,
+                "collapsed": True,
                 "chosen": False,
             },
         ],
@@ -109,6 +118,10 @@ def two_regime_model() -> HybridModel:
                 },
             },
             "transitions": [[0, 7], [6, 0]],
+            "transition_matrix": [[0.98, 0.02], [0.05, 0.95]],
+            "transition_stderr": [[0.004, 0.004], [0.01, 0.01]],
+            "expected_duration": {"0": 25.0, "1": 10.0},
+            "expected_duration_stderr": {"0": 5.0, "1": 2.0},
         },
         validation={
             "tolerance": 0.15,
@@ -179,10 +192,18 @@ def test_report_contains_every_section() -> None:
 
 def test_selection_table_and_choice() -> None:
     text = render_report(two_regime_model())
-    assert "K = 2 was chosen" in text
-    assert "lowest BIC (Bayesian information criterion) is at K = 2" in text
-    assert "| K | loglik | n_params | bic | holdout_rmse | chosen |" in text
-    assert "| 2 | -400 | 18 | 907.5 | 0.21 | yes |" in text
+    assert "Number of regimes asked for: chosen from the data." in text
+    assert "Chosen: K = 2, polynomial terms up to degree 2; the model has 2 regime(s)." in text
+    assert "kept fewer regimes than asked for (K = 3)" in text
+    header = "| K | degree | n_regimes | loglik | n_params | criterion | effective_windows |"
+    assert header in text
+    assert "| 2 | 2 | 2 | -400 | 18 | 907.5 | 400 | no | yes |" in text
+
+
+def test_chain_with_standard_errors() -> None:
+    text = render_report(two_regime_model())
+    assert "| from 0 | 0.98 ± 0.004 | 0.02 ± 0.004 |" in text
+    assert "regime 0: 25 ± 5 s; regime 1: 10 ± 2 s." in text
 
 
 def test_equations_equilibria_and_statistics() -> None:

@@ -204,26 +204,80 @@ def _selection_section(model: HybridModel) -> str:
             "regime(s) as fitted."
         )
         return "\n\n".join(out)
-    chosen = [row.get("K") for row in table if row.get("chosen")]
-    tried = ", ".join(_num(row.get("K")) for row in table)
-    text = f"Models with K = {tried} regimes were fitted"
-    text += f"; K = {_num(chosen[0])} was chosen." if chosen else "."
-    best = _argmin(table, "bic")
-    if best is not None:
-        text += f" The lowest BIC (Bayesian information criterion) is at K = {_num(best)}."
-    best = _argmin(table, "holdout_rmse")
-    if best is not None:
-        text += f" The lowest held-out RMSE is at K = {_num(best)}."
-    out.append(text + " Lower is better; BIC penalises the number of parameters.")
+    options = (model.metadata or {}).get("options") or {}
+    asked = options.get("n_regimes", "auto")
+    chosen = next((row for row in table if row.get("chosen")), None)
+    text = (
+        "Number of regimes asked for: "
+        + ("chosen from the data" if asked == "auto" else f"{_num(asked)}")
+        + "."
+    )
+    if "criterion" in table[0]:
+        text += (
+            " Each candidate (a number of regimes K and a library of candidate terms: "
+            "polynomial degree, or the terms given) was scored on the same targets by the "
+            "marginal log-likelihood of a Markov-switching model; the criterion is BIC on "
+            "the effective number of windows (the log-likelihood divided by the residuals' "
+            "autocorrelation time). Lower is better."
+        )
+    if chosen is not None:
+        text += f" Chosen: K = {_num(chosen.get('K'))}"
+        if "degree" in chosen:
+            degree = chosen.get("degree")
+            text += (
+                ", the terms given"
+                if degree == "terms"
+                else f", polynomial terms up to degree {_num(degree)}"
+            )
+        text += f"; the model has {model.n_regimes} regime(s)."
+    collapsed = sorted({row.get("K") for row in table if row.get("collapsed")})
+    if collapsed:
+        text += (
+            " Candidates marked collapsed kept fewer regimes than asked for (K = "
+            + ", ".join(_num(k) for k in collapsed)
+            + ") and were not eligible."
+        )
+    out.append(text)
     header = list(dict.fromkeys(key for row in table for key in row))
     out.append(_table(header, [[row.get(k) for k in header] for row in table]))
+    chain = _chain_text(model)
+    if chain:
+        out.append(chain)
     return "\n\n".join(out)
 
 
-def _argmin(table: list[dict[str, Any]], key: str) -> Any:
-    values = [(row.get(key), row.get("K")) for row in table]
-    ok = [(v, k) for v, k in values if isinstance(v, int | float) and math.isfinite(v)]
-    return min(ok, key=lambda p: p[0])[1] if ok else None
+def _chain_text(model: HybridModel) -> str:
+    """The Markov chain of the regimes: transition probabilities per sample and expected
+    durations, with standard errors (``statistics`` of the model file)."""
+    stats = model.statistics or {}
+    matrix = stats.get("transition_matrix")
+    if not matrix or len(matrix) < 2:
+        return ""
+    se = stats.get("transition_stderr") or [[None] * len(matrix)] * len(matrix)
+    ids = [str(r.id) for r in model.regimes][: len(matrix)]
+
+    def cell(p: Any, e: Any) -> str:
+        return _num(p) + (f" ± {_num(e)}" if e is not None else "")
+
+    rows = [
+        [f"from {i}", *(cell(p, e) for p, e in zip(row, err, strict=False))]
+        for i, row, err in zip(ids, matrix, se, strict=False)
+    ]
+    unit = _unit(model, model.time_name)
+    durations = stats.get("expected_duration") or {}
+    dse = stats.get("expected_duration_stderr") or {}
+    parts = [
+        f"regime {i}: {cell(durations.get(i), dse.get(i))}{unit}"
+        for i in ids
+        if durations.get(i) is not None
+    ]
+    text = (
+        "Regime chain: probability of each switch from one sample to the next (± standard "
+        "error, from the switch counts):\n\n" + _table(["", *(f"to {i}" for i in ids)], rows)
+    )
+    if parts:
+        text += "\n\nExpected time in a regime once entered: " + "; ".join(parts) + "."
+    return text
 
 
 def _regime_section(model: HybridModel, regime: RegimeModel) -> str:
