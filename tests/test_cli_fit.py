@@ -140,3 +140,19 @@ def test_final_fit_option_reaches_the_fit(tmp_path) -> None:
     with pytest.raises(SystemExit) as info:  # argparse's usage error
         main(["fit", str(data), *COLUMNS, "--final-fit", "twice", "--out", str(tmp_path / "x")])
     assert info.value.code == 2
+
+
+def test_no_refit_keeps_the_training_model(tmp_path) -> None:
+    # with --no-refit the model written is the one the training runs gave (its regimes hold
+    # fewer samples than the data); by default it is refitted on every run
+    data = tmp_path / "relay.csv"
+    relay_frame(n_runs=2, duration=12.0).to_csv(data, index=False)
+    samples = {}
+    for extra in ([], ["--no-refit"]):
+        out = tmp_path / ("kept" if extra else "refit")
+        args = ["fit", str(data), *COLUMNS, "--regimes", "2", *extra, "--out", str(out)]
+        assert main(args) == 0
+        model = json.loads((out / "model.json").read_text())
+        assert model["metadata"]["options"]["refit"] is not bool(extra)
+        samples[bool(extra)] = sum(r["samples"] for r in model["regimes"])
+    assert samples[True] < samples[False]

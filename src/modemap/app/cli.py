@@ -323,6 +323,13 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
         help="share of runs (or of the run's tail) kept out for validation (default: 0.25)",
     )
     group.add_argument(
+        "--no-refit",
+        dest="refit",
+        action="store_false",
+        help="write the model fitted on the training part (default: after validation, the "
+        "model is refitted on all data with the number of regimes and terms chosen)",
+    )
+    group.add_argument(
         "--min-dwell",
         type=int,
         default=1,
@@ -408,6 +415,7 @@ def identifier_from_args(args: argparse.Namespace):
         final_fit=args.final_fit,
         guard_kind=args.guards,
         holdout=args.holdout,
+        refit=args.refit,
         min_dwell=args.min_dwell,
         min_regime_samples=args.min_regime_samples,
         seed=args.seed,

@@ -140,7 +140,9 @@ class HybridIdentifier(BaseEstimator):
         stage = clone(self.regimes) if self.regimes else RegimeFinder()
         last = 1.0 if test is None or not self.refit else 0.55
         finder, surfaces, model = self._identify(train, stage, scaled(progress, 0.02, last))
-        model.metadata["options"] = options_record(finder, surfaces, self.holdout, self.tolerance)
+        model.metadata["options"] = options_record(
+            finder, surfaces, self.holdout, self.tolerance, self.refit
+        )
         self.train_, self.test_ = train, test
         if test is None:
             self._keep(ds, finder, surfaces, model, {})

@@ -104,7 +104,11 @@ def stage_parameters(**options: Any) -> dict[str, Any]:
 
 
 def options_record(
-    finder: RegimeFinder, surfaces: SwitchingSurfaces, holdout: float, tolerance: float
+    finder: RegimeFinder,
+    surfaces: SwitchingSurfaces,
+    holdout: float,
+    tolerance: float,
+    refit: bool = True,
 ) -> dict[str, Any]:
     """The flat options a fit ran with, read off its fitted stages (sorted by name), as the
     model file's ``metadata.options`` records them."""
@@ -127,6 +131,7 @@ def options_record(
         "min_regime_samples": finder.min_samples,
         "model": "affine" if isinstance(local, AffineLocalModel) else "sparse",
         "n_regimes": finder.n_regimes,
+        "refit": bool(refit),
         "scheduler": finder.scheduler,
         "seed": finder.seed,
         "threshold": local.threshold if sparse else "auto",
