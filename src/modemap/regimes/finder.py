@@ -555,10 +555,16 @@ class RegimeFinder(BaseEstimator):
         result = max(found.values(), key=lambda r: r.n_regimes)
         if result.n_regimes < k:
             why = [n for n in result.notes if "dropped" in n]
-            reason = f" ({why[-1]})" if why else ""
+            if why:
+                reason = f"{why[-1]}; use fewer regimes or a smaller --min-regime-samples"
+            else:
+                reason = (
+                    "the others' models fit every sample of the extra regime better when "
+                    "relabelled, so the data show no more distinct dynamics; use fewer regimes"
+                )
             raise FitError(
                 f"{k} regimes were asked for, but no fit with {k} could be supported: the best "
-                f"kept {result.n_regimes}{reason}; use fewer regimes or --min-regime-samples"
+                f"kept {result.n_regimes} ({reason})"
             )
         return self._candidates(ctx, rows, k, found)
 
