@@ -98,3 +98,38 @@ def test_single_regime_and_bad_lengths() -> None:
     assert lp == pytest.approx(-10.0)
     with pytest.raises(ValueError, match="lengths"):
         viterbi_runs(np.zeros((5, 2)), [2, 2], np.zeros(2), np.zeros((2, 2)))
+
+
+def test_forward_gated_sums_every_path() -> None:
+    # the marginal likelihood of a chain with gated transitions, checked against its
+    # definition: the sum over every regime path of start x transitions x emissions
+    # (an input-output HMM, "Input-output HMMs for sequence processing", IEEE Transactions
+    # on Neural Networks 7(5), 1996), enumerated on runs short enough to list the paths
+    import itertools
+
+    from scipy.special import logsumexp
+
+    from modemap.regimes.viterbi import forward_gated
+
+    rng = np.random.default_rng(3)
+    k, lengths = 3, [5, 1, 4]
+    n = sum(lengths)
+    log_em = 3.0 * rng.normal(size=(n, k))
+    gate = rng.dirichlet(np.ones(k), size=n)
+    trans = rng.dirichlet(np.ones(k), size=k)
+    total, offset = 0.0, 0
+    for length in lengths:
+        e, g = log_em[offset : offset + length], gate[offset : offset + length]
+        offset += length
+        paths = []
+        for path in itertools.product(range(k), repeat=length):
+            lp = np.log(g[0, path[0]]) + e[0, path[0]]
+            for t in range(1, length):
+                i, j = path[t - 1], path[t]
+                step = trans[i] * g[t]
+                lp += np.log(step[j] / step.sum()) + e[t, j]
+            paths.append(lp)
+        total += logsumexp(paths)
+    assert forward_gated(log_em, lengths, np.log(trans), np.log(gate)) == pytest.approx(
+        total, rel=1e-10
+    )

@@ -198,28 +198,38 @@ def forward_gated(
     float
         Sum over runs of ``log p(run's samples)``.
     """
-    from scipy.special import logsumexp
-
     e, lengths, _, log_trans = _checked(
         log_emission, lengths, np.zeros(np.shape(log_emission)[1]), log_trans
     )
-    g = np.maximum(np.asarray(log_gate, dtype=np.float64), _IMPOSSIBLE)
     lengths = lengths[lengths > 0]
     if lengths.size == 0:
         return 0.0
+    # scaled probabilities (the normalised forward variables of the textbook recursion):
+    # alpha_t(j) = g_t(j) e_t(j) sum_i alpha_t-1(i) trans(i, j) / d_t(i), with
+    # d_t(i) = sum_j trans(i, j) g_t(j); the log of every step's normaliser is summed
+    g = np.exp(np.maximum(np.asarray(log_gate, dtype=np.float64), _IMPOSSIBLE))
+    g /= np.maximum(g.sum(axis=1, keepdims=True), 1e-300)
+    trans = np.exp(log_trans)
+    d = np.maximum(g @ trans.T, 1e-300)  # (n, K): d_t(i)
+    peak = e.max(axis=1, keepdims=True)
+    em = np.exp(e - peak)
     top = int(lengths.max())
     starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
     # steps laid out (step, run): padded runs stop contributing once they end
     idx = starts[None, :] + np.arange(top)[:, None]
     live = np.arange(top)[:, None] < lengths[None, :]
     idx = np.where(live, idx, 0)
-    first = g[starts] - logsumexp(g[starts], axis=1, keepdims=True)
-    alpha = first + e[starts]
+    alpha = g[starts] * em[starts]
+    total = alpha.sum(axis=1)
+    loglik = float(np.log(np.maximum(total, 1e-300)).sum() + peak[starts].sum())
+    alpha /= np.maximum(total, 1e-300)[:, None]
     for step in range(1, top):
-        rows = idx[step]
-        gate = g[rows]  # (r, K)
-        trans = log_trans[None, :, :] + gate[:, None, :]  # (r, i, j)
-        trans -= logsumexp(trans, axis=2, keepdims=True)
-        new = logsumexp(alpha[:, :, None] + trans, axis=1) + e[rows]
-        alpha = np.where(live[step][:, None], new, alpha)
-    return float(logsumexp(alpha, axis=1).sum())
+        rows, on = idx[step], live[step]
+        new = ((alpha / d[rows]) @ trans) * g[rows] * em[rows]
+        norm = new.sum(axis=1)
+        ok = on & (norm > 0)
+        loglik += float(np.log(norm[ok]).sum() + peak[rows[ok], 0].sum())
+        if not np.all(ok[on]):  # an impossible step: the run's likelihood is zero
+            return -np.inf
+        alpha = np.where(on[:, None], new / np.where(norm > 0, norm, 1.0)[:, None], alpha)
+    return loglik
