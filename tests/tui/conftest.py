@@ -129,10 +129,13 @@ def make_model(k: int, ds: Dataset, labels: pd.DataFrame) -> HybridModel:
     selection = [
         {
             "K": kk,
+            "degree": 1,
+            "n_regimes": kk,
             "loglik": -500.0 + 40 * kk,
             "n_params": 8 * kk,
-            "bic": 1000.0 - 30 * kk,
-            "holdout_rmse": 0.1 / (kk + 1),
+            "criterion": 1000.0 - 30 * kk,
+            "effective_windows": 900.0,
+            "collapsed": False,
             "chosen": kk == k,
         }
         for kk in range(1, k + 1)

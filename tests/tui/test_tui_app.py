@@ -118,7 +118,7 @@ async def test_refit_with_other_k_then_keep_and_save():
         await pilot.pause()
         compare = plain(screen.query_one("#refit-compare", Static).content)
         assert re.search(r"regimes K\s+3\s+4", compare)
-        assert re.search(r"BIC\s+910\s+880", compare)  # hand-built selection rows: 1000 - 30 K
+        assert re.search(r"criterion\s+910\s+880", compare)  # hand-built rows: 1000 - 30 K
         assert plain(screen.query_one("#refit-status", Static).content).startswith("done")
         await pilot.press("k")
         await pilot.pause()

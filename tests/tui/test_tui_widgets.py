@@ -151,6 +151,8 @@ def test_parse_options():
         "form": "discrete",
     }
     assert parse_options("", "", "1", "continuous")["n_regimes"] == "auto"
+    assert parse_options("2", "auto", "auto", "continuous")["degree"] == "auto"
+    assert parse_options("2", "auto", "", "continuous")["degree"] == "auto"
     for bad in (
         ("0", "auto", "2", "continuous"),
         ("2", "-1", "2", "continuous"),

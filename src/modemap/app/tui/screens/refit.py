@@ -43,9 +43,13 @@ def parse_options(k: str, threshold: str, degree: str, form: str) -> dict[str, A
         raise ValueError("threshold: 'auto' or a number") from None
     if isinstance(opts["threshold"], float) and opts["threshold"] < 0:
         raise ValueError("threshold: must not be negative")
-    if not degree.strip().isdigit() or not 1 <= int(degree) <= 5:
-        raise ValueError("degree: a whole number from 1 to 5")
-    opts["degree"] = int(degree)
+    degree = degree.strip() or "auto"
+    if degree == "auto":
+        opts["degree"] = "auto"
+    elif not degree.isdigit() or not 1 <= int(degree) <= 5:
+        raise ValueError("degree: 'auto' or a whole number from 1 to 5")
+    else:
+        opts["degree"] = int(degree)
     if form.strip() not in FORMS:
         raise ValueError("form: 'continuous' or 'discrete'")
     opts["form"] = form.strip()
@@ -57,7 +61,7 @@ def _defaults(model: HybridModel | None) -> dict[str, str]:
     return {
         "k": str(model.n_regimes) if model is not None and model.n_regimes else "auto",
         "threshold": str(options.get("threshold", "auto")),
-        "degree": str(options.get("degree", 2)),
+        "degree": str(options.get("degree", "auto")),
         "form": model.form if model is not None else "continuous",
     }
 

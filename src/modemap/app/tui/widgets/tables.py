@@ -280,6 +280,11 @@ def selected_row(model: HybridModel | None) -> dict:
     return chosen[0] if chosen else {}
 
 
+def _criterion(row: dict) -> Any:
+    """The chosen row's criterion (``bic`` in files written before the window likelihood)."""
+    return row.get("criterion", row.get("bic"))
+
+
 def comparison_table(old: HybridModel | None, new: HybridModel) -> Table:
     """Side-by-side figures of the current and the refitted model."""
     table = Table(box=box.SIMPLE)
@@ -289,9 +294,9 @@ def comparison_table(old: HybridModel | None, new: HybridModel) -> Table:
     so, sn = selected_row(old), selected_row(new)
     rows: list[tuple[str, Any, Any]] = [
         ("regimes K", old.n_regimes if old else None, new.n_regimes),
-        ("BIC", so.get("bic"), sn.get("bic")),
+        ("library degree", so.get("degree"), sn.get("degree")),
+        ("criterion", _criterion(so), _criterion(sn)),
         ("parameters", so.get("n_params"), sn.get("n_params")),
-        ("held-out RMSE", so.get("holdout_rmse"), sn.get("holdout_rmse")),
         ("form", old.form if old else None, new.form),
     ]
     sum_o = ((old.validation if old else {}) or {}).get("summary") or {}
