@@ -334,7 +334,7 @@ def test_evidence_scores_match_scikit_learn_cross_validation() -> None:
     from sklearn.metrics import balanced_accuracy_score
     from sklearn.model_selection import PredefinedSplit, cross_val_predict
 
-    from modemap.model.guards import contiguous_blocks, hysteresis_evidence
+    from modemap.model.hysteresis import contiguous_blocks, hysteresis_evidence
 
     rng = np.random.default_rng(11)
     n, lag = 4000, 10
@@ -358,7 +358,7 @@ def test_evidence_scores_match_scikit_learn_cross_validation() -> None:
 
 
 def test_contiguous_blocks_never_span_two_runs() -> None:
-    from modemap.model.guards import contiguous_blocks
+    from modemap.model.hysteresis import contiguous_blocks
 
     ids = contiguous_blocks([5, 3], 2)
     assert ids.tolist() == [0, 0, 1, 1, 2, 3, 3, 4]  # hand count
@@ -369,7 +369,7 @@ def test_logistic_fit_matches_statsmodels_logit() -> None:
     # reference: statsmodels' Logit on the Spector and Mazzeo (1980) grades data it ships;
     # standard errors from the inverse observed information
     sm = pytest.importorskip("statsmodels.api")
-    from modemap.model.guards import fit_logistic
+    from modemap.model.logistic import fit_logistic
 
     data = sm.datasets.spector.load_pandas()
     ref = sm.Logit(data.endog, sm.add_constant(data.exog)).fit(disp=0)
@@ -384,7 +384,7 @@ def test_logistic_fit_matches_statsmodels_logit() -> None:
 
 def test_penalised_logistic_fit_matches_scikit_learn() -> None:
     # reference: scikit-learn's LogisticRegression minimises the same ridge-penalised objective
-    from modemap.model.guards import fit_logistic
+    from modemap.model.logistic import fit_logistic
 
     rng = np.random.default_rng(2)
     X = rng.normal(size=(500, 3))
