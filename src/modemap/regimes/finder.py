@@ -182,10 +182,11 @@ class RegimeFinder(BaseEstimator):
         When fitted already with the same number of regimes (and variables), start from
         that fit: every row decoded with its models, then refined, without a new search
         (scikit-learn's meaning of the word).
-    selection_samples : int, default 200_000
-        With ``n_regimes="auto"`` on longer data, K is chosen on about this many rows taken
-        as contiguous windows spread over every run; the chosen models are then refined on
-        all rows (a note says so).
+    selection_samples : int, default 50_000
+        On longer data, the number of regimes and the library are chosen on about this many
+        rows taken as contiguous windows spread over every run; the chosen models are then
+        refined on all rows (a note says so).  The search scores every candidate of every
+        K (docs/performance.md: its cost grows with the rows it runs on).
 
     Attributes
     ----------
@@ -261,7 +262,7 @@ class RegimeFinder(BaseEstimator):
         resegment: bool = True,
         engine: Any = "local",
         scheduler: str | None = None,
-        selection_samples: int = 200_000,
+        selection_samples: int = 50_000,
         warm_start: bool = False,
     ) -> None:
         self.n_regimes = n_regimes
