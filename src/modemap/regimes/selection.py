@@ -5,29 +5,35 @@ model's :meth:`~modemap.fit.local_model.LocalModel.candidate_degrees`), fitted b
 refinement.  All candidates are scored on the same rows and the same targets with the same
 noise model:
 
-* **targets**: the regression targets without any regime information (continuous form:
-  derivatives estimated per run, never across a step of a stepped input; discrete form:
-  the next samples);
+* **targets** (:class:`Windows`): continuous form, the increments of the measured states
+  over non-overlapping windows of ``h`` sample intervals, against the trapezoid integrals of
+  the terms over the same window (the integral form of the model: no derivative estimate,
+  so neither a smoothing window's bias nor its smearing across a switch); discrete form,
+  the next samples against the terms at the sample;
+* **each regime refitted on the windows**: the candidate brings its labels and library;
+  the coefficients (and, for a sparse model, the terms) are those the common targets give;
 * **likelihood**: the marginal likelihood of a Markov-switching model, every regime path
-  counted (the forward pass of :func:`~modemap.regimes.viterbi.forward_backward`; the
-  switching model of "A new approach to the economic analysis of nonstationary time series
-  and the business cycle", Econometrica 57(2), 1989, DOI 10.2307/1912559), with Gaussian
-  residuals of one covariance per regime, the chain's transition probabilities
-  from the candidate's switch counts, and the optional terms of the emissions (location,
-  switching inputs) as in the refinement;
-* **rows next to a switch**: a target whose window holds a switch mixes two regimes (the
-  derivative's smoothing window, or in discrete form the sample interval that holds the
-  switch); such rows of a candidate carry no emission (the same for every regime), and the
-  log-likelihood is scaled up to all rows by the share of rows scored, so that no candidate
-  gains by giving the mixed rows a regime of their own;
-* **serial correlation**: smoothed derivatives and slowly varying model error make
-  neighbouring residuals alike, and a likelihood that counts every row as independent
-  overstates the evidence.  The log-likelihood is divided by the residuals' integrated
-  autocorrelation time ``tau = 1 + 2 sum_k rho_k`` (summed while the estimates stay
-  positive, the initial positive sequence of "Practical Markov chain Monte Carlo",
-  Statistical Science 7(4), 1992, DOI 10.1214/ss/1177011137), estimated once, on the
-  residuals of the candidate that fits best, so every candidate is judged on one scale;
-  ``n / tau`` is the effective number of rows.
+  counted (:func:`~modemap.regimes.viterbi.forward_backward`; the switching model of "A new
+  approach to the economic analysis of nonstationary time series and the business cycle",
+  Econometrica 57(2), 1989, DOI 10.2307/1912559), Gaussian residuals with the refinement's
+  noise model (one covariance shared by the regimes in continuous form, one per regime in
+  discrete form), transition probabilities from the candidate's switch counts.  When a
+  classifier of the variables predicts the switches better than the constant chain by more
+  than its parameters cost (BIC on the windows), the chain's transitions are gated by it
+  (:func:`~modemap.regimes.viterbi.forward_gated`): regimes selected by where the state
+  sits are then not charged for switches that the state explains;
+* **windows that hold a switch** (their samples' labels disagree; in discrete form the
+  sample interval that holds the switch) carry no emission (the same for every regime), and
+  the log-likelihood is scaled up to all windows by the share scored, so that no candidate
+  gains by giving the mixed windows a regime of their own;
+* **serial correlation**: slowly varying model error makes neighbouring residuals alike,
+  and a likelihood that counts every window as independent overstates the evidence.  The
+  log-likelihood is divided by the residuals' integrated autocorrelation time
+  ``tau = 1 + 2 sum_k rho_k`` (summed while the estimates stay positive, the initial
+  positive sequence of "Practical Markov chain Monte Carlo", Statistical Science 7(4),
+  1992, DOI 10.1214/ss/1177011137), estimated once, on the whitened residuals of the
+  candidate that fits best, so every candidate is judged on one scale; ``n / tau`` is the
+  effective number of windows.
 
 The criterion is then
 
@@ -36,10 +42,10 @@ The criterion is then
 (the Bayesian information criterion of "Estimating the dimension of a model", Annals of
 Statistics 6(2), 1978, DOI 10.1214/aos/1176344136, on the effective sample), with the
 parameters counted honestly: every nonzero coefficient of every regime and state, the
-residual covariances (``K m (m + 1) / 2``), ``K (K - 1)`` transition and ``K - 1``
-initial probabilities, and those of the optional emission terms.  The lowest ``C`` wins, the
-fewer parameters on a tie.  A candidate whose refinement lost regimes (it asked for ``K`` and
-kept fewer) is shown as collapsed and never chosen.
+residual covariances (``m (m + 1) / 2`` once, or per regime), ``K (K - 1)`` transition and
+``K - 1`` initial probabilities, and those of the gate and of optional emission terms.  The
+lowest ``C`` wins, the fewer parameters on a tie.  A candidate whose refinement lost regimes
+(it asked for ``K`` and kept fewer) is shown as collapsed and never chosen.
 """
 
 from __future__ import annotations
