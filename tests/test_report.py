@@ -362,3 +362,25 @@ def test_pipes_in_text_are_escaped() -> None:
     text = render_report(model)
     assert "\\|T\\| > 5.5" in text
     _tables_are_well_formed(text)
+
+
+def test_summary_fits_80_columns_and_says_what_matters() -> None:
+    # a notebook reader's short form: every line within 80 columns (a terminal's width,
+    # common practice), the equations with their standard errors, the equilibria, the guards
+    from modemap.model.summary import model_summary
+
+    model = two_regime_model()
+    text = model.summary()
+    assert text == model_summary(model, width=80)
+    assert all(len(line) <= 80 for line in text.splitlines())
+    assert " ".join(text.split()).startswith(repr(model))
+    assert repr(model).startswith("HybridModel(2 regime(s), continuous form")
+    assert "(2.00 ± 0.01) + (-0.50 ± 0.01) T + (1.00 ± 0.01) q" in " ".join(text.split())
+    assert "regime 0: 300 samples (75.0 %)" in text
+    assert "stable node" in text and "virtual" in text
+    assert "switch 0 -> 1 when T > 5.5 degC" in text
+    assert "regimes: 2 (chosen from the data; 3 candidates compared, polynomial degree 2)" in text
+    assert model._repr_markdown_().startswith("```text\n")
+    narrow = model.summary(width=50)
+    assert all(len(line) <= 50 for line in narrow.splitlines())
+    assert "switching" not in one_regime_model().summary()

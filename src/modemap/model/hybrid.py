@@ -176,3 +176,24 @@ class HybridModel:
 
     def guards_from(self, regime_id: int) -> list[Guard]:
         return [g for g in self.guards if g.source == regime_id]
+
+    def summary(self, width: int = 80) -> str:
+        """The model in a few lines per regime (equations with standard errors, equilibria,
+        guards, held-out figures), wrapped to ``width`` columns; the report is the long form.
+
+        Examples
+        --------
+        >>> print(model.summary())  # doctest: +SKIP
+        """
+        from modemap.model.summary import model_summary
+
+        return model_summary(self, width=width)
+
+    def __repr__(self) -> str:
+        from modemap.model.summary import short_repr
+
+        return short_repr(self)
+
+    def _repr_markdown_(self) -> str:
+        """Notebooks: the summary as a preformatted block."""
+        return "```text\n" + self.summary() + "\n```"
