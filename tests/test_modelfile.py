@@ -51,6 +51,7 @@ def small_model() -> HybridModel:
         inside=True,
         time_constants=[2.0, 1.0],
         period=None,
+        inputs={"q": 0.25},
     )
     regimes = [
         RegimeModel(0, 120, terms, coef0, np.abs(coef0) * 0.01, np.eye(2) * 1e-3, [eq]),
@@ -126,6 +127,7 @@ def assert_models_equal(a: HybridModel, b: HybridModel) -> None:
             )
             assert ea.time_constants == eb.time_constants
             assert ea.stderr == eb.stderr
+            assert ea.inputs == eb.inputs
     assert len(a.guards) == len(b.guards)
     for ga, gb in zip(a.guards, b.guards, strict=True):
         assert (ga.source, ga.target, ga.terms, ga.offset, ga.text) == (
@@ -386,6 +388,7 @@ def test_save_refuses_bad_model_and_keeps_old_file(tmp_path: Path, change, fragm
 # --------------------------------------------------------------------------- malformed files
 
 BAD_FILES = {
+    "equilibrium_unknown_input.json": "equilibria[0].inputs: unknown input 'u'",
     "not_json.json": "invalid JSON at line 3, column",
     "nan_literal.json": "NaN is not a JSON number",
     "not_object.json": ": expected an object, got a list",

@@ -31,6 +31,7 @@ def two_regime_model() -> HybridModel:
         stability="stable node",
         inside=True,
         time_constants=[2.0, 0.5],  # -1/(-0.5), -1/(-2.0)
+        inputs={"q": 0.5},
     )
     eq1 = Equilibrium(
         point={"T": -4.0, "P": 7.5},
@@ -214,7 +215,11 @@ def test_equations_equilibria_and_statistics() -> None:
     assert "dP/dt [bar/s] = (0.25 ± 0.01) T + (-0.25 ± 0.01) T*q" in text
     assert "dP/dt [bar/s] = (0.50 ± 0.02) + (3.00 ± 0.02) q" in text
     # residual standard deviation = sqrt of the noise covariance diagonal
-    assert "Residual standard deviation: T 0.2, P 0.3." in text
+    # in the units of the rates of change, which is what the residuals are (continuous form)
+    assert (
+        "Residual standard deviation of the rates of change d state/dt: T 0.2 degC/s, P 0.3 bar/s."
+        in text
+    )
     assert "| 4 | -1.25 | stable node | -0.5, -2 | 2, 0.5 | – | reachable |" in text
     assert "-0.25 + 1.5i, -0.25 - 1.5i" in text
     assert "| 4.189 | virtual (outside the data) |" in text  # period 2*pi/1.5
@@ -379,8 +384,14 @@ def test_summary_fits_80_columns_and_says_what_matters() -> None:
     assert "regime 0: 300 samples (75.0 %)" in text
     assert "stable node" in text and "virtual" in text
     assert "switch 0 -> 1 when T > 5.5 degC" in text
+    assert "equilibria with the inputs held at q = 0.5:" in text
     assert "regimes: 2 (chosen from the data; 3 candidates compared, polynomial degree 2)" in text
     assert model._repr_markdown_().startswith("```text\n")
     narrow = model.summary(width=50)
     assert all(len(line) <= 50 for line in narrow.splitlines())
     assert "switching" not in one_regime_model().summary()
+
+
+def test_equilibria_say_at_which_inputs() -> None:
+    text = render_report(two_regime_model())
+    assert "Computed with the inputs held at q = 0.5 kW" in text

@@ -255,6 +255,8 @@ class HybridIdentifier(BaseEstimator):
                 seed=finder.seed,
                 state_names=list(ds.state_names),
             )
+            for q in equilibria:  # the inputs held while the points were computed
+                q.inputs = {name: float(v) for name, v in zip(ds.input_names, u_typ, strict=True)}
             regimes.append(
                 RegimeModel(
                     id=k,

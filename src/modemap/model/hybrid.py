@@ -54,6 +54,10 @@ class Equilibrium:
         State name -> standard error of that coordinate (delta method from the
         coefficients' covariance, :func:`modemap.model.equilibria.equilibrium_stderr`);
         ``inf`` at a fold of the fitted model; None when not computed.
+    inputs : dict
+        Input name -> the value held while the point was computed (the regime's typical
+        inputs, :func:`modemap.model.equilibria.typical_inputs`); empty without inputs or
+        when not recorded.
     """
 
     point: dict[str, float]
@@ -64,6 +68,7 @@ class Equilibrium:
     period: float | None = None
     note: str = ""
     stderr: dict[str, float] | None = None
+    inputs: dict[str, float] = field(default_factory=dict)
 
 
 @dataclass

@@ -236,7 +236,13 @@ class _Writer:
             "period": _opt(e.period),
             "note": str(e.note),
             **({} if e.stderr is None else {"stderr": {s: _opt(e.stderr[s]) for s in states}}),
+            **({} if not e.inputs else {"inputs": self.held(e.inputs, f"{path}.inputs")}),
         }
+
+    def held(self, inputs: dict[str, float], path: str) -> dict[str, float]:
+        values = {str(k): float(v) for k, v in inputs.items()}
+        self.finite(list(values.values()), path, [f".{k}" for k in values])
+        return values
 
     def guard(self, g: Guard, path: str) -> dict[str, Any]:
         return {
@@ -622,7 +628,7 @@ class _Reader:
             else self.per_state(stderr, f"{path}.stderr", states, n, True),
             noise_cov=self.noise_cov(d.get("noise_cov"), f"{path}.noise_cov", k),
             equilibria=[
-                self.equilibrium(e, f"{path}.equilibria[{j}]", states)
+                self.equilibrium(e, f"{path}.equilibria[{j}]", states, variables[k:])
                 for j, e in enumerate(self.lst(d["equilibria"], f"{path}.equilibria"))
             ],
             inclusion=None
@@ -640,7 +646,9 @@ class _Reader:
             [self.numbers(r, f"{path}[{i}]", k, "one per state", True) for i, r in enumerate(rows)]
         ).reshape(k, k)
 
-    def equilibrium(self, value: Any, path: str, states: list[str]) -> Equilibrium:
+    def equilibrium(
+        self, value: Any, path: str, states: list[str], inputs: list[str] | None = None
+    ) -> Equilibrium:
         d = self.obj(value, path)
         for key in ("point", "eigenvalues", "stability", "inside"):
             self.req(d, key, path)
@@ -677,7 +685,15 @@ class _Reader:
                 if value < 0:
                     self.fail(f"{path}.stderr.{s}", "a standard error cannot be negative")
                 stderr[s] = math.inf if math.isnan(value) else value
+        held: dict[str, float] = {}
+        if d.get("inputs") is not None:
+            raw = self.obj(d["inputs"], f"{path}.inputs")
+            for key in raw:
+                if key not in (inputs or []):
+                    self.fail(f"{path}.inputs", f"unknown input '{key}'")
+                held[key] = self.number(raw[key], f"{path}.inputs.{key}")
         return Equilibrium(
+            inputs=held,
             point={s: self.number(point[s], f"{path}.point.{s}") for s in states},
             eigenvalues=np.array([complex(a, b) for a, b in ev], dtype=complex),
             stability=self.text(d["stability"], f"{path}.stability"),

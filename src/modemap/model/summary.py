@@ -116,6 +116,10 @@ def model_summary(model: HybridModel, width: int = 80) -> str:
         lines += [(2, eq) for eq in equations]
         if not regime.equilibria:
             lines.append((2, "no equilibrium in or near the data"))
+        held = next((q.inputs for q in regime.equilibria if q.inputs), None)
+        if held:
+            values = ", ".join(f"{k} = {_num(v)}" for k, v in held.items())
+            lines.append((2, f"equilibria with the inputs held at {values}:"))
         for q in regime.equilibria:
             lines.append((2, "equilibrium " + _equilibrium(model, q)))
     if model.n_regimes > 1:

@@ -322,8 +322,22 @@ def _equations_block(model: HybridModel, regime: RegimeModel) -> str:
         "unscaled values."
     )
     noise = np.sqrt(np.clip(np.diag(np.asarray(regime.noise_cov, dtype=float)), 0, None))
-    noise_text = ", ".join(f"{s} {_num(v)}" for s, v in zip(model.states, noise, strict=True))
-    return f"```\n{chr(10).join(lines)}\n```\n\n{note} Residual standard deviation: {noise_text}."
+    time_unit = model.units.get(model.time_name, "")
+    parts = []
+    for name, value in zip(model.states, noise, strict=True):
+        unit = model.units.get(name, "")
+        if model.form == "continuous":  # a residual of the rate of change
+            unit = f"{unit or '1'}/{time_unit}" if time_unit else unit
+        parts.append(f"{name} {_num(value)}{' ' + unit if unit else ''}")
+    what = (
+        "of the rates of change d state/dt"
+        if model.form == "continuous"
+        else "of the next samples state[k+1]"
+    )
+    return (
+        f"```\n{chr(10).join(lines)}\n```\n\n{note} Residual standard deviation {what}: "
+        f"{', '.join(parts)}."
+    )
 
 
 def _equation_lines(model: HybridModel, regime: RegimeModel) -> list[str]:
@@ -386,7 +400,21 @@ def _equilibria_text(model: HybridModel, equilibria: list[Equilibrium]) -> str:
             "constant term). Unbounded (∞): the fitted model folds there (a singular "
             "Jacobian)."
         )
-    return f"{title}\n\n{_table(header, rows)}\n\n{legend}"
+    held = _held_inputs(model, equilibria)
+    return f"{title}\n\n{held}{_table(header, rows)}\n\n{legend}"
+
+
+def _held_inputs(model: HybridModel, equilibria: list[Equilibrium]) -> str:
+    """The input values the points were computed at (the regime's typical inputs: the level
+    a stepped input holds most often, else the median), as a sentence, or ''."""
+    held = next((e.inputs for e in equilibria if e.inputs), None)
+    if not held:
+        return ""
+    values = ", ".join(f"{name} = {_num(v)}{_unit(model, name)}" for name, v in held.items())
+    return (
+        f"Computed with the inputs held at {values} (the level a stepped input holds most "
+        "often in this regime, otherwise its median here).\n\n"
+    )
 
 
 def _with_error(value: Any, error: float | None) -> Any:
