@@ -134,6 +134,9 @@ def two_regime_model() -> HybridModel:
                     "regime_agreement": 0.9125,
                     "switches_measured": 4,
                     "switches_simulated": 5,
+                    "switches_matched": 4,
+                    "switches_missed": 0,
+                    "switches_spurious": 1,
                     "switch_timing_error": 1.75,
                     "horizon": 120.0,
                     "status": 0,
@@ -286,7 +289,11 @@ def test_switching_says_which_evidence_chose_the_family() -> None:
 def test_validation_figures() -> None:
     text = render_report(two_regime_model())
     assert "first exceeds the tolerance of 0.15." in text
-    assert "| day3 | 0.0625 | 0.1875 | 0.9125 | 4 | 5 | 1.75 | 120 | 0 (finished) |" in text
+    assert (
+        "| day3 | 0.0625 | 0.1875 | 0.9125 | 4 | 5 | 4 | 0 | 1 | 1.75 | 120 | 0 (finished) |"
+        in text
+    )
+    assert "switch timing error [s] (matched only) | horizon [s] |" in text
     assert "| median_nrmse | 0.125 |" in text
     assert "| 0 | 0.987 | 0.954 | 0.2 | 0.3 |" in text
 

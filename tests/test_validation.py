@@ -109,6 +109,12 @@ def test_validate_switch_timing_and_agreement():
     # simulated regime is 1 from t = 1.4 on; labels say 1 from 1.5: one sample of 31 differs
     assert r["regime_agreement"] == pytest.approx(30 / 31)
     assert out["summary"]["switches_measured"] == 1
+    assert (r["switches_matched"], r["switches_missed"], r["switches_spurious"]) == (1, 0, 0)
+    # labels that switch back at 2.5 as well: a measured switch the simulation never makes
+    twice = ((t >= 1.5) & (t < 2.5)).astype(int)
+    r2 = validate(model, dataset([run("a", t, meas)]), labels=[twice])["runs"][0]
+    assert r2["switches_measured"] == 2 and r2["switches_simulated"] == 1
+    assert (r2["switches_matched"], r2["switches_missed"], r2["switches_spurious"]) == (1, 1, 0)
     with pytest.raises(DataError, match="labels"):
         validate(model, dataset([run("a", t, meas)]), labels=[labels[:-1]])
 

@@ -584,12 +584,23 @@ def _validation_section(model: HybridModel) -> str:
             "Horizon: time until the error of some state, as a fraction of its measured range, "
             f"first exceeds the tolerance of {_num(v['tolerance'])}."
         )
+    out.append(
+        "Switches: each measured switch (a change of the decoded label) is paired with the "
+        "nearest simulated switch, each at most once and within half the median time between "
+        "measured switches; matched ones are paired, missed ones are measured switches without "
+        "a simulated one, spurious ones simulated switches without a measured one. The timing "
+        "error averages the matched pairs only: read it with the counts."
+    )
     runs = v.get("runs") or []
     if runs:
+        unit = _bracket(_unit(model, model.time_name))
         cols = [
             "regime_agreement",
             "switches_measured",
             "switches_simulated",
+            "switches_matched",
+            "switches_missed",
+            "switches_spurious",
             "switch_timing_error",
             "horizon",
             "status",
@@ -600,8 +611,11 @@ def _validation_section(model: HybridModel) -> str:
             "regime agreement",
             "switches measured",
             "switches simulated",
-            "switch timing error",
-            "horizon",
+            "matched",
+            "missed",
+            "spurious",
+            f"switch timing error{unit} (matched only)",
+            f"horizon{unit}",
             "status",
         ]
         rows = [

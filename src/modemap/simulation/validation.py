@@ -13,7 +13,10 @@ Re-simulation (:func:`validate`)
       duration when it never does; the stop time when the simulation stopped);
     * with labels: ``regime_agreement`` (share of labelled samples whose
       simulated regime equals the label), ``switches_measured`` (label changes,
-      unassigned samples skipped), ``switch_timing_error`` (mean absolute time
+      unassigned samples skipped), ``switches_matched`` / ``switches_missed`` /
+      ``switches_spurious`` (measured switches with a simulated one paired by
+      :func:`match_switches`, measured ones without, simulated ones without),
+      ``switch_timing_error`` (mean absolute time
       difference of switches matched by :func:`match_switches`, window half the
       median measured dwell); ``None`` when labels are not given or nothing
       matched;
@@ -95,6 +98,9 @@ def _run_figures(model, run, lab, tolerance, sim_options) -> dict[str, Any]:
         "regime_agreement": None,
         "switches_measured": None,
         "switches_simulated": len(res.switches),
+        "switches_matched": None,
+        "switches_missed": None,
+        "switches_spurious": None,
         "switch_timing_error": None,
         "horizon": horizon,
         "status": int(res.status),
@@ -117,6 +123,9 @@ def _regime_figures(time: np.ndarray, lab: np.ndarray, res) -> dict[str, Any]:
     return {
         "regime_agreement": agree,
         "switches_measured": int(t_meas.size),
+        "switches_matched": int(mi.size),
+        "switches_missed": int(t_meas.size - mi.size),
+        "switches_spurious": int(t_sim.size - pi.size),
         "switch_timing_error": timing,
     }
 
@@ -182,6 +191,10 @@ def validate(
             None if labs is None else int(sum(r["switches_measured"] for r in runs))
         ),
         "switches_simulated": int(sum(r["switches_simulated"] for r in runs)),
+        **{
+            key: None if labs is None else int(sum(r[key] for r in runs))
+            for key in ("switches_matched", "switches_missed", "switches_spurious")
+        },
         "switch_timing_error": _mean([r["switch_timing_error"] for r in runs]),
     }
     return {
