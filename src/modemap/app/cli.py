@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 import traceback
@@ -18,6 +19,7 @@ from collections.abc import Callable, Sequence
 
 import modemap
 from modemap._exceptions import DataError, ModemapError
+from modemap._progress import ProgressClock, format_duration
 from modemap.data.dataset import Dataset
 from modemap.data.intake import parse_header, peek_columns, read_data, summarize
 
@@ -429,8 +431,8 @@ def _run_fit(args: argparse.Namespace) -> int:
 
     ident = identifier_from_args(args)
     ds = load_dataset(args)
-    show = sys.stderr.isatty() and not args.quiet
-    with _ProgressLine(enabled=show) as progress:
+    terminal = sys.stderr.isatty()
+    with _ProgressLine(enabled=not args.quiet, terminal=terminal) as progress:
         ident.fit(ds, progress=progress)
     ident.model_.metadata["data"] = _data_record(args)
     paths = write_fit_outputs(args.out, ident.model_, ident.labels_, dataset=ds)
@@ -461,11 +463,15 @@ def _data_record(args: argparse.Namespace) -> dict:
 
 
 class _ProgressLine:
-    """A one-line progress display on stderr (only when it is a terminal)."""
+    """Progress on stderr: a bar redrawn in place on a terminal, else (batch runs, logs) a
+    plain line at most every ``every`` seconds.  The share only moves forward, with the time
+    elapsed and an estimate of the time left (:class:`modemap._progress.ProgressClock`)."""
 
-    def __init__(self, enabled: bool) -> None:
-        self.enabled = enabled
+    def __init__(self, enabled: bool, terminal: bool = True, every: float = 5.0) -> None:
+        self.enabled, self.terminal, self.every = enabled, terminal, every
         self._last = ""
+        self._printed = -math.inf
+        self._clock = ProgressClock()
 
     def __enter__(self) -> Callable[[float, str], None]:
         return self
@@ -473,15 +479,26 @@ class _ProgressLine:
     def __call__(self, fraction: float, message: str) -> None:
         if not self.enabled:
             return
-        width = 24
-        filled = round(width * min(max(fraction, 0.0), 1.0))
-        line = f"\r[{'#' * filled}{'.' * (width - filled)}] {100 * fraction:5.1f}%  {message[:60]}"
+        done, elapsed, left = self._clock.update(fraction)
+        timing = format_duration(elapsed) + " elapsed"
+        if left is not None:
+            timing += f", about {format_duration(left)} left"
+        if not self.terminal:
+            if elapsed - self._printed >= self.every:
+                self._printed = elapsed
+                sys.stderr.write(f"{100 * done:5.1f} %  {timing}  {message}\n")
+                sys.stderr.flush()
+            return
+        width = 20
+        filled = round(width * done)
+        line = f"\r[{'#' * filled}{'.' * (width - filled)}] {100 * done:3.0f} %  {timing}  "
+        line += message[: max(0, 78 - len(line))]
         sys.stderr.write(line.ljust(len(self._last)))
         sys.stderr.flush()
         self._last = line
 
     def __exit__(self, *exc: object) -> None:
-        if self.enabled and self._last:
+        if self.enabled and self.terminal and self._last:
             sys.stderr.write("\r" + " " * len(self._last) + "\r")
             sys.stderr.flush()
 

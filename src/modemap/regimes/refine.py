@@ -230,7 +230,8 @@ def refine(
         monitor.changes.append(changed)
         monitor.n_regimes.append(k)
         labels = new
-        progress((it + 1) / max_iter, f"refinement iteration {it + 1}: {changed} labels changed")
+        moved = f"{changed} sample{'' if changed == 1 else 's'} changed regime"
+        progress((it + 1) / max_iter, f"refinement pass {it + 1}: {moved}")
         if changed <= settled and phase is not local:
             phase = local  # labels settled with every term kept: switch to the selection
             continue

@@ -16,6 +16,7 @@ from textual.screen import ModalScreen
 from textual.widgets import Footer, Input, Label, ProgressBar, Static
 
 from modemap._exceptions import FitCancelled
+from modemap._progress import ProgressClock, format_duration
 from modemap.app.tui.widgets.tables import comparison_table
 from modemap.data.dataset import Dataset
 from modemap.model.hybrid import HybridModel
@@ -89,6 +90,7 @@ class RefitScreen(ModalScreen[RefitResult | None]):
         self.running = False
         self._cancel = threading.Event()
         self._last: tuple[float, str] = (-1.0, "")
+        self._clock = ProgressClock()
 
     def compose(self):
         d = _defaults(self.old)
@@ -125,6 +127,7 @@ class RefitScreen(ModalScreen[RefitResult | None]):
             return
         self._cancel.clear()
         self._last = (-1.0, "")
+        self._clock = ProgressClock()
         self.running = True
         for field in self.query(Input):
             field.disabled = True
@@ -145,10 +148,15 @@ class RefitScreen(ModalScreen[RefitResult | None]):
     def _progress(self, fraction: float, message: str) -> None:
         if self._cancel.is_set():
             raise FitCancelled("fit cancelled from the dashboard")
-        # forward only visible changes: the fit may report far more often than a screen can show
-        if message != self._last[1] or abs(fraction - self._last[0]) >= 0.01:
-            self._last = (fraction, message)
-            self._tell(self._show_progress, fraction, message)
+        # the share only moves forward (stages restart their own fractions); pass on only
+        # visible changes: the fit may report far more often than a screen can show
+        done, elapsed, left = self._clock.update(fraction)
+        if message != self._last[1] or done - self._last[0] >= 0.01:
+            self._last = (done, message)
+            timing = format_duration(elapsed)
+            if left is not None:
+                timing += f", about {format_duration(left)} left"
+            self._tell(self._show_progress, done, f"{message} ({timing})")
 
     def _show_progress(self, fraction: float, message: str) -> None:
         self.query_one(ProgressBar).update(progress=min(max(fraction, 0.0), 1.0))
