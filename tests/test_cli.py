@@ -251,3 +251,33 @@ def test_bench_workdir_that_cannot_be_a_folder_is_a_one_line_error(tmp_path, cap
     assert cli.main(argv) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "Not a directory" in err and "Traceback" not in err
+
+
+def _usage_error(capsys, argv: list[str]) -> str:
+    with pytest.raises(SystemExit) as info:
+        main(argv)
+    assert info.value.code == 2  # argparse's code for usage errors (common practice)
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "Traceback" not in err
+    return err
+
+
+def test_mistyped_option_gets_a_suggestion_in_one_line(tmp_path, capsys):
+    err = _usage_error(capsys, ["fit", "x.csv", "--sates", "a", "--out", str(tmp_path / "o")])
+    assert "unrecognized argument --sates; did you mean --states?" in err
+    assert "(see 'modemap fit --help')" in err
+    err = _usage_error(capsys, ["fit", "x.csv", "--form", "hybrid", "--out", str(tmp_path)])
+    assert "invalid choice: 'hybrid'" in err
+
+
+@pytest.mark.parametrize("command", ["check", "fit", "simulate", "view", "bench"])
+def test_every_command_help_has_an_example(command, capsys):
+    with pytest.raises(SystemExit):
+        main([command, "--help"])
+    out = capsys.readouterr().out
+    assert "examples:\n  modemap " + command in out
+
+
+def test_view_of_a_missing_folder_says_not_found(tmp_path, capsys):
+    err = _fail(capsys, ["view", str(tmp_path / "nope_dir")])
+    assert "nope_dir: not found" in err

@@ -527,16 +527,45 @@ def _sizes(text: str) -> list[int]:
 def add_arguments(parser: argparse.ArgumentParser) -> None:
     """Options of ``modemap bench``."""
     parser.add_argument(
-        "--sizes", type=_sizes, default=list(SIZES), help="samples per case (default 1e5,1e6,1e7)"
+        "--sizes",
+        type=_sizes,
+        default=list(SIZES),
+        metavar="N,N,...",
+        help="samples per case (default: 1e5,1e6,1e7)",
     )
-    parser.add_argument("--max-regimes", type=int, default=6, help="largest K tried (default 6)")
-    parser.add_argument("--engine", choices=("local", "dask"), default="local")
-    parser.add_argument("--scheduler", default=None, help="Dask scheduler address")
-    parser.add_argument("--seed", type=int, default=0)
-    parser.add_argument("--workdir", default=None, help="folder for the generated files")
-    parser.add_argument("--timeout", type=float, default=3600.0, help="seconds per measurement")
+    parser.add_argument(
+        "--max-regimes", type=int, default=6, metavar="K", help="largest K tried (default: 6)"
+    )
+    parser.add_argument(
+        "--engine",
+        choices=("local", "dask"),
+        default="local",
+        help="where per-run work runs (default: local)",
+    )
+    parser.add_argument(
+        "--scheduler",
+        default=None,
+        metavar="ADDRESS",
+        help="Dask scheduler address (default: a local cluster)",
+    )
+    parser.add_argument("--seed", type=int, default=0, metavar="S", help="random seed (default: 0)")
+    parser.add_argument(
+        "--workdir",
+        default=None,
+        metavar="DIR",
+        help="folder for the generated files (default: a temporary folder)",
+    )
+    parser.add_argument(
+        "--timeout",
+        type=float,
+        default=3600.0,
+        metavar="SECONDS",
+        help="limit per measurement (default: 3600)",
+    )
     parser.add_argument("--skip-markov", action="store_true", help="skip the AR(1) comparison")
-    parser.add_argument("--json", default=None, help="also write the results to this JSON file")
+    parser.add_argument(
+        "--json", default=None, metavar="FILE", help="also write the results to FILE"
+    )
     parser.add_argument("--child", choices=("floor", "fit"), help=argparse.SUPPRESS)
     parser.add_argument("--data", help=argparse.SUPPRESS)
 

@@ -16,6 +16,7 @@ import os
 import sys
 import traceback
 from collections.abc import Callable, Sequence
+from typing import NoReturn
 
 import modemap
 from modemap._exceptions import DataError, ModemapError
@@ -148,6 +149,9 @@ def _default_states(
 def _add_check(subparsers: argparse._SubParsersAction) -> None:
     parser = subparsers.add_parser(
         "check",
+        epilog=_examples("""modemap check datasets/buck.csv --time t --run run
+  modemap check day1.csv day2.csv --json"""),
+        formatter_class=_Help,
         help="read and validate data; print runs, sampling, gaps and column ranges",
         description="Read and validate data files and print what modemap sees in them.",
     )
@@ -227,6 +231,12 @@ def _table(header: list[str], rows: list[list[str]]) -> list[str]:
 def _add_fit(subparsers: argparse._SubParsersAction) -> None:
     parser = subparsers.add_parser(
         "fit",
+        epilog=_examples(
+            "modemap fit datasets/buck.csv --time t --states i_L,v_C --inputs g --run run "
+            "--out out/buck\n  modemap fit log.csv --time t --states level --regimes 2 "
+            "--form discrete --out out/level"
+        ),
+        formatter_class=_Help,
         help="identify a hybrid model; write model.json, labels.csv and report.md",
         description="Find the regimes, their equations and equilibria and the switching guards; "
         "validate by re-simulating held-out runs; write DIR/model.json, DIR/labels.csv and "
@@ -509,6 +519,12 @@ class _ProgressLine:
 def _add_simulate(subparsers: argparse._SubParsersAction) -> None:
     parser = subparsers.add_parser(
         "simulate",
+        epilog=_examples(
+            "modemap simulate out/buck/model.json datasets/buck.csv --time t --run run "
+            "--out sim.csv\n  modemap simulate model.json inputs.csv --time t "
+            "--initial i_L=0,v_C=0 --regime 0 --out sim.csv"
+        ),
+        formatter_class=_Help,
         help="re-run a saved model from a given state with inputs from a file; write a CSV",
         description="Simulate a saved hybrid model over the time grid of DATA, with the model's "
         "inputs read from DATA. The initial state comes from DATA's first row (when it has the "
@@ -612,6 +628,9 @@ def _read_grid(path: str, time: str, model, has_states: bool, run: str | None) -
 def _add_view(subparsers: argparse._SubParsersAction) -> None:
     parser = subparsers.add_parser(
         "view",
+        epilog=_examples("""modemap view out/buck
+  modemap view datasets/buck.csv --time t --states i_L,v_C --inputs g --run run"""),
+        formatter_class=_Help,
         help="open the terminal dashboard on a fit result folder or on a data file",
         description="Open the dashboard on DIR (written by 'modemap fit'), or on data files "
         "(with the column options) to fit from inside the dashboard.",
@@ -635,6 +654,11 @@ def _run_view(args: argparse.Namespace) -> int:
     if len(args.data) == 1 and os.path.isdir(args.data[0]):
         run_view(args.data[0])
         return 0
+    missing = [p for p in args.data if not os.path.exists(p)]
+    if missing:
+        raise ModemapError(
+            f"{missing[0]}: not found (give a folder written by 'modemap fit' or data files)"
+        )
     run_view_data(load_dataset(args), out=args.out)
     return 0
 
@@ -647,6 +671,9 @@ def _add_bench(subparsers: argparse._SubParsersAction) -> None:
 
     parser = subparsers.add_parser(
         "bench",
+        epilog=_examples("""modemap bench --sizes 1e5,1e6
+  modemap bench --sizes 1e5 --json bench.json"""),
+        formatter_class=_Help,
         help="measure time and memory of each stage on invented data of growing size",
         description="Benchmark: per-stage wall time and peak memory against a floor measured in "
         "the same run (read, term matrix, one normal-equation pass).",
@@ -674,9 +701,56 @@ def _add_debug(parser: argparse.ArgumentParser) -> None:
     )
 
 
+def _examples(text: str) -> str:
+    return "examples:\n  " + text
+
+
+class _Help(argparse.HelpFormatter):
+    """Descriptions wrapped as usual; the examples epilog kept line by line."""
+
+    def _fill_text(self, text: str, width: int, indent: str) -> str:
+        if text.startswith("examples:"):
+            return "".join(indent + line + "\n" for line in text.splitlines())
+        return super()._fill_text(text, width, indent)
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with one-line errors: the message, a suggestion for a mistyped option, and
+    where the usage is (``--help``); exit code 2 as argparse's."""
+
+    def error(self, message: str) -> NoReturn:
+        self.exit(2, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
+
+    def parse_args(self, args=None, namespace=None):  # type: ignore[override]
+        parsed, extra = self.parse_known_args(args, namespace)
+        if extra:
+            sub = self._command_parser(getattr(parsed, "command", None)) or self
+            unknown = next((a for a in extra if a.startswith("-")), extra[0])
+            hint = _suggestion(unknown, sub)
+            sub.error(
+                f"unrecognized argument {unknown}" + (f"; did you mean {hint}?" if hint else "")
+            )
+        return parsed
+
+    def _command_parser(self, command: str | None) -> argparse.ArgumentParser | None:
+        for action in self._actions:
+            if isinstance(action, argparse._SubParsersAction) and command in action.choices:
+                return action.choices[command]
+        return None
+
+
+def _suggestion(word: str, parser: argparse.ArgumentParser) -> str | None:
+    """The closest option string of ``parser`` to ``word`` (a typo such as ``--sates``)."""
+    import difflib
+
+    options = [o for a in parser._actions for o in a.option_strings if o.startswith("--")]
+    close = difflib.get_close_matches(word.split("=", 1)[0], options, n=1, cutoff=0.6)
+    return close[0] if close else None
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser with every sub-command registered."""
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="modemap",
         description="Identify hybrid (multi-regime) dynamical models from logged trajectories.",
     )

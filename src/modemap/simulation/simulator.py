@@ -729,7 +729,10 @@ def simulate(
     if regime0 is None:
         regime0 = _initial_regime(model, sim.regs, np.concatenate([x0, U[0]]))
     elif int(regime0) not in sim.regs:
-        raise SimulationError(f"regime0={regime0} is not a regime of the model {sorted(sim.regs)}")
+        raise SimulationError(
+            f"initial regime {regime0} is not a regime of the model (its regimes: "
+            f"{', '.join(str(r) for r in sorted(sim.regs))})"
+        )
     status, message = 0, "finished"
     try:
         if model.form == "discrete":
