@@ -242,7 +242,7 @@ def test_malformed_requests_raise_simulation_error():
         simulate(model, t, [0.0, 0.0], np.zeros((9, 1)))
     with pytest.raises(SimulationError, match="strictly increasing"):
         simulate(model, t[::-1], [0.0, 0.0], np.zeros((10, 1)))
-    with pytest.raises(SimulationError, match="regime0=5"):
+    with pytest.raises(SimulationError, match="initial regime 5 is not a regime"):
         simulate(model, t, [0.0, 0.0], np.zeros((10, 1)), regime0=5)
 
 
