@@ -402,3 +402,19 @@ def test_summary_fits_80_columns_and_says_what_matters() -> None:
 def test_equilibria_say_at_which_inputs() -> None:
     text = render_report(two_regime_model())
     assert "Computed with the inputs held at q = 0.5 kW" in text
+
+
+def test_oblique_hysteresis_band_is_stated() -> None:
+    # two facing surfaces x + y = 2 (0 -> 1 above it) and x + y = 1 (1 -> 0 below it): along
+    # either variable, the other held, they lie 1 apart (plane geometry, worked by hand)
+    model = two_regime_model()
+    model.states, model.inputs = ["T", "P"], ["q"]
+    model.guards = [
+        Guard(0, 1, ["T", "P"], np.array([1.0, 1.0]), -2.0, "T + P > 2"),
+        Guard(1, 0, ["T", "P"], np.array([-2.0, -2.0]), 2.0, "T + P < 1"),
+    ]
+    text = render_report(model)
+    assert "the band between them is 1 degC wide along T or 1 bar wide along P (the other" in text
+    # surfaces that do not face each other get no width
+    model.guards[1] = Guard(1, 0, ["T", "P"], np.array([-1.0, 1.0]), 0.0, "P > T")
+    assert "compare the two conditions above" in render_report(model)

@@ -557,11 +557,52 @@ def _hysteresis_notes(model: HybridModel) -> list[str]:
                 f"{_num(b[1])}{unit}; the band between them is {_num(gap)}{unit} wide."
             )
         else:
+            band = _oblique_band(model, g, back[0])
             notes.append(
-                f"Regimes {g.source} and {g.target} switch both ways through separate surfaces; "
-                "compare the two conditions above to see any hysteresis."
+                f"Regimes {g.source} and {g.target} switch both ways through separate surfaces"
+                + (
+                    f"; they are nearly parallel, and the band between them is {band} (the "
+                    "other variables held)."
+                    if band
+                    else "; compare the two conditions above to see any hysteresis."
+                )
             )
     return notes
+
+
+def _oblique_band(model: HybridModel, g: Guard, h: Guard) -> str:
+    """Width of the band between two linear surfaces that face each other (``g`` fires on
+    one side, ``h`` on the other), along each variable they lean on, or ''.
+
+    With ``h``'s weights ``-c`` times ``g``'s, the surfaces are ``w.z = -b_g`` and
+    ``w.z = b_h / c``: along variable ``v`` (the others held) they lie
+    ``|b_g + b_h / c| / |w_v|`` apart.  Surfaces count as facing each other when the cosine
+    of their weights, each variable scaled by its range in the data, is below -0.95."""
+    terms = [t for t in g.terms if t != "1"]
+    if sorted(terms) != sorted(t for t in h.terms if t != "1") or any(
+        t not in model.variables for t in terms
+    ):
+        return ""
+
+    def linear(guard: Guard) -> tuple[np.ndarray, float]:
+        w = dict(zip(guard.terms, np.asarray(guard.weights, dtype=float), strict=True))
+        return np.array([w[t] for t in terms]), float(guard.offset) + w.get("1", 0.0)
+
+    wg, bg = linear(g)
+    wh, bh = linear(h)
+    span = np.array([np.ptp(model.data_range.get(t, (0.0, 1.0))) or 1.0 for t in terms])
+    sg, sh = wg * span, wh * span
+    norm = np.linalg.norm(sg) * np.linalg.norm(sh)
+    if norm == 0 or float(sg @ sh) / norm > -0.95:
+        return ""
+    c = np.linalg.norm(sh) / np.linalg.norm(sg)
+    gap = abs(bg + bh / c)
+    parts = [
+        f"{_num(gap / abs(w))}{_unit(model, t)} wide along {t}"
+        for t, w in zip(terms, wg, strict=True)
+        if w != 0
+    ]
+    return " or ".join(parts)
 
 
 def _validation_section(model: HybridModel) -> str:
