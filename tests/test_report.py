@@ -337,6 +337,8 @@ def test_data_summary_section() -> None:
     summary = {
         "source": "plant.csv",
         "rows": 800,
+        "duration": 199.5,
+        "step": 0.5,
         "time": {"name": "time", "unit": "s"},
         "runs": [
             {
@@ -355,6 +357,9 @@ def test_data_summary_section() -> None:
     text = render_report(two_regime_model(), dataset_summary=summary)
     assert "## Training data" in text and "| Source | plant.csv |" in text
     assert "| day1 | 400 | 0 | 199.5 | 199.5 | 0.5 |" in text
+    # every time figure says its unit
+    assert "| Run | samples | start [s] | end [s] | duration [s] | step [s] |" in text
+    assert "| Duration [s] | 199.5 |" in text and "| Step [s] | 0.5 |" in text
     assert "| T | state | degC | -1 | 9 | 3.5 |" in text
     assert "- column q: 3 repeated time stamps dropped" in text
     assert "## Training data" not in render_report(two_regime_model())

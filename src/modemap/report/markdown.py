@@ -154,8 +154,14 @@ def _title(model: HybridModel) -> str:
 def _data_section(summary: dict[str, Any]) -> str:
     out = ["## Training data"]
     known = ("source", "rows", "samples", "duration", "step", "resampled")
-    rows = [(key.capitalize(), summary[key]) for key in known if key in summary]
     time = summary.get("time")
+    unit = (time.get("unit") or "") if isinstance(time, dict) else ""
+    timed = ("duration", "step")
+    rows = [
+        (key.capitalize() + (f" [{unit}]" if key in timed and unit else ""), summary[key])
+        for key in known
+        if key in summary
+    ]
     if isinstance(time, dict):
         rows.append(("Time column", f"{time.get('name', '')} [{time.get('unit') or '–'}]"))
     rows += [
@@ -167,7 +173,8 @@ def _data_section(summary: dict[str, Any]) -> str:
     runs = summary.get("runs") or []
     if runs:
         cols = ["name", "samples", "start", "end", "duration", "step"]
-        out.append(_table(["Run", *cols[1:]], [[r.get(c) for c in cols] for r in runs]))
+        header = ["Run", "samples", *(f"{c}{_bracket(unit)}" for c in cols[2:])]
+        out.append(_table(header, [[r.get(c) for c in cols] for r in runs]))
     ranges = summary.get("ranges") or {}
     if ranges:
         cols = ["role", "unit", "min", "max", "mean"]
