@@ -149,7 +149,7 @@ class DashboardApp(App[None]):
             for i, (name, cls) in enumerate(PANELS)
         ],
         Binding("r", "refit", "refit"),
-        Binding("o", "open", "open", show=False),
+        Binding("o", "open", "open data"),
         Binding("s", "save", "save"),
         Binding("question_mark", "help", "help", key_display="?"),
         Binding("q", "quit", "quit"),
