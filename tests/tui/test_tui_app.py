@@ -349,3 +349,27 @@ async def test_no_color_keeps_regime_letters(monkeypatch, no_color):
     # either way the regime is readable from the letters of the strip
     # (filters change styles only, never text)
     assert strip.startswith(" regime│BBCCCC")
+
+
+@sync
+async def test_timeline_shows_how_sure_the_labels_are():
+    # labels.csv with prob_<id> columns (written by the fit): the strip under the regime
+    # band draws the probability of the labelled regime as a block from empty to full
+    from modemap.app.tui.widgets.plot import CertaintyStrip
+
+    ds = make_dataset()
+    labels = make_labels(ds, 2)
+    sure = np.where(labels["time"] < labels["time"].median(), 1.0, 0.5)
+    labels["prob_0"] = np.where(labels["regime"] == 0, sure, 1 - sure)
+    labels["prob_1"] = 1 - labels["prob_0"]
+    app = DashboardApp(make_model(2, ds, labels), ds, labels)
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.pause()
+        strip = app.query_one("#tl-certainty", CertaintyStrip)
+        assert strip.display
+        cells = "".join(seg.text for seg in strip.render_line(0))
+        assert "certain│" in cells and "█" in cells and "▄" in cells  # 1.0 and 0.5
+    plain_app = demo_app(2)  # labels without probabilities: no strip
+    async with plain_app.run_test(size=SIZE) as pilot:
+        await pilot.pause()
+        assert not plain_app.query_one("#tl-certainty", CertaintyStrip).display

@@ -12,9 +12,15 @@ from textual.widgets import Static
 
 from modemap.app.tui.screens.base import Panel
 from modemap.app.tui.widgets.canvas import PlotSpec, Series
-from modemap.app.tui.widgets.data import band_function, nearest_index, padded_limits, run_title
+from modemap.app.tui.widgets.data import (
+    band_function,
+    level_function,
+    nearest_index,
+    padded_limits,
+    run_title,
+)
 from modemap.app.tui.widgets.palette import regime_name, trace_color
-from modemap.app.tui.widgets.plot import Plot, RegimeStrip
+from modemap.app.tui.widgets.plot import CertaintyStrip, Plot, RegimeStrip
 from modemap.app.tui.widgets.tables import regime_legend
 
 __all__ = ["TimelinePanel"]
@@ -48,6 +54,7 @@ class TimelinePanel(Panel):
     def compose(self):
         yield Static(id="tl-head", classes="panel-head")
         yield RegimeStrip(id="tl-strip")
+        yield CertaintyStrip(id="tl-certainty")
         yield VerticalScroll(id="tl-plots", can_focus=False)
         yield Static(id="tl-readout", classes="readout")
 
@@ -87,6 +94,7 @@ class TimelinePanel(Panel):
         if run is None or run.n_samples == 0:
             head.update(Text("No data loaded. Press o to open a data file."))
             strip.show([], self.view)
+            self.query_one("#tl-certainty", CertaintyStrip).show(None, self.view)
             readout.update("")
             return
         regimes = st.regimes[st.run]
@@ -100,6 +108,10 @@ class TimelinePanel(Panel):
             + legend
         )
         strip.show([("regime", bands if st.labels is not None else None)], self.view, self.cursor)
+        sure = st.certainty[st.run] if st.certainty else None
+        self.query_one("#tl-certainty", CertaintyStrip).show(
+            level_function(run.time, sure) if sure is not None else None, self.view
+        )
         a = max(int(np.searchsorted(run.time, self.view[0])) - 1, 0)
         b = int(np.searchsorted(run.time, self.view[1])) + 1
         plots = self._plots

@@ -17,9 +17,11 @@ from modemap.model.hybrid import Guard
 
 __all__ = [
     "DashboardState",
+    "align_certainty",
     "align_labels",
     "band_function",
     "evaluate_guard",
+    "level_function",
     "nearest_index",
     "padded_limits",
 ]
@@ -50,6 +52,59 @@ def align_labels(dataset: Dataset | None, labels: pd.DataFrame | None) -> list[n
         ok = np.abs(t[j] - run.time) <= half
         out[i][ok] = reg[j[ok]]
     return out
+
+
+def align_certainty(dataset: Dataset | None, labels: pd.DataFrame | None) -> list[np.ndarray]:
+    """Probability of its own regime for every sample of every run (NaN where unknown).
+
+    Read from the ``prob_<id>`` columns of ``labels`` (written by the fit: each row's
+    probability of each regime given its whole run) at the stored regime, aligned as
+    :func:`align_labels` aligns the regimes; empty when the table has no such columns.
+    """
+    if dataset is None or labels is None or labels.empty:
+        return []
+    if not {"run", "time", "regime"} <= set(labels.columns):
+        return []
+    columns = {c: int(c[5:]) for c in labels.columns if c.startswith("prob_") and c[5:].isdigit()}
+    if not columns:
+        return []
+    k = max(columns.values()) + 1
+    probs = np.full((len(labels), k), np.nan)
+    for c, j in columns.items():
+        probs[:, j] = pd.to_numeric(labels[c], errors="coerce").to_numpy(dtype=float)
+    reg = pd.to_numeric(labels["regime"], errors="coerce").fillna(-1).to_numpy(dtype=np.int64)
+    rows = np.arange(len(labels))
+    own = np.where((reg >= 0) & (reg < k), probs[rows, np.clip(reg, 0, k - 1)], np.nan)
+    frame = pd.DataFrame({"run": labels["run"], "time": labels["time"], "p": own})
+    out = [np.full(r.n_samples, np.nan) for r in dataset.runs]
+    groups = {str(key): g for key, g in frame.groupby(frame["run"].astype(str), sort=False)}
+    half = 0.5 * dataset.step if np.isfinite(dataset.step) and dataset.step > 0 else np.inf
+    for i, run in enumerate(dataset.runs):
+        g = groups.get(run.name, groups.get(run.origin))
+        if g is None or run.n_samples == 0:
+            continue
+        g = g[g["time"].notna()].sort_values("time")
+        t = g["time"].to_numpy(dtype=float)
+        j = nearest_index(t, run.time)
+        ok = np.abs(t[j] - run.time) <= half
+        out[i][ok] = g["p"].to_numpy(dtype=float)[j[ok]]
+    return out
+
+
+def level_function(time: np.ndarray, values: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    """Map times to the value of the sample in force there (NaN outside)."""
+    t = np.asarray(time, dtype=float)
+    v = np.asarray(values, dtype=float)
+
+    def levels(centres: np.ndarray) -> np.ndarray:
+        if t.size == 0:
+            return np.full(centres.shape, np.nan)
+        idx = np.clip(np.searchsorted(t, centres, "right") - 1, 0, t.size - 1)
+        out = v[idx].copy()
+        out[(centres < t[0]) | (centres > t[-1])] = np.nan
+        return out
+
+    return levels
 
 
 def nearest_index(sorted_values: np.ndarray, queries: np.ndarray | float) -> np.ndarray:
@@ -155,6 +210,7 @@ class DashboardState:
         self.dataset = dataset
         self.labels = labels
         self.regimes = align_labels(dataset, labels)
+        self.certainty = align_certainty(dataset, labels)
         self.run = min(self.run, max(self.n_runs - 1, 0))
 
     @property

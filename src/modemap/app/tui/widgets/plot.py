@@ -98,3 +98,45 @@ class RegimeStrip(Widget):
                 style += Style(reverse=True)
             segs.append(Segment(regime_glyph(int(k)), style))
         return Strip(Segment.simplify(segs)).adjust_cell_length(width)
+
+
+#: Eighth blocks for a level in [0, 1] (a space below 1/16).
+LEVELS = " ▁▂▃▄▅▆▇█"
+
+
+class CertaintyStrip(Widget):
+    """One row: how sure the fit is of the regime shown above each cell column (the
+    probability of that regime given the whole run, as a block from empty to full), so that
+    a reader sees where the labels can be trusted without colour."""
+
+    DEFAULT_CSS = """
+    CertaintyStrip { height: 1; }
+    """
+
+    def __init__(self, **kwargs) -> None:
+        super().__init__(**kwargs)
+        self._fn: Callable[[np.ndarray], np.ndarray] | None = None
+        self._xlim: tuple[float, float] = (0.0, 1.0)
+
+    def show(
+        self, fn: Callable[[np.ndarray], np.ndarray] | None, xlim: tuple[float, float]
+    ) -> None:
+        """Set the level function (None hides the row) and the view."""
+        self._fn, self._xlim = fn, xlim
+        self.display = fn is not None
+        self.refresh()
+
+    def render_line(self, y: int) -> Strip:
+        width = self.size.width
+        if y > 0 or self._fn is None or width <= MARGIN:
+            return Strip.blank(width)
+        w = width - MARGIN
+        centres = self._xlim[0] + (self._xlim[1] - self._xlim[0]) * (np.arange(w) + 0.5) / w
+        values = np.asarray(self._fn(centres), dtype=float)
+        cells = "".join(
+            " " if not np.isfinite(v) else LEVELS[int(np.rint(np.clip(v, 0.0, 1.0) * 8))]
+            for v in values
+        )
+        segs = [Segment("certain"[: MARGIN - 1].rjust(MARGIN - 1) + "│", Style(dim=True))]
+        segs.append(Segment(cells, Style(bold=True)))
+        return Strip(segs).adjust_cell_length(width)
