@@ -373,3 +373,22 @@ async def test_timeline_shows_how_sure_the_labels_are():
     async with plain_app.run_test(size=SIZE) as pilot:
         await pilot.pause()
         assert not plain_app.query_one("#tl-certainty", CertaintyStrip).display
+
+
+@sync
+async def test_timeline_draws_the_inputs_too():
+    from dataclasses import replace
+
+    from modemap.app.tui.widgets.plot import Plot
+
+    ds = make_dataset()
+    runs = tuple(
+        replace(r, inputs=(r.time > 10).astype(float)[:, None]) for r in ds.runs
+    )  # a step input, invented
+    ds = replace(ds, runs=runs, input_names=("u",), units={**ds.units, "u": "V"})
+    labels = make_labels(ds, 2)
+    app = DashboardApp(make_model(2, ds, labels), ds, labels)
+    async with app.run_test(size=(80, 40)) as pilot:
+        await pilot.pause()
+        plots = list(app.query("#tl-plots Plot").results(Plot))
+        assert len(plots) == 3  # x, v and the input u

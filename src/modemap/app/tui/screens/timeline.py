@@ -1,4 +1,4 @@
-"""Timeline panel: state traces over time on regime bands, with a reading cursor."""
+"""Timeline panel: state and input traces over time on regime bands, with a reading cursor."""
 
 from __future__ import annotations
 
@@ -27,7 +27,7 @@ __all__ = ["TimelinePanel"]
 
 
 class TimelinePanel(Panel):
-    """Traces of every state of the current run, regime bands and letters, a cursor."""
+    """Traces of every state and input of the current run, regime bands and letters, a cursor."""
 
     TITLE = "Timeline"
     BINDINGS: ClassVar[list[BindingType]] = [
@@ -71,7 +71,7 @@ class TimelinePanel(Panel):
 
     def _rebuild_plots(self) -> None:
         ds = self.state.dataset
-        n = ds.n_states if ds is not None else 0
+        n = ds.n_states + ds.n_inputs if ds is not None else 0  # states, then the inputs
         box = self.query_one("#tl-plots", VerticalScroll)
         if n == self._n_plots:
             return
@@ -115,15 +115,18 @@ class TimelinePanel(Panel):
         a = max(int(np.searchsorted(run.time, self.view[0])) - 1, 0)
         b = int(np.searchsorted(run.time, self.view[1])) + 1
         plots = self._plots
+        n_states = st.dataset.n_states
+        names = list(st.dataset.state_names) + list(st.dataset.input_names)
         for j, plot in enumerate(plots):
-            y = run.states[:, j]
+            y = run.states[:, j] if j < n_states else run.inputs[:, j - n_states]
+            title = st.label(names[j]) + (" (input)" if j >= n_states else "")
             spec = PlotSpec(
                 xlim=self.view,
                 ylim=padded_limits(y[a:b]),
                 series=[Series(run.time, y, trace_color(j))],
                 bands=bands,
                 cursor=self.cursor,
-                title=st.label(st.dataset.state_names[j]),
+                title=title,
                 show_xaxis=j == len(plots) - 1,
             )
             plot.show(spec)
