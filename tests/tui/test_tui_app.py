@@ -392,3 +392,37 @@ async def test_timeline_draws_the_inputs_too():
         await pilot.pause()
         plots = list(app.query("#tl-plots Plot").results(Plot))
         assert len(plots) == 3  # x, v and the input u
+
+
+@sync
+async def test_results_folder_never_gets_a_model_of_other_data():
+    # a session on folder A that opens other data, refits and keeps: saving into A would put
+    # the new model beside A's report and labels, so it is refused with what to do instead
+    ds = make_dataset()
+    saved = []
+    app = demo_app(
+        3,
+        load=lambda path, **_: ds,
+        refit=refit_to(2),
+        save=lambda m, lab: saved.append(m) or "model.json",
+    )
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("o")
+        for key, value in (("path", "other.csv"), ("time", "t"), ("states", "x, v")):
+            app.screen.query_one(f"#open-{key}", Input).value = value
+        app.screen.query_one("#open-path", Input).focus()
+        await pilot.press("enter")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        await pilot.press("r")
+        app.screen.query_one("#opt-k", Input).focus()
+        await pilot.press("enter")
+        await app.workers.wait_for_complete()
+        await pilot.pause()
+        await pilot.press("k")
+        await pilot.press("s")
+        await pilot.pause()
+        assert saved == [] and app.unsaved
+        await pilot.press("q")  # the warning says this session cannot save it
+        assert app.is_running
+        await pilot.press("q")

@@ -179,6 +179,18 @@ class DashboardApp(App[None]):
         self.current = "timeline"
         self.unsaved = False
         self._quit_asked = False
+        # the output folder holds results of the data the session started with; once other
+        # data are opened, saving there would put a new model beside the old data's report
+        self._other_data = False
+
+    def _save_hint(self) -> str:
+        """How the kept model can be saved in this session, in words."""
+        if self.save is None or self._other_data:
+            return (
+                "this session cannot save it (start 'modemap view DATA --out NEW_DIR' to fit "
+                "and save this data)"
+            )
+        return "s saves it"
 
     def compose(self) -> ComposeResult:
         yield Static(id="tabs")
@@ -225,7 +237,8 @@ class DashboardApp(App[None]):
         if self.unsaved and not self._quit_asked:
             self._quit_asked = True
             self.notify(
-                "The kept model is not saved: s saves it, q again quits.", severity="warning"
+                f"The kept model is not saved: {self._save_hint()}; q again quits.",
+                severity="warning",
             )
             return
         self.exit()
@@ -261,7 +274,8 @@ class DashboardApp(App[None]):
         self.state.set(model, self.state.dataset, labels)
         self.unsaved = True
         self.reload_all()
-        self.notify(f"New model kept: K={model.n_regimes}. Press s to save.")
+        hint = self._save_hint()
+        self.notify(f"New model kept: K={model.n_regimes}; {hint}.")
 
     def action_open(self) -> None:
         if self._on_base_screen():
@@ -275,6 +289,7 @@ class DashboardApp(App[None]):
             model = None
         self.state.run = 0
         self.state.set(model, dataset, None)
+        self._other_data = True
         self.reload_all()
         self.notify(
             f"Read {dataset.n_samples} samples in {len(dataset.runs)} run(s). Press r to fit."
@@ -288,6 +303,14 @@ class DashboardApp(App[None]):
             return
         if self.save is None:
             self.notify("Saving is not set up: start with an output folder.", severity="warning")
+            return
+        if self._other_data:
+            self.notify(
+                "Not saved: the output folder holds the results of the data this session "
+                "started with, and other data were opened since. Start 'modemap view DATA "
+                "--out NEW_DIR' to fit and save this data.",
+                severity="warning",
+            )
             return
         try:
             written = self.save(self.state.model, self.state.labels)
