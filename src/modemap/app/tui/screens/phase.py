@@ -13,18 +13,15 @@ from textual.widgets import Static
 from modemap.app.tui.screens.base import Panel
 from modemap.app.tui.widgets.canvas import Contour, Marker, PlotSpec, Scatter
 from modemap.app.tui.widgets.data import evaluate_guard, padded_limits
-from modemap.app.tui.widgets.palette import regime_color, regime_glyph
+from modemap.app.tui.widgets.palette import (
+    EQUILIBRIUM_LEGEND,
+    equilibrium_mark,
+    regime_color,
+    regime_glyph,
+)
 from modemap.app.tui.widgets.plot import Plot
 
 __all__ = ["PhasePanel", "equilibrium_mark"]
-
-
-def equilibrium_mark(stability: str, inside: bool) -> str:
-    """``●``/``○`` stable/unstable reachable, ``◆``/``◇`` stable/unstable virtual."""
-    stable = stability.strip().lower().startswith("stable")
-    if inside:
-        return "●" if stable else "○"
-    return "◆" if stable else "◇"
 
 
 class PhasePanel(Panel):
@@ -163,12 +160,11 @@ class PhasePanel(Panel):
                 f"guards {'on' if self.show_guards else 'off'}"
             )
         )
-        keys = Text(
-            "● stable  ○ unstable  ◆◇ virtual (outside its regime)  "
-            "⠒ guard (other variables at their median)",
-            style="dim",
-        )
-        legend.update(Group(keys, *[Text(p, style="italic") for p in problems]))
+        keys = [
+            Text(EQUILIBRIUM_LEGEND, style="dim"),
+            Text("⠒ guard (other variables at their median)", style="dim"),
+        ]
+        legend.update(Group(*keys, *[Text(p, style="italic") for p in problems]))
 
     def action_axis(self, which: int) -> None:
         n = len(self.state.variables)

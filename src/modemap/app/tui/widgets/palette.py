@@ -78,3 +78,18 @@ def band_style(regime: int) -> Style:
     if regime < 0:
         return Style()
     return _BANDS[regime % len(_BANDS)]
+
+
+#: One meaning per symbol on every panel: the shape says where an equilibrium lies (circle:
+#: reachable, inside its regime; diamond: virtual), the fill says its stability.
+EQUILIBRIUM_LEGEND = (
+    "●/○ stable/unstable equilibrium, ◆/◇ the same but virtual (outside its regime)"
+)
+
+
+def equilibrium_mark(stability: str, inside: bool) -> str:
+    """``●``/``○`` stable/unstable reachable, ``◆``/``◇`` stable/unstable virtual."""
+    stable = stability.strip().lower().startswith("stable")
+    if inside:
+        return "●" if stable else "○"
+    return "◆" if stable else "◇"

@@ -16,7 +16,12 @@ from rich.console import Group, RenderableType
 from rich.table import Table
 from rich.text import Text
 
-from modemap.app.tui.widgets.palette import regime_color, regime_glyph
+from modemap.app.tui.widgets.palette import (
+    EQUILIBRIUM_LEGEND,
+    equilibrium_mark,
+    regime_color,
+    regime_glyph,
+)
 from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
 
 __all__ = [
@@ -71,7 +76,7 @@ def _coordinate(name: str, value: float, eq: Equilibrium, model: HybridModel) ->
 def _equilibrium_line(eq: Equilibrium, model: HybridModel, tunit: str) -> Text:
     point = ", ".join(_coordinate(n, v, eq, model) for n, v in eq.point.items())
     where = "reachable" if eq.inside else "virtual"
-    line = Text(f"    {'●' if eq.inside else '○'} {point}  ")
+    line = Text(f"    {equilibrium_mark(eq.stability, eq.inside)} {point}  ")
     line.append(eq.stability, style="bold")
     line.append(f"  {where}")
     if eq.time_constants:
@@ -137,10 +142,7 @@ def regime_details(model: HybridModel | None, formatter: Formatter | None) -> Re
             Text("    none found")
         ]
         blocks.append(Group(*lines, Text("")))
-    legend = Text(
-        "● reachable (inside the regime)   ○ virtual (the system leaves the regime first)",
-        style="dim",
-    )
+    legend = Text(EQUILIBRIUM_LEGEND, style="dim")
     return Group(*blocks, legend)
 
 
