@@ -18,7 +18,7 @@ from modemap.terms.equations import format_equations
 # methods; annotated as Any so that this module does not import it back.
 HybridModel = Equilibrium = Any
 
-__all__ = ["model_summary", "short_repr"]
+__all__ = ["model_summary", "regime_equations", "short_repr"]
 
 
 def _named(model: HybridModel, name: str) -> str:
@@ -28,6 +28,21 @@ def _named(model: HybridModel, name: str) -> str:
 
 def _num(value: float) -> str:
     return f"{value:.4g}"
+
+
+def regime_equations(model: HybridModel, regime: Any) -> list[str]:
+    """One readable equation per state of ``regime``, each coefficient with its standard
+    error, units on the left-hand side (what the report and the summary print)."""
+    return format_equations(
+        regime.terms,
+        np.asarray(regime.coefficients, dtype=float),
+        model.states,
+        stderr=np.asarray(regime.stderr, dtype=float),
+        units=model.units,
+        time_unit=model.units.get(model.time_name, ""),
+        form=model.form,
+        show_stderr=True,
+    )
 
 
 def short_repr(model: HybridModel) -> str:
@@ -103,17 +118,7 @@ def model_summary(model: HybridModel, width: int = 80) -> str:
         if str(regime.id) in share:
             head += f" ({100 * float(share[str(regime.id)]):.1f} %)"
         lines.append((0, head))
-        equations = format_equations(
-            regime.terms,
-            np.asarray(regime.coefficients, dtype=float),
-            model.states,
-            stderr=np.asarray(regime.stderr, dtype=float),
-            units=model.units,
-            time_unit=model.units.get(model.time_name, ""),
-            form=model.form,
-            show_stderr=True,
-        )
-        lines += [(2, eq) for eq in equations]
+        lines += [(2, eq) for eq in regime_equations(model, regime)]
         if not regime.equilibria:
             lines.append((2, "no equilibrium in or near the data"))
         held = next((q.inputs for q in regime.equilibria if q.inputs), None)

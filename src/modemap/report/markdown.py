@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
-from modemap.terms.equations import format_equations
+from modemap.model.summary import regime_equations
 
 __all__ = ["CAUTION", "render_report"]
 
@@ -348,16 +348,7 @@ def _equations_block(model: HybridModel, regime: RegimeModel) -> str:
 
 
 def _equation_lines(model: HybridModel, regime: RegimeModel) -> list[str]:
-    return format_equations(
-        regime.terms,
-        np.asarray(regime.coefficients, dtype=float),
-        model.states,
-        stderr=np.asarray(regime.stderr, dtype=float),
-        units=model.units,
-        time_unit=model.units.get(model.time_name, ""),
-        form=model.form,
-        show_stderr=True,
-    )
+    return regime_equations(model, regime)
 
 
 def _equilibria_text(model: HybridModel, equilibria: list[Equilibrium]) -> str:

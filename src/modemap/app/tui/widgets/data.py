@@ -36,10 +36,18 @@ def align_labels(dataset: Dataset | None, labels: pd.DataFrame | None) -> list[n
     """
     if dataset is None:
         return []
-    out = [np.full(r.n_samples, -1, dtype=np.int64) for r in dataset.runs]
     if labels is None or labels.empty or not {"run", "time", "regime"} <= set(labels.columns):
-        return out
-    groups = {str(k): g for k, g in labels.groupby(labels["run"].astype(str), sort=False)}
+        return [np.full(r.n_samples, -1, dtype=np.int64) for r in dataset.runs]
+    values = labels["regime"].to_numpy(dtype=np.int64)
+    return _align(dataset, labels, values, np.int64(-1))
+
+
+def _align(dataset: Dataset, labels: pd.DataFrame, values: np.ndarray, missing) -> list:
+    """``values`` (one per row of ``labels``) on every sample of every run: the value
+    stored at the sample's own time stamp (nearest within half a step), else ``missing``."""
+    out = [np.full(r.n_samples, missing, dtype=np.asarray(missing).dtype) for r in dataset.runs]
+    frame = pd.DataFrame({"run": labels["run"].astype(str), "time": labels["time"], "v": values})
+    groups = {k: g for k, g in frame.groupby("run", sort=False)}
     half = 0.5 * dataset.step if np.isfinite(dataset.step) and dataset.step > 0 else np.inf
     for i, run in enumerate(dataset.runs):
         g = groups.get(run.name, groups.get(run.origin))
@@ -47,10 +55,9 @@ def align_labels(dataset: Dataset | None, labels: pd.DataFrame | None) -> list[n
             continue
         g = g[g["time"].notna()].sort_values("time")
         t = g["time"].to_numpy(dtype=float)
-        reg = g["regime"].to_numpy(dtype=np.int64)
         j = nearest_index(t, run.time)
         ok = np.abs(t[j] - run.time) <= half
-        out[i][ok] = reg[j[ok]]
+        out[i][ok] = g["v"].to_numpy()[j[ok]]
     return out
 
 
@@ -75,20 +82,7 @@ def align_certainty(dataset: Dataset | None, labels: pd.DataFrame | None) -> lis
     reg = pd.to_numeric(labels["regime"], errors="coerce").fillna(-1).to_numpy(dtype=np.int64)
     rows = np.arange(len(labels))
     own = np.where((reg >= 0) & (reg < k), probs[rows, np.clip(reg, 0, k - 1)], np.nan)
-    frame = pd.DataFrame({"run": labels["run"], "time": labels["time"], "p": own})
-    out = [np.full(r.n_samples, np.nan) for r in dataset.runs]
-    groups = {str(key): g for key, g in frame.groupby(frame["run"].astype(str), sort=False)}
-    half = 0.5 * dataset.step if np.isfinite(dataset.step) and dataset.step > 0 else np.inf
-    for i, run in enumerate(dataset.runs):
-        g = groups.get(run.name, groups.get(run.origin))
-        if g is None or run.n_samples == 0:
-            continue
-        g = g[g["time"].notna()].sort_values("time")
-        t = g["time"].to_numpy(dtype=float)
-        j = nearest_index(t, run.time)
-        ok = np.abs(t[j] - run.time) <= half
-        out[i][ok] = g["p"].to_numpy(dtype=float)[j[ok]]
-    return out
+    return _align(dataset, labels, own, np.float64(np.nan))
 
 
 def level_function(time: np.ndarray, values: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
