@@ -156,3 +156,19 @@ def test_no_refit_keeps_the_training_model(tmp_path) -> None:
         assert model["metadata"]["options"]["refit"] is not bool(extra)
         samples[bool(extra)] = sum(r["samples"] for r in model["regimes"])
     assert samples[True] < samples[False]
+
+
+def test_output_folder_that_would_lose_data_is_refused_before_the_fit(tmp_path, capsys) -> None:
+    # nothing on disk lost: an empty --out, or a folder whose labels.csv is the input itself
+    folder = tmp_path / "logs"
+    folder.mkdir()
+    data = folder / "labels.csv"
+    relay_frame(n_runs=2, duration=12.0).to_csv(data, index=False)
+    before = data.read_bytes()
+    for out in ("", str(folder)):
+        assert main(["fit", str(data), *COLUMNS, "--out", out]) == 2
+        err = capsys.readouterr().err
+        assert err.count("\n") == 1 and "Traceback" not in err
+    assert "would be overwritten" in err and "labels.csv" in err
+    assert data.read_bytes() == before
+    assert sorted(p.name for p in folder.iterdir()) == ["labels.csv"]

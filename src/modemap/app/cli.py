@@ -437,15 +437,16 @@ def identifier_from_args(args: argparse.Namespace):
 
 
 def _run_fit(args: argparse.Namespace) -> int:
-    from modemap.report.output import write_fit_outputs
+    from modemap.report.output import check_output_folder, write_fit_outputs
 
+    check_output_folder(args.out, args.data)  # before the fit, not after it
     ident = identifier_from_args(args)
     ds = load_dataset(args)
     terminal = sys.stderr.isatty()
     with _ProgressLine(enabled=not args.quiet, terminal=terminal) as progress:
         ident.fit(ds, progress=progress)
     ident.model_.metadata["data"] = _data_record(args)
-    paths = write_fit_outputs(args.out, ident.model_, ident.labels_, dataset=ds)
+    paths = write_fit_outputs(args.out, ident.model_, ident.labels_, dataset=ds, read=args.data)
     model = ident.model_
     print(
         f"{model.n_regimes} regime(s), {len(model.guards)} guard(s); wrote "

@@ -11,6 +11,7 @@ from __future__ import annotations
 import contextlib
 import os
 import tempfile
+from collections.abc import Sequence
 from pathlib import Path
 
 import pandas as pd
@@ -20,9 +21,40 @@ from modemap._exceptions import ModemapError
 from modemap.data.dataset import Dataset
 from modemap.model.hybrid import HybridModel
 
-__all__ = ["RESULT_FILES", "write_fit_outputs"]
+__all__ = ["RESULT_FILES", "check_output_folder", "write_fit_outputs"]
 
 RESULT_FILES = ("model.json", "labels.csv", "report.md")
+
+
+def check_output_folder(
+    directory: str | os.PathLike[str], read: Sequence[str | os.PathLike[str]] = ()
+) -> Path:
+    """The output folder, refused before any work when writing there could lose data.
+
+    Refused: an empty name (it would mean the current folder by accident), a path that
+    exists and is not a folder, and a folder where one of the result files
+    (:data:`RESULT_FILES`) would replace a file the run reads (``read``: the data files).
+
+    Raises
+    ------
+    ModemapError
+        With one line naming the path and the reason.
+    """
+    if not str(directory).strip():
+        raise ModemapError("--out: an output folder name is needed (got an empty name)")
+    out = Path(directory)
+    if out.exists() and not out.is_dir():
+        raise ModemapError(f"{out}: exists and is not a folder")
+    for name in RESULT_FILES:
+        target = out / name
+        for source in read:
+            source = Path(source)
+            if target.exists() and source.exists() and os.path.samefile(target, source):
+                raise ModemapError(
+                    f"{target}: is an input of this run and would be overwritten by the "
+                    f"results; choose another output folder"
+                )
+    return out
 
 
 def write_fit_outputs(
@@ -31,6 +63,7 @@ def write_fit_outputs(
     labels: pd.DataFrame,
     *,
     dataset: Dataset | None = None,
+    read: Sequence[str | os.PathLike[str]] = (),
 ) -> list[Path]:
     """Write ``model.json``, ``labels.csv`` and ``report.md`` into ``directory``.
 
@@ -43,6 +76,8 @@ def write_fit_outputs(
         Columns ``run, time, regime``, one row per input sample.
     dataset : Dataset, optional
         Used for the data summary at the top of the report.
+    read : sequence of path-like, optional
+        Files the run read: none of them is ever overwritten (:func:`check_output_folder`).
 
     Returns
     -------
@@ -53,9 +88,7 @@ def write_fit_outputs(
     from modemap.model.modelfile import dumps_model
     from modemap.report.markdown import render_report
 
-    out = Path(directory)
-    if out.exists() and not out.is_dir():
-        raise ModemapError(f"{out}: exists and is not a folder")
+    out = check_output_folder(directory, read)
     texts = {
         "model.json": dumps_model(model),
         "labels.csv": labels[_label_columns(labels)].to_csv(index=False, float_format="%.10g"),
