@@ -281,3 +281,20 @@ def test_every_command_help_has_an_example(command, capsys):
 def test_view_of_a_missing_folder_says_not_found(tmp_path, capsys):
     err = _fail(capsys, ["view", str(tmp_path / "nope_dir")])
     assert "nope_dir: not found" in err
+
+
+@pytest.mark.parametrize(
+    ("extra", "message"),
+    [
+        (["--seed", "-1"], "--seed must be an integer in [0, 4294967295], got -1"),
+        (["--max-degree", "0"], "--max-degree must be an integer in [1, 10], got 0"),
+        (["--min-regime-samples", "0"], "--min-regime-samples must be an integer >= 1, got 0"),
+    ],
+)
+def test_out_of_range_options_are_named_as_typed(extra, message, write_file, tmp_path, capsys):
+    path = write_file("good.csv", GOOD)
+    err = _fail(
+        capsys,
+        ["fit", str(path), "--time", "t", "--states", "x", *extra, "--out", str(tmp_path / "o")],
+    )
+    assert message in err

@@ -35,11 +35,11 @@ def test_batch_progress_is_a_plain_line_every_few_seconds(monkeypatch) -> None:
     err = io.StringIO()
     monkeypatch.setattr(sys, "stderr", err)
     line = _ProgressLine(enabled=True, terminal=False, every=5.0)
-    line._clock = ProgressClock(clock=_ticks(0.0, 0.0, 1.0, 6.0, 7.0))
-    for fraction, message in [(0.1, "a"), (0.05, "b"), (0.4, "c"), (0.5, "d")]:
+    line._clock = ProgressClock(clock=_ticks(0.0, 0.0, 1.0, 6.0, 7.0, 12.0))
+    for fraction, message in [(0.1, "a"), (0.05, "b"), (0.4, "c"), (0.5, "d"), (0.6, "e")]:
         line(fraction, message)
     lines = err.getvalue().splitlines()
-    assert len(lines) == 2  # at 0 s and at 6 s; nothing redrawn in place
-    assert lines[0].startswith(" 10.0 %  0 s elapsed  a")
-    assert lines[1].startswith(" 40.0 %  6 s elapsed, about 9 s left  c")
+    assert len(lines) == 2  # at 6 s and at 12 s; quiet before, nothing redrawn in place
+    assert lines[0].startswith(" 40.0 %  6 s elapsed, about 9 s left  c")
+    assert lines[1].startswith(" 60.0 %  12 s elapsed, about 8 s left  e")
     assert "\r" not in err.getvalue()

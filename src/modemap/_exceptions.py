@@ -87,7 +87,14 @@ class ModelFileError(ModemapError, ValueError):
 
 class ParameterError(ModemapError, ValueError):
     """An estimator parameter or a function option outside its allowed values
-    (checked by :func:`modemap._params.check_params`)."""
+    (checked by :func:`modemap._params.check_params`).
+
+    ``param``, ``expected`` and ``value`` (None when not set) let a front end say the
+    same in its own words, e.g. with the command-line option's name."""
+
+    param: str | None = None
+    expected: str | None = None
+    value: object = None
 
 
 class FitError(ModemapError, RuntimeError):

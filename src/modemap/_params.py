@@ -61,13 +61,14 @@ class Interval:
         what = "an integer" if self.kind is int else "a number"
         lo = "[" if self.closed in ("both", "left") else "("
         hi = "]" if self.closed in ("both", "right") else ")"
+        fmt = "d" if self.kind is int else "g"  # integers in full: 4294967295, not 4.29e+09
         if self.low is None and self.high is None:
             return what
         if self.high is None:
-            return f"{what} {'>=' if lo == '[' else '>'} {self.low:g}"
+            return f"{what} {'>=' if lo == '[' else '>'} {self.low:{fmt}}"
         if self.low is None:
-            return f"{what} {'<=' if hi == ']' else '<'} {self.high:g}"
-        return f"{what} in {lo}{self.low:g}, {self.high:g}{hi}"
+            return f"{what} {'<=' if hi == ']' else '<'} {self.high:{fmt}}"
+        return f"{what} in {lo}{self.low:{fmt}}, {self.high:{fmt}}{hi}"
 
 
 @dataclass(frozen=True)
@@ -145,7 +146,9 @@ def check_value(value: Any, allowed: Sequence[Any], name: str, owner: str = "") 
         return value
     expected = " or ".join(_describe(f) for f in allowed)
     where = f"{owner}: " if owner else ""
-    raise ParameterError(f"{where}{name} must be {expected}, got {value!r}")
+    error = ParameterError(f"{where}{name} must be {expected}, got {value!r}")
+    error.param, error.expected, error.value = name, expected, value  # for front ends
+    raise error
 
 
 def _constraints(cls: type) -> dict[str, list]:

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import math
 import os
 import sys
 import traceback
@@ -19,7 +18,7 @@ from collections.abc import Callable, Sequence
 from typing import NoReturn
 
 import modemap
-from modemap._exceptions import DataError, ModemapError
+from modemap._exceptions import DataError, ModemapError, ParameterError
 from modemap._progress import ProgressClock, format_duration
 from modemap.data.dataset import Dataset
 from modemap.data.intake import parse_header, peek_columns, read_data, summarize
@@ -481,7 +480,7 @@ class _ProgressLine:
     def __init__(self, enabled: bool, terminal: bool = True, every: float = 5.0) -> None:
         self.enabled, self.terminal, self.every = enabled, terminal, every
         self._last = ""
-        self._printed = -math.inf
+        self._printed = 0.0  # the first line after ``every`` seconds: quick runs stay quiet
         self._clock = ProgressClock()
 
     def __enter__(self) -> Callable[[float, str], None]:
@@ -782,7 +781,26 @@ def main(argv: Sequence[str] | None = None) -> int:
         return EXIT_USER_ERROR
 
 
+#: Estimator parameters and the command-line options that set them.
+_OPTION_OF_PARAMETER = {
+    "n_regimes": "--regimes",
+    "max_regimes": "--max-regimes",
+    "min_samples": "--min-regime-samples",
+    "min_dwell": "--min-dwell",
+    "seed": "--seed",
+    "degree": "--degree",
+    "max_degree": "--max-degree",
+    "threshold": "--threshold",
+    "kind": "--guards",
+    "holdout": "--holdout",
+}
+
+
 def _one_line(exc: BaseException) -> str:
+    flag = _OPTION_OF_PARAMETER.get(getattr(exc, "param", None) or "")
+    if isinstance(exc, ParameterError) and flag and exc.expected is not None:
+        expected = exc.expected.replace(" or None", "")  # None: the option's default
+        return f"{flag} must be {expected}, got {exc.value!r}"
     if isinstance(exc, OSError) and exc.filename is not None:
         return f"{exc.filename}: {exc.strerror or exc}"
     return " ".join(str(exc).split()) or type(exc).__name__

@@ -134,6 +134,11 @@ class HybridIdentifier(BaseEstimator):
                 "HybridIdentifier.fit expects a modemap Dataset (see modemap.read_data)"
             )
         check_params(self)
+        for stage in (self.regimes, self.guards):  # every setting checked before any work
+            if stage is not None:
+                check_params(stage)
+        if self.regimes is not None and self.regimes.local_model is not None:
+            check_params(self.regimes.local_model)
         progress = progress or null_progress
         progress(0.0, "splitting off validation data")
         train, test = split_holdout(ds, self.holdout) if self.holdout > 0 else (ds, None)
