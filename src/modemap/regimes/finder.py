@@ -127,9 +127,12 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
     n_regimes_ : int
     local_fits_ : list of LocalFit
     selection_ : DataFrame
-        ``K, n_regimes, loglik, n_params, bic, holdout_rmse, chosen``.
+        One row per candidate: ``K, degree, n_regimes, loglik, n_params, criterion,
+        effective_windows, collapsed, chosen`` (:mod:`modemap.regimes.selection`).
     statistics_ : dict
-        Shares, dwell times, switch counts (:func:`modemap.regimes.summary.statistics`).
+        Shares, dwell times, switch counts (:func:`modemap.regimes.summary.statistics`),
+        and the chain's ``transition_matrix``, ``transition_stderr``, ``expected_duration``
+        and ``expected_duration_stderr`` (:func:`modemap.regimes.summary.chain_statistics`).
     transmat_ : ndarray of shape (K, K)
     library_ : fitted TermLibrary
     local_model_ : BoundLocalModel
@@ -137,7 +140,6 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
     posteriors_ : list of ndarray of shape (n_samples, K)
         Each sample's regime probabilities given all the data of its run (forward-backward
         under the final model, on the common targets), one array per run.
-    transmat_ : ndarray of shape (K, K)
     degree_ : int or None
         The library order chosen.
     notes_ : list of str
