@@ -239,6 +239,13 @@ class GramStats:
         out = self.yy - ctc - ctc.T + c.T @ (self.gram @ c)
         out = 0.5 * (out + out.T)
         np.fill_diagonal(out, np.clip(np.diag(out), 0.0, None))  # round-off of a perfect fit
+        # sums lose their last digits when terms are large and the fit close (cubes of a
+        # temperature near 350 K): a product matrix that comes out slightly indefinite is
+        # replaced by its positive part (negative eigenvalues set to zero)
+        if out.shape[0] > 1:
+            lam, vec = np.linalg.eigh(out)
+            if lam.min() < 0.0:
+                out = (vec * np.clip(lam, 0.0, None)) @ vec.T
         return out
 
     def rss(self, coef: np.ndarray) -> np.ndarray:

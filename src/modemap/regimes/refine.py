@@ -394,26 +394,12 @@ def _covariances(
     count = max(float(total.n), 1.0)
     mean = total.target_sum / count
     floor = rel_floor * (np.maximum(np.diag(total.yy) / count - mean**2, 0.0) + 1e-300)
-    products = [
-        _positive_part(s.residual_products(np.asarray(f.coef)))
-        for s, f in zip(stats, fits, strict=True)
-    ]
+    products = [s.residual_products(np.asarray(f.coef)) for s, f in zip(stats, fits, strict=True)]
     counts = [max(float(s.n), 1.0) for s in stats]
     if kind == "tied":
         pooled = sum(products) / sum(counts) + np.diag(floor)
         return np.repeat(pooled[None], len(stats), axis=0)
     return np.array([p / c + np.diag(floor) for p, c in zip(products, counts, strict=True)])
-
-
-def _positive_part(products: np.ndarray) -> np.ndarray:
-    """Residual products with negative eigenvalues set to zero: products computed from
-    sums (``yy - 2 c'xy + c'Gc``) lose their last digits when terms are large and the fit
-    is close (cubes of a temperature near 350 K), and may come out slightly indefinite."""
-    products = 0.5 * (products + products.T)
-    lam, vec = np.linalg.eigh(products)
-    if lam.min() >= 0.0:
-        return products
-    return (vec * np.clip(lam, 0.0, None)) @ vec.T
 
 
 #: Terms are chosen again when more than this share of the rows changed regime since the
