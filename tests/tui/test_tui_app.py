@@ -45,6 +45,27 @@ async def visit_all_panels(app, pilot) -> None:
     await pilot.pause()
 
 
+async def _open_data(app, pilot, path: str) -> None:
+    """``o``, the file and its columns typed in, read in the background."""
+    await pilot.press("o")
+    for key, value in (("path", path), ("time", "t"), ("states", "x, v")):
+        app.screen.query_one(f"#open-{key}", Input).value = value
+    app.screen.query_one("#open-path", Input).focus()
+    await pilot.press("enter")
+    await app.workers.wait_for_complete()
+    await pilot.pause()
+
+
+async def _refit_and_keep(app, pilot) -> None:
+    """``r`` with the settings shown, fitted in the background, then ``k`` keeps it."""
+    await pilot.press("r")
+    app.screen.query_one("#opt-k", Input).focus()
+    await pilot.press("enter")
+    await app.workers.wait_for_complete()
+    await pilot.pause()
+    await pilot.press("k")
+
+
 @sync
 async def test_each_panel_opens_and_shows_the_model():
     app = demo_app(3)
@@ -230,21 +251,10 @@ async def test_open_data_then_fit_from_inside():
 
     app = DashboardApp(None, None, None, load=load, refit=refit_to(3), formatter=plain_equations)
     async with app.run_test(size=SIZE) as pilot:
-        await pilot.press("o")
-        for key, value in (("path", "cart.csv"), ("time", "t"), ("states", "x, v")):
-            app.screen.query_one(f"#open-{key}", Input).value = value
-        app.screen.query_one("#open-path", Input).focus()
-        await pilot.press("enter")
-        await app.workers.wait_for_complete()
-        await pilot.pause()
+        await _open_data(app, pilot, "cart.csv")
         assert asked == [("cart.csv", "t", ("x", "v"), (), None)]
         assert app.state.dataset is ds
-        await pilot.press("r")
-        app.screen.query_one("#opt-k", Input).focus()
-        await pilot.press("enter")
-        await app.workers.wait_for_complete()
-        await pilot.pause()
-        await pilot.press("k")
+        await _refit_and_keep(app, pilot)
         assert app.state.model.n_regimes == 3
         assert app.state.regimes[0].max() == 2
 
@@ -407,19 +417,8 @@ async def test_results_folder_never_gets_a_model_of_other_data():
         save=lambda m, lab: saved.append(m) or "model.json",
     )
     async with app.run_test(size=SIZE) as pilot:
-        await pilot.press("o")
-        for key, value in (("path", "other.csv"), ("time", "t"), ("states", "x, v")):
-            app.screen.query_one(f"#open-{key}", Input).value = value
-        app.screen.query_one("#open-path", Input).focus()
-        await pilot.press("enter")
-        await app.workers.wait_for_complete()
-        await pilot.pause()
-        await pilot.press("r")
-        app.screen.query_one("#opt-k", Input).focus()
-        await pilot.press("enter")
-        await app.workers.wait_for_complete()
-        await pilot.pause()
-        await pilot.press("k")
+        await _open_data(app, pilot, "other.csv")
+        await _refit_and_keep(app, pilot)
         await pilot.press("s")
         await pilot.pause()
         assert saved == [] and app.unsaved
