@@ -15,6 +15,7 @@ from modemap.app.tui.widgets.canvas import (
     PlotSpec,
     Scatter,
     Series,
+    _glyph_cells,
     _line_mask,
     _scatter_cells,
     braille_cells,
@@ -66,10 +67,33 @@ def test_line_envelope_matches_a_per_column_loop():
         assert np.flatnonzero(mask[:, c]).tolist() == list(range(top, bottom + 1))
 
 
-def test_dashed_line_leaves_gaps():
-    s = Series(np.linspace(0, 1, 50), np.full(50, 0.5), "#ffffff", dashed=True)
-    row = _line_mask(s, (0.0, 1.0), (0.0, 1.0), (8, 32))[4]
-    assert 0 < row.sum() < 32
+def test_glyph_line_marks_every_other_column_at_its_value():
+    # a line y = x drawn as glyphs in a 10 x 5 cell box over [0, 1] x [0, 1]: column c
+    # (centre (c + 0.5) / 10) lies in row floor((1 - y) * 5), by hand
+    s = Series(np.linspace(0, 1, 50), np.linspace(0, 1, 50), "#ffffff", glyph="•")
+    rows, cols = _glyph_cells(s, (0.0, 1.0), (0.0, 1.0), 10, 5)
+    assert cols.tolist() == [0, 2, 4, 6, 8]
+    assert rows.tolist() == [int(np.floor((1 - (c + 0.5) / 10) * 5)) for c in cols]
+    lines = render_plot(PlotSpec((0.0, 1.0), (0.0, 1.0), series=[s], show_xaxis=False), 18, 5)
+    text = ["".join(seg.text for seg in line)[8:] for line in lines]
+    assert sum(row.count("•") for row in text) == 5
+
+
+def test_guard_stays_visible_over_the_samples():
+    # samples of regime 0 fill every cell; the guard x = 0.5 crosses them: its cells show
+    # braille dots, the others the regime letter
+    g = np.linspace(0, 1, 60)
+    X, Y = np.meshgrid(g, g)
+    spec = PlotSpec(
+        (0.0, 1.0),
+        (0.0, 1.0),
+        scatter=Scatter(X.ravel(), Y.ravel(), np.zeros(X.size, dtype=np.int64)),
+        contours=[Contour(lambda x, y: x - 0.5, "#ffffff")],
+        show_xaxis=False,
+    )
+    for line in render_plot(spec, 18, 5):
+        row = "".join(seg.text for seg in line)[8:]
+        assert row.count("A") == 9 and sum(0x2800 <= ord(c) <= 0x28FF for c in row) == 1
 
 
 def test_scatter_cell_holds_most_frequent_class():

@@ -106,21 +106,36 @@ class PhasePanel(Panel):
             contours.append(Contour(func, regime_color(g.source)))
         return contours, problems
 
-    def _markers(self, xname: str, yname: str) -> list[Marker]:
+    def _markers(self, xname: str, yname: str) -> list[tuple[Marker, str]]:
+        """A marker per equilibrium that has both coordinates, with its description.
+
+        An input axis takes the input value the equilibrium was computed at.
+        """
         model = self.state.model
         out = []
         for reg in model.regimes if model is not None else []:
             for eq in reg.equilibria:
-                if xname in eq.point and yname in eq.point:
-                    out.append(
-                        Marker(
-                            eq.point[xname],
-                            eq.point[yname],
-                            equilibrium_mark(eq.stability, eq.inside),
-                            regime_color(reg.id),
-                        )
+                where = {**eq.inputs, **eq.point}
+                if xname in where and yname in where:
+                    mark = equilibrium_mark(eq.stability, eq.inside)
+                    marker = Marker(where[xname], where[yname], mark, regime_color(reg.id))
+                    text = (
+                        f"{mark} {regime_glyph(reg.id)} at {xname} = {where[xname]:.4g}, "
+                        f"{yname} = {where[yname]:.4g}"
                     )
+                    out.append((marker, text))
         return out
+
+    @staticmethod
+    def _outside(
+        markers: list[tuple[Marker, str]], xlim: tuple[float, float], ylim: tuple[float, float]
+    ) -> list[str]:
+        """Descriptions of the equilibria that fall outside the plotted box."""
+        return [
+            text
+            for m, text in markers
+            if not (xlim[0] <= m.x <= xlim[1] and ylim[0] <= m.y <= ylim[1])
+        ]
 
     def redraw(self) -> None:
         st = self.state
@@ -142,11 +157,16 @@ class PhasePanel(Panel):
         Z, reg = self._samples()
         xname, yname = names[ix], names[iy]
         contours, problems = self._guard_contours(Z, names, ix, iy)
+        markers = self._markers(xname, yname)
+        xlim, ylim = self._limits(Z, ix, xname), self._limits(Z, iy, yname)
+        outside = self._outside(markers, xlim, ylim)
+        if outside:
+            problems.append("outside the view: " + "; ".join(outside))
         spec = PlotSpec(
-            xlim=self._limits(Z, ix, xname),
-            ylim=self._limits(Z, iy, yname),
+            xlim=xlim,
+            ylim=ylim,
             scatter=Scatter(Z[:, ix], Z[:, iy], reg) if Z.shape[0] else None,
-            markers=self._markers(xname, yname),
+            markers=[m for m, _ in markers],
             contours=contours,
             title=f"{st.label(yname)} against {st.label(xname)}",
         )

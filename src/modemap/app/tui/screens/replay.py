@@ -34,7 +34,8 @@ def _check_result(result: Any, n_states: int) -> None:
 
 
 class ReplayPanel(Panel):
-    """Measured (solid) against simulated (dashed) traces of the current run."""
+    """Measured (braille line) against simulated (a dotted line of ``•``) traces of the
+    current run: told apart by shape, with or without colour."""
 
     TITLE = "Replay"
     BINDINGS: ClassVar[list[BindingType]] = [
@@ -127,7 +128,7 @@ class ReplayPanel(Panel):
         head.update(
             Text(f"{run_title(run, st.run, st.n_runs)}  ")
             + Text("── measured  ", style="bold")
-            + Text("╌╌ simulated", style=f"bold {SIM_COLOR}")
+            + Text("• • simulated", style=f"bold {SIM_COLOR}")
             + Text(f"   {status}")
         )
         rows = [
@@ -144,7 +145,7 @@ class ReplayPanel(Panel):
             values = [run.states[:, j]]
             if result is not None:
                 sim_y = np.asarray(result.states)[:, j]
-                series.append(Series(np.asarray(result.time), sim_y, SIM_COLOR, dashed=True))
+                series.append(Series(np.asarray(result.time), sim_y, SIM_COLOR, glyph="•"))
                 values.append(sim_y[np.isfinite(sim_y)])
             spec = PlotSpec(
                 xlim=xlim,

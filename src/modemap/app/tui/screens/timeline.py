@@ -16,6 +16,7 @@ from modemap.app.tui.widgets.data import (
     band_function,
     level_function,
     nearest_index,
+    pack_parts,
     padded_limits,
     run_title,
 )
@@ -130,9 +131,10 @@ class TimelinePanel(Panel):
                 show_xaxis=j == len(plots) - 1,
             )
             plot.show(spec)
-        readout.update(Text(self._readout(run, regimes)))
+        width = readout.size.width or self.app.size.width
+        readout.update(Text(pack_parts(self._readout(run, regimes), width)))
 
-    def _readout(self, run, regimes: np.ndarray) -> str:
+    def _readout(self, run, regimes: np.ndarray) -> list[str]:
         st = self.state
         i = int(nearest_index(run.time, self.cursor)[0])
         tu = st.time_unit
@@ -146,7 +148,7 @@ class TimelinePanel(Panel):
             parts.append(f"{name} = {v:.5g}{' ' + u if u else ''}")
         k = int(regimes[i])
         parts.append(f"regime {regime_name(k)}" if k >= 0 else "regime ·")
-        return " │ ".join(parts)
+        return parts
 
     # actions -------------------------------------------------------------
     def _limits(self) -> tuple[float, float]:

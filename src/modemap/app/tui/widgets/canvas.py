@@ -7,7 +7,8 @@ value met in that column (the min/max envelope, common practice for drawing
 long records on few pixels), joined to the neighbouring columns through values
 interpolated at the column edges.  Cells can also carry a glyph (regime
 letters of a scatter, equilibrium marks) and every cell column can carry a
-background band.
+background band.  Layers, top first: the title, markers, contours (guards), the
+scatter letters and glyph lines, the braille lines.
 
 Everything here is pure: :func:`render_plot` turns a :class:`PlotSpec` into
 rows of Rich segments, which the :class:`~modemap.app.tui.widgets.plot.Plot`
@@ -46,12 +47,17 @@ _DOT_BITS = np.array([[0x01, 0x08], [0x02, 0x10], [0x04, 0x20], [0x40, 0x80]], d
 
 @dataclass
 class Series:
-    """A line through ``(x, y)``; ``x`` sorted ascending."""
+    """A line through ``(x, y)``; ``x`` sorted ascending.
+
+    With ``glyph`` set, the line is drawn as that character in every other cell column
+    (at the cell of the value interpolated at the column centre) instead of braille dots,
+    so that it stays apart from a braille line without colour.
+    """
 
     x: np.ndarray
     y: np.ndarray
     color: str
-    dashed: bool = False
+    glyph: str = ""
 
 
 @dataclass
@@ -153,8 +159,6 @@ def _line_mask(
         top = np.floor((y1 - hi) * scale)
         bottom = np.floor((y1 - lo) * scale)
     valid = np.isfinite(top) & np.isfinite(bottom) & (bottom >= 0) & (top <= rows - 1)
-    if s.dashed:
-        valid &= (np.arange(cols) // 4) % 2 == 0
     top = np.clip(np.nan_to_num(top), 0, rows - 1)
     bottom = np.clip(np.nan_to_num(bottom), 0, rows - 1)
     r = np.arange(rows)[:, None]
@@ -180,6 +184,20 @@ def _contour_mask(
     mask[:, 1:] |= horiz
     mask[1:, :] |= vert
     return mask
+
+
+def _glyph_cells(s: Series, xlim, ylim, w: int, h: int) -> tuple[np.ndarray, np.ndarray]:
+    """Cell rows and columns of a glyph series: every other column, inside the box."""
+    x = np.asarray(s.x, dtype=float)
+    if x.size == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    cols = np.arange(0, w, 2)
+    centres = xlim[0] + (xlim[1] - xlim[0]) * (cols + 0.5) / w
+    y = np.interp(centres, x, np.asarray(s.y, dtype=float), left=np.nan, right=np.nan)
+    with np.errstate(invalid="ignore"):
+        rows = np.floor((ylim[1] - y) / (ylim[1] - ylim[0]) * h)
+    keep = np.isfinite(rows) & (rows >= 0) & (rows < h)
+    return rows[keep].astype(np.int64), cols[keep]
 
 
 def _scatter_cells(sc: Scatter, xlim, ylim, w: int, h: int) -> np.ndarray:
@@ -267,17 +285,27 @@ def render_plot(spec: PlotSpec, width: int, height: int) -> list[list[Segment]]:
     code = np.zeros((h, w), dtype=np.uint16)
     owner = np.full((h, w), -1, dtype=np.int64)
     colors: list[str] = []
-    layers = [(_contour_mask(c, xlim, ylim, shape), c.color) for c in spec.contours]
-    layers += [(_line_mask(s, xlim, ylim, shape), s.color) for s in spec.series]
-    for mask, color in layers:
+    lines = [s for s in spec.series if not s.glyph]
+    layers = [(_line_mask(s, xlim, ylim, shape), s.color) for s in lines]
+    # guards last so that they own the cells they share with a trace
+    layers += [(_contour_mask(c, xlim, ylim, shape), c.color) for c in spec.contours]
+    guard = np.zeros((h, w), dtype=bool)
+    for i, (mask, color) in enumerate(layers):
         bits = braille_cells(mask)
         code |= bits
         owner[bits > 0] = len(colors)
         colors.append(color)
+        if i >= len(lines):
+            guard |= bits > 0
     glyph = np.full((h, w), "", dtype=object)
     glyph_color = np.full((h, w), "", dtype=object)
+    for s in spec.series:
+        if s.glyph:
+            rows, cols = _glyph_cells(s, xlim, ylim, w, h)
+            glyph[rows, cols], glyph_color[rows, cols] = s.glyph, s.color
     if spec.scatter is not None:
         cells = _scatter_cells(spec.scatter, xlim, ylim, w, h)
+        cells[guard] = -2  # a guard crossing the samples stays visible
         for k in np.unique(cells[cells > -2]):
             sel = cells == k
             glyph[sel] = regime_glyph(int(k))

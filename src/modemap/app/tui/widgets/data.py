@@ -23,6 +23,7 @@ __all__ = [
     "evaluate_guard",
     "level_function",
     "nearest_index",
+    "pack_parts",
     "padded_limits",
 ]
 
@@ -244,3 +245,15 @@ class DashboardState:
     @property
     def regime_ids(self) -> list[int]:
         return [r.id for r in self.model.regimes] if self.model is not None else []
+
+
+def pack_parts(parts: list[str], width: int, sep: str = " │ ") -> str:
+    """``parts`` joined by ``sep`` on lines of at most ``width`` characters, breaking only
+    between parts (a part wider than a line gets a line of its own)."""
+    lines: list[str] = []
+    for part in parts:
+        if lines and len(lines[-1]) + len(sep) + len(part) <= width:
+            lines[-1] += sep + part
+        else:
+            lines.append(part)
+    return "\n".join(lines)
