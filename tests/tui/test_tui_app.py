@@ -18,6 +18,7 @@ from textual.widgets import ContentSwitcher, Input, Static
 from conftest import demo_app, endless_refit, make_dataset, make_labels, make_model, refit_to, sync
 from modemap.app.tui.app import DashboardApp
 from modemap.app.tui.screens.refit import RefitScreen
+from modemap.app.tui.screens.save import SaveScreen
 from modemap.app.tui.widgets.tables import plain_equations
 from modemap.model.hybrid import Guard
 
@@ -126,7 +127,12 @@ async def test_timeline_cursor_zoom_pan_and_runs():
 @sync
 async def test_refit_with_other_k_then_keep_and_save():
     saved = []
-    app = demo_app(3, refit=refit_to(4), save=lambda m, lab: saved.append((m, lab)) or "model.json")
+    app = demo_app(
+        3,
+        refit=refit_to(4),
+        out="results",
+        save=lambda folder, m, lab, ds: saved.append((m, lab)) or "model.json",
+    )
     async with app.run_test(size=SIZE) as pilot:
         await pilot.press("r")
         screen = app.screen
@@ -148,7 +154,12 @@ async def test_refit_with_other_k_then_keep_and_save():
         assert "(unsaved)" in text_of(app, "#tabs")
         await pilot.press("q")  # unsaved: the first q only warns
         assert app.is_running
-        await pilot.press("s")
+        await pilot.press("s")  # the session's folder is proposed; enter saves
+        await pilot.pause()
+        assert isinstance(app.screen, SaveScreen)
+        assert app.screen.query_one("#save-folder", Input).value == "results"
+        await pilot.press("enter")
+        await pilot.pause()
         assert len(saved) == 1 and saved[0][0].n_regimes == 4
         assert not app.unsaved
 
@@ -291,7 +302,7 @@ async def test_replay_overlays_simulation_and_reports_failure():
         strip = app.query_one("#rp-strip")
         assert strip.render_line(1).text.strip().startswith("model│")
         plot = app.query_one("#rp-plots").query(".trace").first()
-        assert len(plot.spec.series) == 2 and plot.spec.series[1].dashed
+        assert len(plot.spec.series) == 2 and plot.spec.series[1].glyph == "•"
         await pilot.press("v")
         assert app.query_one("#rp-table").display
         assert "0.052" in plain(app.query_one("#rp-figures", Static).content)
@@ -405,23 +416,94 @@ async def test_timeline_draws_the_inputs_too():
 
 
 @sync
-async def test_results_folder_never_gets_a_model_of_other_data():
-    # a session on folder A that opens other data, refits and keeps: saving into A would put
-    # the new model beside A's report and labels, so it is refused with what to do instead
+async def test_save_after_opening_other_data_proposes_a_new_folder(tmp_path):
+    # a session on folder A that opens other data, refits and keeps: folder A holds the
+    # results of the first data, so saving proposes a new folder; A is left as it was
+    results = tmp_path / "A"
+    results.mkdir()
+    (results / "model.json").write_text("{}")
     ds = make_dataset()
     saved = []
     app = demo_app(
         3,
         load=lambda path, **_: ds,
         refit=refit_to(2),
-        save=lambda m, lab: saved.append(m) or "model.json",
+        out=results,
+        save=lambda folder, m, lab, data: saved.append((folder, m, data)) or str(folder),
     )
     async with app.run_test(size=SIZE) as pilot:
         await _open_data(app, pilot, "other.csv")
         await _refit_and_keep(app, pilot)
         await pilot.press("s")
         await pilot.pause()
+        assert isinstance(app.screen, SaveScreen)
+        proposed = app.screen.query_one("#save-folder", Input).value
+        assert proposed == str(tmp_path / "A-other")
+        assert "Other data were opened" in text_of(app, "#save-why")
+        await pilot.press("enter")
+        await pilot.pause()
+        ((folder, model, data),) = saved
+        assert folder == tmp_path / "A-other" and data is ds and model.n_regimes == 2
+        assert model.metadata["data"]["files"] == ["other.csv"]  # how to reopen the data
+        assert not app.unsaved and app.out == tmp_path / "A-other"
+    assert (results / "model.json").read_text() == "{}"
+
+
+@sync
+async def test_save_asks_before_replacing_results(tmp_path):
+    (tmp_path / "report.md").write_text("old")
+    saved = []
+    app = demo_app(
+        3, refit=refit_to(2), out=tmp_path, save=lambda f, m, lab, d: saved.append(f) or str(f)
+    )
+    async with app.run_test(size=SIZE) as pilot:
+        await _refit_and_keep(app, pilot)
+        await pilot.press("s")
+        await pilot.pause()
+        await pilot.press("enter")  # the folder holds results: asked, not saved yet
+        await pilot.pause()
+        assert saved == [] and "holds results" in text_of(app, "#save-status")
+        await pilot.press("escape")  # keep them
+        await pilot.pause()
         assert saved == [] and app.unsaved
-        await pilot.press("q")  # the warning says this session cannot save it
-        assert app.is_running
-        await pilot.press("q")
+        await pilot.press("s")
+        await pilot.pause()
+        await pilot.press("enter", "enter")  # asked, then confirmed
+        await pilot.pause()
+        assert saved == [tmp_path] and not app.unsaved
+
+
+@sync
+async def test_a_model_is_saved_only_with_the_data_it_was_fitted_on():
+    ds = make_dataset()
+    saved = []
+    app = demo_app(
+        3,
+        load=lambda path, **_: ds,
+        refit=refit_to(2),
+        save=lambda f, m, lab, d: saved.append(f) or str(f),
+    )
+    async with app.run_test(size=SIZE) as pilot:
+        await _refit_and_keep(app, pilot)  # fitted on the first data, then other data opened
+        await _open_data(app, pilot, "other.csv")
+        await pilot.press("s")
+        await pilot.pause()
+        assert not isinstance(app.screen, SaveScreen) and saved == []
+
+
+def test_damaged_labels_file_is_a_note_not_a_crash(tmp_path):
+    from modemap.app.tui.app import load_view_inputs
+    from modemap.model.modelfile import save_model
+
+    ds = make_dataset()
+    save_model(make_model(2, ds, make_labels(ds, 2)), tmp_path / "model.json")
+    for content, fragment in (
+        (b"", "not read"),
+        (b"garbage\x00\x01,\n", "no column 'run'"),
+        (b"run,time,regime\nr1,0,7\n", "row 2 holds regime '7'"),
+        (b"run,time,regime\nr1,abc,0\n", "row 2 has no numeric time"),
+    ):
+        (tmp_path / "labels.csv").write_bytes(content)
+        model, _, labels, notes = load_view_inputs(tmp_path)
+        assert labels is None and model.n_regimes == 2
+        assert any(fragment in n for n in notes), notes

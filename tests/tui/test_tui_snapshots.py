@@ -20,9 +20,13 @@ async def _settle(pilot) -> None:
     await pilot.pause()
 
 
+@pytest.mark.parametrize("colour", [True, False], ids=["colour", "no-colour"])
 @pytest.mark.parametrize("size", [(80, 24), (160, 48)], ids=["80x24", "160x48"])
 @pytest.mark.parametrize("panel", list(PANELS))
-def test_panel(snap_compare, panel, size):
+def test_panel(snap_compare, monkeypatch, panel, size, colour):
+    if not colour:  # NO_COLOR (no-color.org): the dashboard must still tell things apart
+        monkeypatch.setenv("NO_COLOR", "1")
+
     async def before(pilot):
         await pilot.press(PANELS[panel])
         if panel == "timeline":  # zoom once and move the cursor, to show the read-out
@@ -50,3 +54,16 @@ def test_refit_comparison(snap_compare):
 
 def test_six_regimes_phase(snap_compare):
     assert snap_compare(demo_app(6), press=["5"], terminal_size=(80, 24))
+
+
+def test_save_asks_where(snap_compare, tmp_path):
+    async def before(pilot):
+        await pilot.press("r")
+        pilot.app.screen.query_one("#opt-k", Input).focus()
+        await pilot.press("enter")
+        await _settle(pilot)
+        await pilot.press("k", "s")
+        await _settle(pilot)
+
+    app = demo_app(3, out="results-of-the-cart", save=lambda *a: "")
+    assert snap_compare(app, terminal_size=(80, 24), run_before=before)

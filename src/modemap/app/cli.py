@@ -659,7 +659,7 @@ def _run_view(args: argparse.Namespace) -> int:
         raise ModemapError(
             f"{missing[0]}: not found (give a folder written by 'modemap fit' or data files)"
         )
-    run_view_data(load_dataset(args), out=args.out)
+    run_view_data(load_dataset(args), out=args.out, read_record=_data_record(args))
     return 0
 
 

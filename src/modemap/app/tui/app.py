@@ -14,6 +14,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any, ClassVar
 
+import numpy as np
 import pandas as pd
 from rich.text import Text
 from textual.app import App, ComposeResult
@@ -27,6 +28,7 @@ from modemap.app.tui.screens.phase import PhasePanel
 from modemap.app.tui.screens.refit import RefitResult, RefitScreen
 from modemap.app.tui.screens.regimes import RegimesPanel
 from modemap.app.tui.screens.replay import ReplayPanel
+from modemap.app.tui.screens.save import SaveScreen
 from modemap.app.tui.screens.switching import SwitchingPanel
 from modemap.app.tui.screens.timeline import TimelinePanel
 from modemap.app.tui.widgets.data import DashboardState
@@ -39,6 +41,7 @@ __all__ = [
     "default_format_equations",
     "default_load",
     "default_refit",
+    "default_save",
     "default_simulate",
     "load_view_inputs",
     "run_view",
@@ -73,6 +76,33 @@ def default_simulate(model: HybridModel, time, x0, inputs, regime0: int | None):
     from modemap.simulation.simulator import simulate
 
     return simulate(model, time, x0, inputs, regime0)
+
+
+def default_save(
+    folder: Path, model: HybridModel, labels: pd.DataFrame, dataset: Dataset | None
+) -> str:
+    """Write ``model.json``, ``labels.csv`` and ``report.md`` into ``folder`` as ``modemap fit``
+    does (:func:`modemap.report.output.write_fit_outputs`: as one set, never over a file the
+    data were read from); returns the files written, in words."""
+    from modemap.report.output import write_fit_outputs
+
+    read = _dataset_files(dataset)
+    paths = write_fit_outputs(folder, model, labels, dataset=dataset, read=read)
+    return ", ".join(str(p) for p in paths)
+
+
+def holds_results(folder: Path) -> bool:
+    """Whether ``folder`` holds results that a save would replace."""
+    from modemap.report.output import RESULT_FILES
+
+    return any((Path(folder) / name).exists() for name in RESULT_FILES)
+
+
+def _dataset_files(dataset: Dataset | None) -> list[str]:
+    """The files a dataset was read from (its ``source``, names joined by ", ")."""
+    if dataset is None or not dataset.source or dataset.source.startswith("<"):
+        return []
+    return [p for p in dataset.source.split(", ") if Path(p).exists()]
 
 
 def default_load(
@@ -128,7 +158,15 @@ class DashboardApp(App[None]):
         ``n_regimes``, ``threshold``, ``degree``, ``form``.  ``progress`` raises
         :class:`modemap.FitCancelled` once the user cancels.
     save : callable, optional
-        ``save(model, labels) -> str`` writes both and returns what it wrote.
+        ``save(folder, model, labels, dataset) -> str`` writes the result set and returns
+        what it wrote (default :func:`default_save`).
+    out : path-like, optional
+        The session's results folder (``modemap view DIR``, or ``--out``).  Saving asks
+        before replacing results there, and proposes a new folder once other data were
+        opened or when there is no results folder.
+    read_record : dict, optional
+        How ``dataset`` was read (``files, time, states, inputs, run``), kept in a saved
+        model file so that ``modemap view`` can reopen the data.
     simulate : callable, optional
         ``simulate(model, time, x0, inputs, regime0)`` returning an object with
         ``time, states, regimes, status, message``.
@@ -162,7 +200,9 @@ class DashboardApp(App[None]):
         labels: pd.DataFrame | None,
         *,
         refit: Callable[..., RefitResult] | None = None,
-        save: Callable[[HybridModel, pd.DataFrame | None], str] | None = None,
+        save: Callable[..., str] | None = None,
+        out: str | os.PathLike[str] | None = None,
+        read_record: dict | None = None,
         simulate: Callable[..., Any] | None = None,
         load: Callable[..., Dataset] | None = None,
         formatter: Callable[..., list[str]] | None = None,
@@ -172,24 +212,23 @@ class DashboardApp(App[None]):
         self.notes = list(notes)
         self.state = DashboardState(model, dataset, labels)
         self.refit = refit or default_refit
-        self.save = save
+        self.save = save or default_save
+        self.out = Path(out) if out is not None else None
+        self.read_record = read_record
         self.simulate = simulate or default_simulate
         self.load = load or default_load
         self.formatter = formatter or default_format_equations
         self.current = "timeline"
         self.unsaved = False
         self._quit_asked = False
-        # the output folder holds results of the data the session started with; once other
-        # data are opened, saving there would put a new model beside the old data's report
+        # the results folder holds results of the data the session started with; once other
+        # data are opened, saving proposes a new folder
         self._other_data = False
+        # the data the model on show was fitted on: a model is only saved with them
+        self._fitted_on = dataset if model is not None else None
 
     def _save_hint(self) -> str:
         """How the kept model can be saved in this session, in words."""
-        if self.save is None or self._other_data:
-            return (
-                "this session cannot save it (start 'modemap view DATA --out NEW_DIR' to fit "
-                "and save this data)"
-            )
         return "s saves it"
 
     def compose(self) -> ComposeResult:
@@ -272,6 +311,7 @@ class DashboardApp(App[None]):
             return
         model, labels = result
         self.state.set(model, self.state.dataset, labels)
+        self._fitted_on = self.state.dataset
         self.unsaved = True
         self.reload_all()
         hint = self._save_hint()
@@ -281,9 +321,10 @@ class DashboardApp(App[None]):
         if self._on_base_screen():
             self.push_screen(OpenDataScreen(self.load), self._opened)
 
-    def _opened(self, dataset: Dataset | None) -> None:
-        if dataset is None:
+    def _opened(self, opened: tuple[Dataset, dict] | None) -> None:
+        if opened is None:
             return
+        dataset, self.read_record = opened
         model = self.state.model
         if model is not None and list(model.states) != list(dataset.state_names):
             model = None
@@ -298,25 +339,50 @@ class DashboardApp(App[None]):
     def action_save(self) -> None:
         if not self._on_base_screen():
             return
-        if self.state.model is None:
+        st = self.state
+        if st.model is None:
             self.notify("Nothing to save: no model yet.", severity="warning")
             return
-        if self.save is None:
-            self.notify("Saving is not set up: start with an output folder.", severity="warning")
+        if not self.unsaved:
+            where = f" in {self.out}" if self.out is not None else ""
+            self.notify(f"Nothing new to save: the model shown is the one saved{where}.")
             return
-        if self._other_data:
+        if st.dataset is None or st.labels is None or st.dataset is not self._fitted_on:
             self.notify(
-                "Not saved: the output folder holds the results of the data this session "
-                "started with, and other data were opened since. Start 'modemap view DATA "
-                "--out NEW_DIR' to fit and save this data.",
+                "Not saved: the model shown was not fitted on the data shown; press r to fit "
+                "these data first.",
                 severity="warning",
             )
             return
+        self.push_screen(SaveScreen(*self._proposed_folder(), holds_results), self._save_to)
+
+    def _proposed_folder(self) -> tuple[str, str]:
+        """The folder offered for saving, and why that one."""
+        if self.out is not None and not self._other_data:
+            return str(self.out), f"The results folder of this session: {self.out}"
+        files = (self.read_record or {}).get("files") or _dataset_files(self.state.dataset)
+        stem = Path(files[0]).stem if files else "model"
+        if self.out is None:
+            return f"{stem}-results", "This session has no results folder yet: choose one."
+        why = (
+            f"Other data were opened since this session started: {self.out} holds the "
+            "results of the earlier data, so a new folder is proposed."
+        )
+        return str(self.out.parent / f"{self.out.name}-{stem}"), why
+
+    def _save_to(self, folder: Path | None) -> None:
+        if folder is None:
+            self.notify("Not saved.")
+            return
+        st = self.state
+        if self.read_record is not None:
+            st.model.metadata["data"] = dict(self.read_record)
         try:
-            written = self.save(self.state.model, self.state.labels)
+            written = self.save(folder, st.model, st.labels, st.dataset)
         except Exception as exc:  # report and keep the session alive
             self.notify(f"Save failed: {exc}", severity="error", markup=False)
             return
+        self.out, self._other_data = Path(folder), False
         self.unsaved = False
         self._quit_asked = False
         self.refresh_tabs()
@@ -353,6 +419,39 @@ def _source_spec(model: HybridModel, directory: Path) -> tuple[list[str], dict[s
     return paths, opts
 
 
+def _read_labels(path: Path, model: HybridModel, notes: list[str]) -> pd.DataFrame | None:
+    """``labels.csv`` when it is a table of ``run, time, regime`` with the model's regime ids;
+    otherwise None and a note saying what is wrong (the dashboard shows the model without
+    the regimes per sample rather than failing)."""
+    if not path.exists():
+        notes.append(f"{path}: not found, regimes per sample are not shown")
+        return None
+    try:
+        labels = pd.read_csv(path, dtype={"run": str})
+    except (ValueError, OSError, UnicodeDecodeError, pd.errors.ParserError) as exc:
+        notes.append(f"{path}: not read ({' '.join(str(exc).split())}); regimes not shown")
+        return None
+    missing = [c for c in ("run", "time", "regime") if c not in labels.columns]
+    problem = f"no column {missing[0]!r}" if missing else ""
+    if not problem:
+        regime = pd.to_numeric(labels["regime"], errors="coerce")
+        time = pd.to_numeric(labels["time"], errors="coerce")
+        ids = {r.id for r in model.regimes}
+        bad = ~regime.isin(ids) | time.isna()
+        if bad.any():
+            row = int(np.flatnonzero(bad.to_numpy())[0])
+            problem = (
+                f"row {row + 2} holds regime '{labels['regime'].iloc[row]}', not a regime "
+                "of the model"
+                if not time.isna().iloc[row]
+                else f"row {row + 2} has no numeric time"
+            )
+    if problem:
+        notes.append(f"{path}: {problem}; regimes per sample are not shown")
+        return None
+    return labels
+
+
 def load_view_inputs(
     directory: str | os.PathLike[str],
 ) -> tuple[HybridModel, Dataset | None, pd.DataFrame | None, list[str]]:
@@ -369,9 +468,7 @@ def load_view_inputs(
     model = load_model(folder / "model.json")
     notes: list[str] = []
     labels_path = folder / "labels.csv"
-    labels = pd.read_csv(labels_path, dtype={"run": str}) if labels_path.exists() else None
-    if labels is None:
-        notes.append(f"{labels_path}: not found, regimes per sample are not shown")
+    labels = _read_labels(labels_path, model, notes)
     spec = _source_spec(model, folder)
     dataset = None
     if spec is None:
@@ -385,39 +482,19 @@ def load_view_inputs(
     return model, dataset, labels, notes
 
 
-def _directory_saver(
-    directory: Path, dataset: Dataset | None = None
-) -> Callable[[HybridModel, pd.DataFrame | None], str]:
-    """Save as ``modemap fit`` does: model.json, labels.csv and report.md, atomically."""
-
-    def save(model: HybridModel, labels: pd.DataFrame | None) -> str:
-        if labels is None:
-            from modemap.model.modelfile import save_model
-
-            save_model(model, directory / "model.json")
-            return str(directory / "model.json")
-        from modemap.report.output import write_fit_outputs
-
-        paths = write_fit_outputs(directory, model, labels, dataset=dataset)
-        return ", ".join(str(p) for p in paths)
-
-    return save
-
-
 def run_view(
     directory: str | os.PathLike[str],
     *,
-    save: Callable[[HybridModel, pd.DataFrame | None], str] | None = None,
+    save: Callable[..., str] | None = None,
 ) -> int:
     """``modemap view DIR``: show the model saved in ``DIR`` with its labels and data.
 
-    ``save`` defaults to writing ``DIR/model.json``, ``DIR/labels.csv`` and
-    ``DIR/report.md`` with the writer ``modemap fit`` uses.  Returns the exit code (0).
+    ``save`` defaults to :func:`default_save` (the writer ``modemap fit`` uses); saving
+    asks before replacing the results in ``DIR``.  Returns the exit code (0).
     """
     folder = Path(directory)
     model, dataset, labels, notes = load_view_inputs(folder)
-    saver = save or _directory_saver(folder, dataset)
-    DashboardApp(model, dataset, labels, save=saver, notes=notes).run()
+    DashboardApp(model, dataset, labels, save=save, out=folder, notes=notes).run()
     return 0
 
 
@@ -429,14 +506,17 @@ def run_view_data(
     inputs: Sequence[str] = (),
     run: str | None = None,
     out: str | os.PathLike[str] | None = None,
-    save: Callable[[HybridModel, pd.DataFrame | None], str] | None = None,
+    save: Callable[..., str] | None = None,
+    read_record: dict | None = None,
 ) -> int:
     """``modemap view DATA --time ... --states ...``: open data alone and fit from inside.
 
     ``source`` is a :class:`Dataset` already read, or file name(s) read here with
     ``time``, ``states``, ``inputs`` and ``run``.  A model kept after fitting is
-    saved to ``out`` (``model.json``, ``labels.csv``, ``report.md``) when ``out`` or ``save``
-    is given.  Returns the exit code (0).
+    saved to ``out`` (``model.json``, ``labels.csv``, ``report.md``), or to a folder the
+    dashboard asks for when ``out`` is None.  ``read_record`` says how the data were read
+    (as ``modemap fit`` records it), so that a saved folder can be reopened.  Returns the
+    exit code (0).
     """
     if isinstance(source, Dataset):
         dataset = source
@@ -448,6 +528,13 @@ def run_view_data(
 
             raise DataError("--time and --states are needed to open data", source=str(source))
         dataset = read_data(source, time=time, states=list(states), inputs=list(inputs), run=run)
-    saver = save or (_directory_saver(Path(out), dataset) if out is not None else None)
-    DashboardApp(None, dataset, None, save=saver).run()
+        files = [source] if isinstance(source, (str, os.PathLike)) else list(source)
+        read_record = read_record or {
+            "files": [os.path.abspath(p) for p in files],
+            "time": time,
+            "states": list(states),
+            "inputs": list(inputs),
+            "run": run,
+        }
+    DashboardApp(None, dataset, None, save=save, out=out, read_record=read_record).run()
     return 0

@@ -20,7 +20,7 @@ HELP_KEYS: list[tuple[str, list[tuple[str, str]]]] = [
             ("1 … 5", "Timeline, Regimes, Switching, Replay, Phase"),
             ("r", "refit with other settings (K, threshold, degree, form)"),
             ("o", "open a data file"),
-            ("s", "save the model and labels"),
+            ("s", "save the model, labels and report (asks where; asks before replacing)"),
             ("?", "this help"),
             ("q", "quit"),
         ],

@@ -29,8 +29,12 @@ def _names(text: str) -> list[str]:
     return [n.strip() for n in text.split(",") if n.strip()]
 
 
-class OpenDataScreen(ModalScreen[Dataset | None]):
-    """Read a CSV/Parquet file through the library's reader."""
+class OpenDataScreen(ModalScreen[tuple[Dataset, dict] | None]):
+    """Read a CSV/Parquet file through the library's reader.
+
+    Dismisses with the dataset and how it was read (``files, time, states, inputs, run``,
+    the record ``modemap fit`` keeps in the model file), or None.
+    """
 
     BINDINGS: ClassVar[list[BindingType]] = [Binding("escape", "dismiss", "close")]
 
@@ -73,4 +77,5 @@ class OpenDataScreen(ModalScreen[Dataset | None]):
                 self.query_one("#open-status", Static).update, Text(f"✗ {exc}")
             )
             return
-        self.app.call_from_thread(self.dismiss, ds)
+        record = {"files": [path], "time": time, "states": states, "inputs": inputs, "run": run}
+        self.app.call_from_thread(self.dismiss, (ds, record))
