@@ -428,3 +428,35 @@ def test_new_parameters_are_checked() -> None:
     for bad in ({"memory_lag": 0}, {"memory_lag": "long"}, {"alpha": 0.0}, {"n_folds": 1}):
         with pytest.raises(ParameterError):
             SwitchingSurfaces(**bad).fit(Z, labels, [50], ["x"])
+
+
+def test_bootstrap_threshold_error_matches_the_logit_delta_method() -> None:
+    # Labels drawn independently with P(switch side) = logistic((x - 0.5) / 0.05): far from
+    # separation, so the textbook delta-method standard error of the threshold -b/w from
+    # statsmodels' Logit covariance is valid; the block bootstrap must agree with it.
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(11)
+    x = rng.uniform(0.0, 1.0, 3000)
+    labels = (rng.uniform(size=x.size) < 1 / (1 + np.exp(-(x - 0.5) / 0.05))).astype(np.int64)
+    fit = SwitchingSurfaces(kind="memoryless", n_boot=200, holdout=0.0).fit(
+        x[:, None], labels, [x.size], ["x"]
+    )
+    rec = fit.stderr_["0->1"]
+    res = sm.Logit(labels, sm.add_constant(x)).fit(disp=0)
+    b, w = res.params
+    grad = np.array([-1 / w, b / w**2])  # d(-b/w)/d(b, w)
+    se_ref = float(np.sqrt(grad @ res.cov_params() @ grad))
+    assert rec["numbers"][0] == pytest.approx(-b / w, abs=2 * se_ref)
+    assert rec["stderr"][0] == pytest.approx(se_ref, rel=0.3)
+    assert rec["replicates"] == 200
+
+
+def test_bootstrap_leaves_the_guards_as_fitted(thermostat_data) -> None:
+    Z, labels, lengths = thermostat_data
+    a = SwitchingSurfaces(n_boot=0).fit(Z, labels, lengths, ["T"])
+    b = SwitchingSurfaces(n_boot=20).fit(Z, labels, lengths, ["T"])
+    assert a.stderr_ == {} and set(b.stderr_) == {f"{g.source}->{g.target}" for g in b.guards_}
+    for ga, gb in zip(a.guards_, b.guards_, strict=True):
+        assert ga.text == gb.text and np.array_equal(ga.weights, gb.weights)
+        assert ga.offset == gb.offset

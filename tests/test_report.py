@@ -423,3 +423,15 @@ def test_oblique_hysteresis_band_is_stated() -> None:
     # surfaces that do not face each other get no width
     model.guards[1] = Guard(1, 0, ["T", "P"], np.array([-1.0, 1.0]), 0.0, "P > T")
     assert "compare the two conditions above" in render_report(model)
+
+
+def test_guard_numbers_carry_their_standard_errors() -> None:
+    model = two_regime_model()
+    model.metadata["guard_stderr"] = {
+        "0->1": {"numbers": [5.5], "stderr": [0.012], "replicates": 40},
+    }
+    text = render_report(model)
+    assert "| 0 | 1 | T > 5.5 degC | threshold ± 0.012 degC |" in text
+    assert "| 1 | 0 | T < 4.5 degC | – |" in text  # not computed: said so
+    assert "40 block-bootstrap resamples" in text
+    assert "guard_stderr" not in text  # shown in the table, not in the metadata dump

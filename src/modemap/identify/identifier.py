@@ -303,6 +303,7 @@ class HybridIdentifier(BaseEstimator):
             # significant (read by the report's switching section)
             "guard_evidence": dict(surfaces.family_evidence_),
             "guard_significance": dict(surfaces.significance_),
+            "guard_stderr": dict(surfaces.stderr_),
         }
         ranges = ds.ranges()
         return HybridModel(

@@ -77,6 +77,7 @@ from sklearn.base import BaseEstimator
 
 from modemap._exceptions import FitError
 from modemap._params import Interval, Options, check_params
+from modemap.model.guard_spread import block_indices, printed_numbers, spread
 from modemap.model.hybrid import Guard
 from modemap.model.hysteresis import hysteresis_evidence, position_in_run
 from modemap.model.logistic import LogisticFit, fit_logistic
@@ -398,6 +399,9 @@ class SwitchingSurfaces(BaseEstimator):
         simplification of guards.
     simplify_tol : float, default 0.02
         Largest loss of balanced accuracy accepted for a one-variable guard.
+    n_boot : int, default 40
+        Block-bootstrap refits behind the standard errors of the printed guard numbers
+        (:mod:`modemap.model.guard_spread`); 0 skips them.
     seed : int, default 0
 
     Attributes
@@ -411,6 +415,11 @@ class SwitchingSurfaces(BaseEstimator):
     significance_ : dict
         ``"i->j"`` -> ``{"kept": {term: wald ratio}, "dropped": {term: wald ratio}}``
         for every guard (ratios on the standardised term columns).
+    stderr_ : dict
+        ``"i->j"`` -> ``{"numbers": [...], "stderr": [...], "replicates": n}``: the
+        printed numbers of the guard (a threshold; or the unit-normal weights of its terms
+        then the offset) and their block-bootstrap standard errors; guards with too few
+        usable replicates are left out.
     variables_ : list of str
     """
 
@@ -424,6 +433,7 @@ class SwitchingSurfaces(BaseEstimator):
         "n_folds": [Interval(int, 2, None)],
         "holdout": [Interval(float, 0, 1, closed="left")],
         "simplify_tol": [Interval(float, 0, None)],
+        "n_boot": [Interval(int, 0, None)],
         "seed": [Interval(int, 0, 2**32 - 1)],
     }
 
@@ -439,6 +449,7 @@ class SwitchingSurfaces(BaseEstimator):
         n_folds: int = 5,
         holdout: float = 0.25,
         simplify_tol: float = 0.02,
+        n_boot: int = 40,
         seed: int = 0,
     ) -> None:
         self.kind = kind
@@ -450,6 +461,7 @@ class SwitchingSurfaces(BaseEstimator):
         self.n_folds = n_folds
         self.holdout = holdout
         self.simplify_tol = simplify_tol
+        self.n_boot = n_boot
         self.seed = seed
 
     # public ------------------------------------------------------------------------------------
@@ -481,17 +493,9 @@ class SwitchingSurfaces(BaseEstimator):
         """
         Z, labels, lengths = self._validate(Z, labels, lengths, variables)
         self._vars = list(variables)
-        self._Z = Z
         self._units = dict(units or {})
         self._spans = {v: float(np.ptp(Z[:, i])) for i, v in enumerate(self._vars)}
-        prev, cur = _pairs(labels, lengths)
-        k = int(labels.max()) + 1 if labels.size else 0
-        self._transitions = np.zeros((max(k, 1), max(k, 1)), dtype=bool)
-        moved = labels[prev] != labels[cur]
-        self._transitions[labels[prev][moved], labels[cur][moved]] = True
-        self._prev = np.full(labels.size, -2, dtype=np.int64)
-        self._prev[cur] = labels[prev]
-        self._ok2 = position_in_run(lengths) >= 2
+        self._prepare(Z, labels, lengths)
 
         evidence = self._evidence(Z, labels, lengths)
         if self.kind == "auto":
@@ -504,6 +508,7 @@ class SwitchingSurfaces(BaseEstimator):
         # one-variable simplification judged on the held-out tails, then all samples
         train, test = _split_runs(lengths, self.holdout)
         self._choice_map: dict = {}
+        self._fixed_terms: dict[tuple[int, int], set[str]] = {}
         self._significance: dict[tuple[int, int], dict] = {}
         if test.any():
             self._fit_kind(chosen, Z, labels, lengths, train, test)
@@ -523,8 +528,67 @@ class SwitchingSurfaces(BaseEstimator):
             if (g.source, g.target) in self._significance
         }
         self.variables_ = list(self._vars)
+        self.stderr_ = self._bootstrap(chosen, Z, labels, lengths)
         del self._Z, self._ok2
         return self
+
+    def _prepare(self, Z: np.ndarray, labels: np.ndarray, lengths: Sequence[int]) -> None:
+        """The working values every surface fit reads: the rows, the previous regime of
+        each sample, which switches were seen, and which samples have two predecessors."""
+        self._Z = Z
+        prev, cur = _pairs(labels, lengths)
+        k = int(labels.max()) + 1 if labels.size else 0
+        self._transitions = np.zeros((max(k, 1), max(k, 1)), dtype=bool)
+        moved = labels[prev] != labels[cur]
+        self._transitions[labels[prev][moved], labels[cur][moved]] = True
+        self._prev = np.full(labels.size, -2, dtype=np.int64)
+        self._prev[cur] = labels[prev]
+        self._ok2 = position_in_run(lengths) >= 2
+
+    def _bootstrap(self, kind: str, Z, labels, lengths) -> dict[str, dict]:
+        """Block-bootstrap standard errors of the printed guard numbers (``stderr_``)."""
+        if self.n_boot == 0 or not self.guards_:
+            return {}
+        blocks = block_indices(labels, lengths)
+        rng = np.random.default_rng(self.seed)
+        choices = dict(self._choice_map)  # the structure of every guard, held fixed
+        self._fixed_terms = {
+            (g.source, g.target): {t for t, w in zip(g.terms, g.weights, strict=True) if w}
+            for g in self.guards_
+        }
+        for i, j in list(self._fixed_terms):  # memoryless pairs: one surface both ways
+            self._fixed_terms.setdefault((j, i), self._fixed_terms[(i, j)])
+        kept = self._significance
+        one = {
+            (g.source, g.target): np.count_nonzero(g.weights) == 1
+            and g.terms[int(np.flatnonzero(g.weights)[0])] in self._spans
+            for g in self.guards_
+        }
+        reps: dict[tuple[int, int], list[np.ndarray]] = {k: [] for k in one}
+        final = {(g.source, g.target): g for g in self.guards_}
+        for _ in range(int(self.n_boot)):
+            picks = rng.integers(0, len(blocks), len(blocks))
+            idx = np.concatenate([blocks[i] for i in picks])
+            lens = [blocks[i].size for i in picks]
+            self._prepare(Z[idx], labels[idx], lens)
+            ones = np.ones(idx.size, dtype=bool)
+            for g in self._fit_kind(kind, Z[idx], labels[idx], lens, ones, None, choices):
+                key = (g.source, g.target)
+                if key in final:
+                    reps[key].append(printed_numbers(final[key], g, one[key]))
+        self._prepare(Z, labels, lengths)
+        self._significance, self._fixed_terms = kept, {}
+        out = {}
+        for key, g in final.items():
+            se = spread(reps[key])
+            if se is not None:
+                numbers = printed_numbers(g, g, one[key]).tolist()
+                out[f"{key[0]}->{key[1]}"] = {
+                    "numbers": numbers,
+                    "stderr": se,
+                    "replicates": len(reps[key]),
+                }
+        return out
 
     def guard_values(self, z: np.ndarray, current: int) -> dict[int, float]:
         """Values of the guards leaving ``current`` at the raw variables ``z`` (n_vars,)."""
@@ -622,7 +686,7 @@ class SwitchingSurfaces(BaseEstimator):
                     out[(i, j)] = (rows, labels[rows] == j, None)
         return out
 
-    def _surface(self, kind, Z, tr, ytr) -> tuple[_Features, np.ndarray, float, dict] | None:
+    def _surface(self, kind, key, Z, tr, ytr) -> tuple[_Features, np.ndarray, float, dict] | None:
         """Logistic surface on the significant terms: features, standardised weights (zero
         where dropped), intercept and the Wald ratios kept / dropped.
 
@@ -645,7 +709,12 @@ class SwitchingSurfaces(BaseEstimator):
             n_class = np.array([np.sum(weight[y == c]) for c in (0.0, 1.0)])
             weight = weight * n_class.min() / n_class[y.astype(np.int64)]
             C *= n_class.sum() / (2.0 * n_class.min())
-        active, fit, dropped = _prune(X, y, weight, C, float(self.alpha))
+        fixed = self._fixed_terms.get(key)
+        if fixed is None:
+            active, fit, dropped = _prune(X, y, weight, C, float(self.alpha))
+        else:  # the bootstrap refits the terms the guard has
+            active = np.isin(feats.terms, list(fixed))
+            fit, dropped = fit_logistic(X[:, active], y, C=C, sample_weight=weight), {}
         w = np.zeros(X.shape[1])
         w[active] = fit.coef
         record = {
@@ -658,7 +727,7 @@ class SwitchingSurfaces(BaseEstimator):
         return feats, w, fit.intercept, record
 
     def _guards_for(self, kind, key, Z, tr, ytr, ho, yho, choices) -> list[Guard]:
-        surface = self._surface(kind, Z, tr, ytr)
+        surface = self._surface(kind, key, Z, tr, ytr)
         if surface is None:
             return []
         feats, w_std, b_std, record = surface

@@ -45,7 +45,7 @@ _KIND_TEXT = {
 
 
 #: Metadata the switching section shows, not repeated in the run details.
-_SHOWN_IN_SWITCHING = ("guard_evidence", "guard_significance")
+_SHOWN_IN_SWITCHING = ("guard_evidence", "guard_significance", "guard_stderr")
 
 
 def render_report(model: HybridModel, *, dataset_summary: dict | None = None) -> str:
@@ -437,6 +437,23 @@ def _guard_text(model: HybridModel, g: Guard) -> str:
     return " + ".join([*parts, _num(g.offset)]) + " > 0"
 
 
+def _guard_stderr_text(model: HybridModel, g: Guard, spread: dict) -> str:
+    """The standard errors of a guard's printed numbers, in words; "–" when not computed."""
+    rec = spread.get(f"{g.source}->{g.target}")
+    if not rec:
+        return "–"
+    se = [float(v) for v in rec.get("stderr", [])]
+    nz = [t for t, w in zip(g.terms, g.weights, strict=True) if w != 0]
+    if len(se) == 1 and len(nz) == 1:
+        unit = model.units.get(nz[0], "")
+        unit = f" {unit}" if unit not in ("", "-", "1") else ""
+        return f"threshold ± {_num(se[0])}{unit}"
+    if len(se) != len(nz) + 1:
+        return "–"
+    parts = [f"{t} ± {_num(v)}" for t, v in zip(nz, se[:-1], strict=True)]
+    return ", ".join([*parts, f"right-hand side ± {_num(se[-1])}"])
+
+
 def _switching_section(model: HybridModel) -> str:
     out = ["## Switching"]
     if model.n_regimes < 2:
@@ -447,12 +464,26 @@ def _switching_section(model: HybridModel) -> str:
     if why:
         out.append(why)
     if model.guards:
-        rows = [[g.source, g.target, _guard_text(model, g)] for g in model.guards]
+        spread = (model.metadata or {}).get("guard_stderr") or {}
+        rows = [
+            [g.source, g.target, _guard_text(model, g), _guard_stderr_text(model, g, spread)]
+            for g in model.guards
+        ]
         out.append(
             "The switch happens where the condition holds; when several conditions of "
             "the current regime hold at once, the strongest one wins.\n\n"
-            + _table(["from", "to", "condition"], rows)
+            + _table(["from", "to", "condition", "standard error"], rows)
         )
+        if spread:
+            n = max(int(v.get("replicates", 0)) for v in spread.values())
+            out.append(
+                "Standard errors of the printed numbers (the threshold; or the coefficients "
+                "of the unit normal and the right-hand side) come from refitting the guards "
+                f"on {n} block-bootstrap resamples of the labelled runs, with each guard's "
+                "terms held fixed: they describe how far the surface moves with other data "
+                "of the same kind, not the error of the labels or of the sampling step "
+                "(a switch is seen at the first sample after it)."
+            )
     else:
         out.append("No switching surface was learnt.")
     out += _guard_terms_text(model)
