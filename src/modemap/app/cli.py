@@ -55,15 +55,8 @@ _DELIMITER_WORDS = {",": ",", ";": ";", "|": "|", "tab": "\t", "\t": "\t", "\\t"
 
 
 def _delimiter(text: str) -> str:
-    if text in _DELIMITER_WORDS:
-        return _DELIMITER_WORDS[text]
-    raise argparse.ArgumentTypeError(f"expected one of , ; | tab, got {text!r}")
-
-
-def _decimal(text: str) -> str:
-    if text in (".", ","):
-        return text
-    raise argparse.ArgumentTypeError(f"expected . or , got {text!r}")
+    """``tab`` (or ``\\t``) as a tab; other values are checked by the reader."""
+    return _DELIMITER_WORDS.get(text, text)
 
 
 def add_reading_options(parser: argparse.ArgumentParser, *, missing: bool = True) -> None:
@@ -78,7 +71,6 @@ def add_reading_options(parser: argparse.ArgumentParser, *, missing: bool = True
     )
     group.add_argument(
         "--decimal",
-        type=_decimal,
         default=".",
         metavar="C",
         help="decimal mark: . or , (default .)",
@@ -91,10 +83,10 @@ def add_reading_options(parser: argparse.ArgumentParser, *, missing: bool = True
     if missing:
         group.add_argument(
             "--missing",
-            choices=("refuse", "drop", "interpolate"),
             default="refuse",
-            help="empty cells: refuse them (default), drop their rows, or interpolate "
-            "linearly in time within a run",
+            metavar="POLICY",
+            help="empty cells: refuse (default), drop (their rows) or interpolate "
+            "(linearly in time within a run)",
         )
 
 
@@ -868,6 +860,9 @@ _OPTION_OF_PARAMETER = {
     "threshold": "--threshold",
     "kind": "--guards",
     "holdout": "--holdout",
+    "delimiter": "--delimiter",
+    "decimal": "--decimal",
+    "missing": "--missing",
 }
 
 

@@ -236,10 +236,10 @@ def _non_numeric(table: Table, series: pd.Series, header: str, pos: int) -> Data
     if len(shown) > 40:
         shown = shown[:37] + "..."
     hint = ""
-    if pos == 0 and table.kind == "csv" and not table.fmt.units_row:
-        hint = " (a units row under the header? see the units-row option)"
-    elif table.kind == "csv" and table.fmt.decimal == "." and _decimal_comma(value):
+    if table.kind == "csv" and table.fmt.decimal == "." and _decimal_comma(value):
         hint = " (a decimal comma? see the decimal and delimiter options)"
+    elif pos == 0 and table.kind == "csv" and not table.fmt.units_row:
+        hint = " (a units row under the header? see the units-row option)"
     return table.error(f"non-numeric value {shown}{hint}", column=header, pos=pos)
 
 
