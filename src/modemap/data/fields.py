@@ -147,23 +147,28 @@ def check_fields(table: Table) -> None:
 
 
 def _check_block(table: Table, data: bytes, first_line: int, expected: int) -> None:
-    codes = np.frombuffer(data, dtype=np.uint8)
-    if not codes.size:
+    """Fields per line of ``data`` (whole lines, the first being ``first_line``)."""
+    if not data:
         return
-    ends = np.flatnonzero(codes == _NEWLINE)
-    if ends.size == 0 or ends[-1] != codes.size - 1:
-        ends = np.append(ends, codes.size)  # last line without a line end
+    nul = data.find(b"\0")
+    if nul >= 0:
+        row = first_line + data.count(b"\n", 0, nul)
+        raise DataError("not a text file (a NUL byte in this row)", source=table.label, row=row)
+    codes = np.frombuffer(data, dtype=np.uint8)
+    tokens = np.flatnonzero((codes == ord(table.fmt.delimiter)) | (codes == _NEWLINE))
+    is_end = codes[tokens] == _NEWLINE
+    ends, line_ends = tokens[is_end], np.flatnonzero(is_end)
+    if ends.size == 0 or ends[-1] != codes.size - 1:  # the last line has no line end
+        ends, line_ends = np.append(ends, codes.size), np.append(line_ends, tokens.size)
+    fields = np.diff(line_ends, prepend=-1)  # delimiters between line ends, plus one
+    bad = fields != expected
+    if not bad.any():
+        return
+    # blank lines (nothing, or a carriage return, between line ends) are allowed
     starts = np.concatenate(([0], ends[:-1] + 1))
     length = ends - starts
-    stripped = length - (length > 0) * (codes[np.maximum(ends - 1, 0)] == _RETURN)
-    delimiter = ord(table.fmt.delimiter)
-    nul = np.flatnonzero(codes == 0)
-    if nul.size:
-        row = first_line + int(np.searchsorted(ends, nul[0]))
-        raise DataError("not a text file (a NUL byte in this row)", source=table.label, row=row)
-    where = np.searchsorted(ends, np.flatnonzero(codes == delimiter))
-    fields = np.bincount(where, minlength=ends.size) + 1
-    bad = (fields != expected) & (stripped > 0)
+    last = codes[np.clip(ends - 1, 0, codes.size - 1)]
+    bad &= length - (length > 0) * (last == _RETURN) > 0
     if bad.any():
         k = int(np.argmax(bad))
         raise fields_error(table, first_line + k, int(fields[k]), expected)
