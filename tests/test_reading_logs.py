@@ -251,3 +251,13 @@ def test_simulate_output_carries_the_original_stamps(tmp_path, capsys) -> None:
     sim = pd.read_csv(out, dtype={"stamp": str})
     assert list(sim["stamp"]) == iso
     np.testing.assert_allclose(sim["time"], 0.5 * np.arange(len(iso)))
+
+
+@pytest.mark.parametrize("resample", [False, True])
+def test_stamps_outside_the_nanosecond_range_are_written_back(tmp_path, resample) -> None:
+    moments = [dt.datetime(9999, 12, 31, 23, 59, k, 500_000) for k in range(20)]
+    path = tmp_path / "late.csv"
+    path.write_text("t,x\n" + "".join(f"{m.isoformat()},{k}\n" for k, m in enumerate(moments)))
+    ds = read_data(path, time="t", states=["x"], resample=resample)
+    # reference: the standard library's ISO 8601 text of the same moments
+    assert list(row_stamps(ds)) == [m.isoformat(timespec="milliseconds") for m in moments]

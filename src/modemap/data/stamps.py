@@ -14,7 +14,8 @@ Zones
     are written in UTC.  A column mixing stamps with and without a zone is refused.
 Resolution
     Stamps are written to the coarsest of seconds, milliseconds, microseconds or
-    nanoseconds that shows every stamp of the column exactly.
+    nanoseconds that shows every stamp of the column exactly (nanoseconds only when the
+    stamps were read with them; they reach the years 1678 to 2262).
 """
 
 from __future__ import annotations
@@ -42,7 +43,7 @@ __all__ = [
 ]
 
 _ZONED = re.compile(r"\d:\d{2}(?::\d{2})?(?:[.,]\d+)?\s*(?:Z|[+-]\d{2}(?::?\d{2})?)$")
-_UNITS = (("s", 10**9), ("ms", 10**6), ("us", 10**3), ("ns", 1))
+_UNITS = ("s", "ms", "us", "ns")
 
 
 @dataclass(frozen=True)
@@ -142,26 +143,36 @@ def _shown(value: Any) -> str:
     return shown if len(shown) <= 40 else shown[:37] + "..."
 
 
+def _unit(values: np.ndarray) -> str:
+    """The unit of a datetime64 array: its own when nanoseconds, else microseconds (which
+    reach every year a stamp can be written with)."""
+    return "ns" if np.datetime_data(values.dtype)[0] == "ns" else "us"
+
+
 def shifted(first: np.datetime64, seconds: np.ndarray) -> np.ndarray:
-    """Stamps ``seconds`` after ``first`` (for samples made by resampling), to the
-    nanosecond."""
-    ns = np.round(np.asarray(seconds, dtype=np.float64) * 1e9).astype(np.int64)
-    return np.datetime64(first, "ns") + ns.astype("timedelta64[ns]")
+    """Stamps ``seconds`` after ``first`` (for samples made by resampling), to the stamps'
+    resolution (nanoseconds or microseconds)."""
+    unit = _unit(np.asarray(first))
+    per_second = 1e9 if unit == "ns" else 1e6
+    ticks = np.round(np.asarray(seconds, dtype=np.float64) * per_second).astype(np.int64)
+    return np.datetime64(first, unit) + ticks.astype(f"timedelta64[{unit}]")
 
 
 def format_stamps(values: np.ndarray, zone: Any = None) -> np.ndarray:
     """ISO 8601 text of ``values`` (see the module notes for zones and resolution);
     empty text where a value is NaT."""
-    values = np.asarray(values).astype("datetime64[ns]")
+    unit = _unit(np.asarray(values))
+    values = np.asarray(values).astype(f"datetime64[{unit}]")
     missing = np.isnat(values)
-    values = np.where(missing, np.datetime64(0, "ns"), values)
-    ns = values.view(np.int64)[~missing]
-    unit = next(u for u, per in _UNITS if not np.any(ns % per))
+    values = np.where(missing, np.datetime64(0, unit), values)
+    ticks = values.view(np.int64)[~missing]
+    finest = _UNITS[: _UNITS.index(unit) + 1]
+    unit = next(u for u in finest if not np.any(ticks % _per(u, unit)))
     if zone is None:
         text = np.datetime_as_string(values, unit=unit)
     else:
         index = pd.DatetimeIndex(values).tz_localize("UTC").tz_convert(zone)
-        wall = index.tz_localize(None).to_numpy().astype("datetime64[ns]")
+        wall = index.tz_localize(None).to_numpy().astype(values.dtype)
         minutes = ((wall - values) // np.timedelta64(1, "m")).astype(np.int64)
         offsets = np.unique(minutes)
         suffix = (
@@ -184,7 +195,7 @@ def row_stamps(ds: Any) -> np.ndarray | None:
         return None
     if ds.resampled or ds.n_rows == 0:
         return format_stamps(np.concatenate([r.stamps for r in ds.runs]), ds.stamp_zone)
-    values = np.full(ds.n_rows, np.datetime64("NaT"), dtype="datetime64[ns]")
+    values = np.full(ds.n_rows, np.datetime64("NaT"), dtype=ds.runs[0].stamps.dtype)
     for r in ds.runs:
         values[r.index] = r.stamps
     return format_stamps(values, ds.stamp_zone)
@@ -199,6 +210,10 @@ def stamps_at(run: Any, times: np.ndarray) -> np.ndarray | None:
     if n <= run.n_samples and np.array_equal(times, run.time[:n]):
         return run.stamps[:n]
     return shifted(run.stamps[0], np.asarray(times) - run.time[0])
+
+
+def _per(coarse: str, fine: str) -> int:
+    return int(np.timedelta64(1, coarse) // np.timedelta64(1, fine))
 
 
 def _offset(minutes: int) -> str:
