@@ -51,6 +51,50 @@ def _positive_gap(text: str) -> float:
     return value
 
 
+_DELIMITER_WORDS = {",": ",", ";": ";", "|": "|", "tab": "\t", "\t": "\t", "\\t": "\t"}
+
+
+def _delimiter(text: str) -> str:
+    """``tab`` (or ``\\t``) as a tab; other values are checked by the reader."""
+    return _DELIMITER_WORDS.get(text, text)
+
+
+def add_reading_options(parser: argparse.ArgumentParser, *, missing: bool = True) -> None:
+    """Add the options that say how a CSV file is laid out, and what to do with gaps."""
+    group = parser.add_argument_group("reading CSV files")
+    group.add_argument(
+        "--delimiter",
+        type=_delimiter,
+        default=",",
+        metavar="C",
+        help="field delimiter: , ; | or tab (default ,)",
+    )
+    group.add_argument(
+        "--decimal",
+        default=".",
+        metavar="C",
+        help="decimal mark: . or , (default .)",
+    )
+    group.add_argument(
+        "--units-row",
+        action="store_true",
+        help="the line under the header holds the units (read as 'name [unit]')",
+    )
+    if missing:
+        group.add_argument(
+            "--missing",
+            default="refuse",
+            metavar="POLICY",
+            help="empty cells: refuse (default), drop (their rows) or interpolate "
+            "(linearly in time within a run)",
+        )
+
+
+def _csv_format(args: argparse.Namespace) -> dict:
+    """The reading options of ``args`` as keyword arguments of ``read_data``."""
+    return {"delimiter": args.delimiter, "decimal": args.decimal, "units_row": args.units_row}
+
+
 def add_data_options(
     parser: argparse.ArgumentParser,
     *,
@@ -83,6 +127,7 @@ def add_data_options(
     group.add_argument(
         "--min-samples", type=int, default=8, metavar="N", help="fewest samples per run (default 8)"
     )
+    add_reading_options(parser)
 
 
 def load_dataset(args: argparse.Namespace) -> Dataset:
@@ -90,7 +135,7 @@ def load_dataset(args: argparse.Namespace) -> Dataset:
     source = args.data[0] if len(args.data) == 1 else list(args.data)
     time, states = args.time, args.states
     if time is None or states is None:
-        columns = peek_columns(source)
+        columns = peek_columns(source, **_csv_format(args))
         label = str(args.data[0])
         time = time if time is not None else _guess_time(columns, label)
         if states is None:
@@ -104,6 +149,8 @@ def load_dataset(args: argparse.Namespace) -> Dataset:
         resample=args.resample,
         max_gap=args.max_gap,
         min_samples=args.min_samples,
+        missing=args.missing,
+        **_csv_format(args),
     )
 
 
@@ -180,6 +227,7 @@ def format_summary(summary: dict) -> str:
         f"runs      {len(summary['runs'])}, {summary['samples']} samples, "
         f"total duration {summary['duration']:.6g}{unit}",
         f"resampled {'yes' if summary['resampled'] else 'no'}",
+        f"missing   {_missing_text(summary.get('missing'))}",
         "",
     ]
     lines += _table(
@@ -210,6 +258,15 @@ def format_summary(summary: dict) -> str:
     lines.append(f"warnings  {len(notes) if notes else 'none'}")
     lines += [f"  {w}" for w in notes]
     return "\n".join(lines)
+
+
+def _missing_text(missing: dict | None) -> str:
+    """``none (policy refuse)`` or ``3 row(s) dropped (empty cells: x: 2, u: 1)``."""
+    from modemap.data.dataset import Missing
+
+    if not missing:
+        return "none"
+    return str(Missing(missing["policy"], missing.get("values", {}), missing.get("rows", 0)))
 
 
 def _table(header: list[str], rows: list[list[str]]) -> list[str]:
@@ -469,6 +526,8 @@ def _data_record(args: argparse.Namespace) -> dict:
         "resample": args.resample,
         "max_gap": args.max_gap,
         "min_samples": args.min_samples,
+        "missing": args.missing,
+        **_csv_format(args),
     }
 
 
@@ -541,6 +600,7 @@ def _add_simulate(subparsers: argparse._SubParsersAction) -> None:
         "--regime", type=int, metavar="ID", help="initial regime (default: classify)"
     )
     parser.add_argument("--out", required=True, metavar="FILE", help="output CSV")
+    add_reading_options(parser)
     _add_debug(parser)
     parser.set_defaults(handler=_run_simulate)
 
@@ -570,11 +630,13 @@ def _run_simulate(args: argparse.Namespace) -> int:
     import pandas as pd
 
     from modemap._atomic import atomic_write
+    from modemap.data.stamps import format_stamps, stamps_at
     from modemap.model.modelfile import load_model
     from modemap.simulation.simulator import simulate
 
     model = load_model(args.model)
-    columns = [h for h, _ in peek_columns(args.data)]
+    peeked = peek_columns(args.data, **_csv_format(args))
+    columns = [h for h, _ in peeked]
     bare = {parse_header(h)[0] for h in columns}
     has_states = all(s in bare for s in model.states)
     if args.initial is None and not has_states:
@@ -582,8 +644,8 @@ def _run_simulate(args: argparse.Namespace) -> int:
             f"{args.data}: no columns for the states {', '.join(model.states)}; "
             "give the initial state with --initial"
         )
-    time = args.time or _guess_time(peek_columns(args.data), str(args.data))
-    ds = _read_grid(args.data, time, model, has_states, args.run)
+    time = args.time or _guess_time(peeked, str(args.data))
+    ds = _read_grid(args.data, time, model, has_states, args)
     initial = _parse_initial(args.initial, model.states) if args.initial else None
     frames = []
     for r in ds.runs:
@@ -592,6 +654,9 @@ def _run_simulate(args: argparse.Namespace) -> int:
         if result.status != 0:
             print(f"modemap: run '{r.name}': {result.message}", file=sys.stderr)
         frame = {"run": r.origin, model.time_name: result.time}
+        stamps = stamps_at(r, result.time)
+        if stamps is not None:  # the input's date-time stamps beside the numeric time
+            frame["stamp"] = format_stamps(stamps, ds.stamp_zone)
         frame.update({s: result.states[:, j] for j, s in enumerate(model.states)})
         frame["regime"] = result.regimes
         frames.append(pd.DataFrame(frame))
@@ -602,22 +667,24 @@ def _run_simulate(args: argparse.Namespace) -> int:
     return 0
 
 
-def _read_grid(path: str, time: str, model, has_states: bool, run: str | None) -> Dataset:
+def _read_grid(path: str, time: str, model, has_states: bool, args) -> Dataset:
     """Time grid, inputs (and states when present) of the file to simulate over."""
+    run, missing = args.run, args.missing
     if has_states:
         return read_data(
-            path, time=time, states=list(model.states), inputs=list(model.inputs), run=run
-        )
+            path, time=time, states=list(model.states), inputs=list(model.inputs), run=run,
+            missing=missing, **_csv_format(args),
+        )  # fmt: skip
     # Only a time grid and inputs: validate them through intake with a placeholder state.
-    import pandas as pd
+    from modemap.data.tables import CsvFormat, read_table
 
-    suffix = os.path.splitext(path)[1].lower()
-    frame = pd.read_parquet(path) if suffix in (".parquet", ".pq") else pd.read_csv(path)
+    frame = read_table(path, CsvFormat(**_csv_format(args)))
     frame["__initial__"] = 0.0
     try:
         return read_data(
-            frame, time=time, states=["__initial__"], inputs=list(model.inputs), run=run
-        )
+            frame, time=time, states=["__initial__"], inputs=list(model.inputs), run=run,
+            missing=missing,
+        )  # fmt: skip
     except DataError as exc:
         raise DataError(exc.message, source=path, column=exc.column) from None
 
@@ -793,6 +860,9 @@ _OPTION_OF_PARAMETER = {
     "threshold": "--threshold",
     "kind": "--guards",
     "holdout": "--holdout",
+    "delimiter": "--delimiter",
+    "decimal": "--decimal",
+    "missing": "--missing",
 }
 
 

@@ -9,11 +9,12 @@ names, units and nominal step shared by all of them.  It is produced by
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
-__all__ = ["Dataset", "Gap", "Run"]
+__all__ = ["Dataset", "Gap", "Missing", "Run"]
 
 
 @dataclass(frozen=True)
@@ -37,6 +38,9 @@ class Run:
         Position of each sample among all data rows of the source, in input
         order (0-based, header excluded, counting across files in the order
         given).  ``-1`` for samples created by resampling.
+    stamps : ndarray of shape (n,) of datetime64, optional
+        The date-time stamp of each sample when the time column held date-times
+        (see :mod:`modemap.data.stamps`), else None.
     """
 
     name: str
@@ -45,6 +49,7 @@ class Run:
     states: np.ndarray
     inputs: np.ndarray
     index: np.ndarray
+    stamps: np.ndarray | None = None
 
     @property
     def n_samples(self) -> int:
@@ -72,6 +77,32 @@ class Gap:
 
 
 @dataclass(frozen=True)
+class Missing:
+    """What was done with empty cells (the missing-value policy and its counts).
+
+    Attributes
+    ----------
+    policy : {"refuse", "drop", "interpolate"}
+    values : dict
+        Column name -> number of empty cells dropped or interpolated (columns with none
+        are left out).
+    rows : int
+        Rows dropped (``"drop"``) or rows with at least one interpolated value.
+    """
+
+    policy: str = "refuse"
+    values: dict[str, int] = field(default_factory=dict)
+    rows: int = 0
+
+    def __str__(self) -> str:
+        if not self.rows:
+            return f"none (policy {self.policy})"
+        what = "dropped" if self.policy == "drop" else "with values interpolated"
+        counts = ", ".join(f"{name}: {n}" for name, n in self.values.items())
+        return f"{self.rows} row(s) {what} (empty cells: {counts})"
+
+
+@dataclass(frozen=True)
 class Dataset:
     """Validated trajectories: runs plus names, units and the sampling step.
 
@@ -95,6 +126,10 @@ class Dataset:
     gaps : tuple of Gap
     resampled : bool
         True when the user asked for resampling to a uniform step.
+    missing : Missing
+        The missing-value policy used and how many cells it dropped or interpolated.
+    stamp_zone : tzinfo or None
+        Zone of the runs' date-time stamps (None: no zone, or no stamps).
     """
 
     runs: tuple[Run, ...]
@@ -108,6 +143,13 @@ class Dataset:
     warnings: tuple[str, ...] = ()
     gaps: tuple[Gap, ...] = ()
     resampled: bool = False
+    missing: Missing = field(default_factory=Missing)
+    stamp_zone: Any = None
+
+    @property
+    def has_stamps(self) -> bool:
+        """True when every run carries date-time stamps."""
+        return bool(self.runs) and all(r.stamps is not None for r in self.runs)
 
     @property
     def n_states(self) -> int:

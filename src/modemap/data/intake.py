@@ -30,11 +30,19 @@ Sampling
 Time stamps
     A time column of ISO 8601 date-time text (or a datetime column in a
     DataFrame / Parquet file) is converted to seconds since the first stamp of
-    each file, with unit ``"s"``.
+    each file, with unit ``"s"``; the stamps are kept in ``Run.stamps``
+    (:mod:`modemap.data.stamps`).  Time values must stay within ``TIME_LIMIT`` in
+    magnitude and every increment must be resolvable (at least ``MIN_STEP`` and
+    ``STEP_ULPS`` units in the last place of the time value), so that steps, their
+    reciprocals and squares stay finite and meaningful in double precision.
+Empty cells
+    Refused by default; ``missing="drop"`` or ``"interpolate"`` reads them
+    (:mod:`modemap.data.missing`), with the counts in ``Dataset.missing``.
 
-Only comma-separated files are read (``.csv`` or ``.csv.gz``); Parquet files end in
-``.parquet`` or ``.pq``.  Duplicated headers are an error when the user asks for
-one of them (another column of the same name would make the choice ambiguous).
+CSV files (``.csv`` or ``.csv.gz``) are comma-separated with a decimal point unless told
+otherwise (``delimiter``, ``decimal``, ``units_row``: :class:`~modemap.data.tables.CsvFormat`);
+Parquet files end in ``.parquet`` or ``.pq``.  Duplicated headers are an error when the user
+asks for one of them (another column of the same name would make the choice ambiguous).
 """
 
 from __future__ import annotations
@@ -49,7 +57,17 @@ import pandas as pd
 
 from modemap._exceptions import DataError
 from modemap.data.dataset import Dataset, Gap, Run
-from modemap.data.tables import Source, Table, first_rows, load_columns, open_tables, parse_header
+from modemap.data.missing import Tally, check_policy, interpolate_gaps, kept_rows
+from modemap.data.stamps import Stamps, from_datetimes, parse_stamps, shifted
+from modemap.data.tables import (
+    CsvFormat,
+    Source,
+    Table,
+    first_rows,
+    load_columns,
+    open_tables,
+    parse_header,
+)
 
 __all__ = [
     "IRREGULAR_TOLERANCE",
@@ -61,6 +79,12 @@ __all__ = [
 
 IRREGULAR_TOLERANCE = 0.01
 """Relative spread of the time step ((max - min) / median) above which sampling is irregular."""
+TIME_LIMIT = 1e150
+"""Largest magnitude of a time value: its square (used by derivative fits) stays finite."""
+MIN_STEP = 1e-150
+"""Smallest time increment: the reciprocal of its square stays finite."""
+STEP_ULPS = 64
+"""Fewest units in the last place of the time value a time increment must span."""
 
 _LIST_AT_MOST = 12
 
@@ -134,9 +158,9 @@ def _resolve(table: Table, requested: str) -> int:
 
 def _separator_hint(headers: list[str]) -> str:
     if len(headers) == 1:
-        for sep, word in ((";", "';'"), ("\t", "tabs")):
+        for sep, word in ((";", "';'"), ("\t", "tabs"), ("|", "'|'"), (",", "','")):
             if sep in headers[0]:
-                return f" (the file seems to use {word} as separator; modemap reads commas)"
+                return f" (the file seems to use {word} as separator; see the delimiter option)"
     return ""
 
 
@@ -165,19 +189,21 @@ def _first(mask: np.ndarray) -> int:
 
 def _numbers(
     table: Table, series: pd.Series, header: str, is_time: bool
-) -> tuple[np.ndarray, bool]:
-    """Float values of one column; True as second item when converted from date-times."""
+) -> tuple[np.ndarray, Stamps | None]:
+    """Float values of one column; the date-time stamps as second item when converted
+    from date-times."""
     dtype = series.dtype
     if is_time and (
         isinstance(dtype, pd.DatetimeTZDtype) or pd.api.types.is_datetime64_any_dtype(dtype)
     ):
-        return _seconds(pd.to_datetime(series, utc=True)), True
+        stamps = from_datetimes(series)
+        return stamps.seconds(), stamps
     if pd.api.types.is_timedelta64_dtype(dtype) and is_time:
-        return (series / pd.Timedelta(seconds=1)).to_numpy(np.float64, na_value=np.nan), False
+        return (series / pd.Timedelta(seconds=1)).to_numpy(np.float64, na_value=np.nan), None
     if pd.api.types.is_bool_dtype(dtype) or pd.api.types.is_complex_dtype(dtype):
         raise _non_numeric(table, series, header, 0)
     if pd.api.types.is_numeric_dtype(dtype):
-        return series.to_numpy(dtype=np.float64, na_value=np.nan), False
+        return series.to_numpy(dtype=np.float64, na_value=np.nan), None
     return _parse_text(table, series, header, is_time)
 
 
@@ -193,11 +219,11 @@ def _parse_text(table: Table, series: pd.Series, header: str, is_time: bool):
         values = pd.to_numeric(raw.where(raw.notna()), errors="coerce")
     bad = present & values.isna().to_numpy()
     if not bad.any() and text_ok.all():
-        return values.to_numpy(dtype=np.float64, na_value=np.nan), False
+        return values.to_numpy(dtype=np.float64, na_value=np.nan), None
     if is_time:
-        stamps = _try_datetime(raw)
+        stamps = parse_stamps(raw, lambda message, pos: table.error(message, header, pos))
         if stamps is not None:
-            return stamps, True
+            return stamps.seconds(), stamps
     if not text_ok.all():
         bad = present.copy()
         bad[present] = ~text_ok
@@ -209,38 +235,68 @@ def _non_numeric(table: Table, series: pd.Series, header: str, pos: int) -> Data
     shown = repr(value if isinstance(value, str) else str(value))
     if len(shown) > 40:
         shown = shown[:37] + "..."
-    return table.error(f"non-numeric value {shown}", column=header, pos=pos)
+    hint = ""
+    if table.kind == "csv" and table.fmt.decimal == "." and _decimal_comma(value):
+        hint = " (a decimal comma? see the decimal and delimiter options)"
+    elif pos == 0 and table.kind == "csv" and not table.fmt.units_row:
+        hint = " (a units row under the header? see the units-row option)"
+    return table.error(f"non-numeric value {shown}{hint}", column=header, pos=pos)
 
 
-def _try_datetime(raw: pd.Series) -> np.ndarray | None:
+def _decimal_comma(value) -> bool:
+    try:
+        float(str(value).replace(",", "."))
+    except ValueError:
+        return False
+    return "," in str(value)
+
+
+def _looks_like_stamps(raw: pd.Series) -> bool:
     present = raw.notna().to_numpy()
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             stamps = pd.to_datetime(raw, format="ISO8601", utc=True, errors="coerce")
     except (ValueError, TypeError, OverflowError):
-        return None
-    if (stamps.isna().to_numpy() & present).any():
-        return None
-    return _seconds(stamps)
+        return False
+    return not (stamps.isna().to_numpy() & present).any()
 
 
-def _seconds(stamps: pd.Series) -> np.ndarray:
-    valid = stamps.dropna()
-    if valid.empty:
-        return np.full(len(stamps), np.nan)
-    return ((stamps - valid.iloc[0]) / pd.Timedelta(seconds=1)).to_numpy(
-        np.float64, na_value=np.nan
-    )
-
-
-def _check_finite(table: Table, values: np.ndarray, raw: pd.Series, header: str) -> None:
-    bad = ~np.isfinite(values)
+def _check_finite(
+    table: Table, values: np.ndarray, raw: pd.Series, header: str, empty_ok: bool
+) -> None:
+    """Refuse infinite values, and empty cells unless a missing-value policy reads them."""
+    bad = np.isinf(values) if empty_ok else ~np.isfinite(values)
     if bad.any():
         pos = _first(bad)
         cell = raw.iloc[pos]
-        what = "empty or NaN cell" if pd.isna(cell) else f"non-finite value {str(cell)!r}"
+        hint = (
+            ""
+            if table.positional
+            else " (refused unless missing values are dropped or interpolated)"
+        )
+        what = "empty or NaN cell" + hint if pd.isna(cell) else f"non-finite value {str(cell)!r}"
         raise table.error(what, column=header, pos=pos)
+
+
+def _check_empty(table: Table, frame, data: np.ndarray, headers: list[str], policy: str) -> None:
+    """Refuse the first empty cell (row by row) the missing-value policy does not read: any
+    under ``"refuse"``, a time cell under ``"interpolate"``."""
+    empty = np.isnan(data)
+    if policy == "interpolate":
+        empty[:, 1:] = False
+    elif policy == "drop":
+        return
+    if empty.any():
+        pos, j = np.argwhere(empty)[0]
+        if policy == "interpolate":
+            raise table.error(
+                "empty time cell: interpolation needs the time of every row (drop such rows "
+                "instead)",
+                column=headers[0],
+                pos=int(pos),
+            )
+        _check_finite(table, data[:, j], frame[j], headers[j], empty_ok=False)
 
 
 def _run_ids(table: Table, series: pd.Series, header: str) -> tuple[np.ndarray, list[str]]:
@@ -271,30 +327,40 @@ class _Piece:
     index: np.ndarray
     table: Table
     pos: np.ndarray  # data-row positions in the table, for messages
+    stamps: np.ndarray | None = None  # date-time stamps (datetime64), when the time had them
 
 
-def _table_pieces(table, frame, spec, headers, offset, stems, min_samples):
-    """Validate a loaded table and cut it into runs."""
-    columns, from_dates = [], False
+def _table_pieces(table, frame, spec, headers, offset, stems, min_samples, tally: Tally):
+    """Validate a loaded table, apply the missing-value policy and cut it into runs."""
+    columns, stamps = [], None
     for j, (role, _) in enumerate(spec.numeric):
-        values, dates = _numbers(table, frame[j], headers[j], role == "time")
-        _check_finite(table, values, frame[j], headers[j])
+        values, found = _numbers(table, frame[j], headers[j], role == "time")
+        _check_finite(table, values, frame[j], headers[j], empty_ok=True)
         columns.append(values)
-        from_dates = from_dates or dates
+        stamps = found if found is not None else stamps
     data = np.column_stack(columns) if columns else np.empty((frame.shape[0], 0))
+    _check_empty(table, frame, data, headers, tally.policy)
     n = data.shape[0]
     if spec.run is not None:
         codes, labels = _run_ids(table, frame[len(spec.numeric)], headers[-1])
     else:
         codes, labels = np.zeros(n, dtype=np.int64), ["0"]
+    names = [parse_header(h)[0] for h in headers[: len(spec.numeric)]]
+    kept = kept_rows(data, names, tally) if tally.policy == "drop" else np.arange(n)
     pieces = []
-    for rows, label in zip(_group_rows(codes, len(labels)), labels, strict=True):
+    for group, label in zip(_group_rows(codes[kept], len(labels)), labels, strict=True):
+        rows = kept[group]
         origin = _origin(table, label, stems, spec.run is not None)
-        piece = _Piece(origin, origin, data[rows, 0], data[rows, 1:], rows + offset, table, rows)
+        piece = _Piece(
+            origin, origin, data[rows, 0], data[rows, 1:], rows + offset, table, rows,
+            stamps.values[rows] if stamps is not None else None,
+        )  # fmt: skip
         _check_time(piece, headers[0])
         _check_length(piece, min_samples)
+        if tally.policy == "interpolate":
+            interpolate_gaps(table, piece.time, piece.values, rows, names[1:], origin, tally)
         pieces.append(piece)
-    return pieces, from_dates
+    return pieces, stamps
 
 
 def _group_rows(codes: np.ndarray, n_groups: int) -> list[np.ndarray]:
@@ -316,6 +382,7 @@ def _check_time(piece: _Piece, header: str) -> None:
     dt = np.diff(t)
     bad = dt <= 0
     if not bad.any():
+        _check_time_scale(piece, header, dt)
         return
     k = _first(bad)
     table, first, second = piece.table, int(piece.pos[k]), int(piece.pos[k + 1])
@@ -328,6 +395,28 @@ def _check_time(piece: _Piece, header: str) -> None:
             f"({table.at(first)})"
         )
     raise table.error(message, column=header, pos=second)
+
+
+def _check_time_scale(piece: _Piece, header: str, dt: np.ndarray) -> None:
+    """Refuse time values too large, or increments too small, for double precision."""
+    t, table = piece.time, piece.table
+    if t.size and np.abs(t).max() > TIME_LIMIT:
+        k = _first(np.abs(t) > TIME_LIMIT)
+        raise table.error(
+            f"time value {t[k]:g} is too large (at most {TIME_LIMIT:g} in magnitude)",
+            column=header,
+            pos=int(piece.pos[k]),
+        )
+    tiny = (dt < MIN_STEP) | (dt < STEP_ULPS * np.spacing(np.abs(t[1:])))
+    if tiny.any():
+        k = _first(tiny)
+        raise table.error(
+            f"time step {dt[k]:g} after {t[k]:g} is too small to resolve in double precision "
+            f"(a step must be at least {MIN_STEP:g} and {STEP_ULPS} units in the last place "
+            "of the time value)",
+            column=header,
+            pos=int(piece.pos[k + 1]),
+        )
 
 
 def _check_length(piece: _Piece, min_samples: int) -> None:
@@ -359,6 +448,7 @@ def _split_gaps(piece: _Piece, max_gap: float, min_samples: int, notes: list[str
         part = _Piece(
             f"{piece.origin}#{i}", piece.origin, piece.time[a:b], piece.values[a:b],
             piece.index[a:b], piece.table, piece.pos[a:b],
+            piece.stamps[a:b] if piece.stamps is not None else None,
         )  # fmt: skip
         if b - a < min_samples:
             notes.append(
@@ -414,7 +504,10 @@ def _resample(piece: _Piece, step: float) -> _Piece:
         values[:, j] = np.interp(grid, t, piece.values[:, j])
     hit = np.minimum(np.searchsorted(t, grid), t.shape[0] - 1)
     index = np.where(t[hit] == grid, piece.index[hit], -1).astype(np.int64)
-    return _Piece(piece.name, piece.origin, grid, values, index, piece.table, piece.pos[hit])
+    stamps = shifted(piece.stamps[0], grid - t[0]) if piece.stamps is not None else None
+    return _Piece(
+        piece.name, piece.origin, grid, values, index, piece.table, piece.pos[hit], stamps
+    )
 
 
 def _to_run(piece: _Piece, n_states: int) -> Run:
@@ -425,6 +518,7 @@ def _to_run(piece: _Piece, n_states: int) -> Run:
         states=np.ascontiguousarray(piece.values[:, :n_states]),
         inputs=np.ascontiguousarray(piece.values[:, n_states:]),
         index=np.asarray(piece.index, dtype=np.int64),
+        stamps=piece.stamps,
     )
 
 
@@ -441,6 +535,10 @@ def read_data(
     resample: bool = False,
     max_gap: float = 5.0,
     min_samples: int = 8,
+    delimiter: str = ",",
+    decimal: str = ".",
+    units_row: bool = False,
+    missing: str = "refuse",
 ) -> Dataset:
     """Read trajectories from files or a DataFrame, validate them and return a :class:`Dataset`.
 
@@ -468,6 +566,15 @@ def read_data(
     min_samples : int, default 8
         Fewest samples a run needs.  A run read from the source with fewer is an
         error; a piece left between gaps with fewer is dropped with a warning.
+    delimiter : {",", ";", "\\t", "|"}, default ","
+        Field delimiter of CSV files.
+    decimal : {".", ","}, default "."
+        Decimal mark of CSV files.
+    units_row : bool, default False
+        CSV files have a row of units under the header (read as ``name [unit]``).
+    missing : {"refuse", "drop", "interpolate"}, default "refuse"
+        What to do with empty cells in the columns read (:mod:`modemap.data.missing`);
+        the counts are in ``Dataset.missing``.
 
     Returns
     -------
@@ -481,16 +588,21 @@ def read_data(
     """
     spec = _make_spec(time, states, inputs, run)
     _check_options(max_gap, min_samples)
-    tables, stems = open_tables(source, spec.time)
-    pieces, units, notes, gaps, n_rows = [], {}, [], [], 0
+    tally = Tally(check_policy(missing))
+    fmt = CsvFormat(delimiter, decimal, units_row)
+    tables, stems = open_tables(source, spec.time, fmt)
+    pieces, units, notes, gaps, n_rows, zones = [], {}, [], [], 0, []
     for table in tables:
         positions = _positions(table, spec)
         headers = [table.headers[p] for p in positions]
         frame = load_columns(table, positions)
         if frame.shape[0] == 0:
             raise table.error("no data rows (only a header)")
-        found, dates = _table_pieces(table, frame, spec, headers, n_rows, stems, min_samples)
-        _merge_units(units, table, spec, headers, dates)
+        found, stamps = _table_pieces(
+            table, frame, spec, headers, n_rows, stems, min_samples, tally
+        )
+        _merge_units(units, table, spec, headers, stamps is not None)
+        zones.append(_zone(table, stamps, zones, headers[0]))
         n_rows += frame.shape[0]
         for piece in found:
             kept, new_gaps = _split_gaps(piece, max_gap, min_samples, notes)
@@ -516,7 +628,21 @@ def read_data(
         warnings=tuple(notes),
         gaps=tuple(gaps),
         resampled=bool(resample),
+        missing=tally.result(),
+        stamp_zone=next((z for z in zones if z is not None), None),
     )
+
+
+def _zone(table: Table, stamps: Stamps | None, earlier: list, header: str):
+    """The zone of this table's stamps, refused when it mixes zoned and plain stamps with
+    earlier sources (stamps of different zones are all written in the first one's)."""
+    zone = stamps.zone if stamps is not None else None
+    if stamps is not None and earlier and any((z is None) != (zone is None) for z in earlier):
+        raise table.error(
+            "time stamps with and without a time zone across sources; give all or none a zone",
+            column=header,
+        )
+    return zone
 
 
 def _check_options(max_gap: float, min_samples: int) -> None:
@@ -542,7 +668,14 @@ def _merge_units(units: dict, table: Table, spec: _Spec, headers: list[str], dat
         units[name] = unit
 
 
-def peek_columns(source: Source, nrows: int = 200) -> list[tuple[str, bool]]:
+def peek_columns(
+    source: Source,
+    nrows: int = 200,
+    *,
+    delimiter: str = ",",
+    decimal: str = ".",
+    units_row: bool = False,
+) -> list[tuple[str, bool]]:
     """Headers of the (first) source and whether each looks numeric in its first rows.
 
     Parameters
@@ -551,13 +684,15 @@ def peek_columns(source: Source, nrows: int = 200) -> list[tuple[str, bool]]:
         As for :func:`read_data`; only the first file is looked at.
     nrows : int, default 200
         Data rows inspected (CSV only).
+    delimiter, decimal, units_row
+        The layout of CSV files, as for :func:`read_data`.
 
     Returns
     -------
     list of (header, numeric) tuples
         Date-time columns count as numeric (they can serve as time).
     """
-    table = open_tables(source, None)[0][0]
+    table = open_tables(source, None, CsvFormat(delimiter, decimal, units_row))[0][0]
     frame = first_rows(table, nrows)
     if frame.shape[0] == 0:
         raise table.error("no data rows (only a header)")
@@ -582,7 +717,7 @@ def _looks_numeric(series: pd.Series) -> bool:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         values = pd.to_numeric(raw, errors="coerce")
-    return bool(values.notna().all()) or _try_datetime(raw) is not None
+    return bool(values.notna().all()) or _looks_like_stamps(raw)
 
 
 def summarize(ds: Dataset) -> dict:
@@ -598,7 +733,8 @@ def summarize(ds: Dataset) -> dict:
         Keys ``source``, ``rows``, ``time`` (name, unit), ``states``, ``inputs``,
         ``runs`` (name, origin, samples, start, end, duration, step), ``samples``,
         ``step``, ``duration``, ``ranges`` (per column: role, unit, min, max, mean),
-        ``gaps`` (origin, start, end, steps), ``warnings`` and ``resampled``.
+        ``gaps`` (origin, start, end, steps), ``warnings``, ``resampled`` and ``missing``
+        (policy; rows dropped or interpolated; empty cells per column).
     """
     runs = [
         {
@@ -628,6 +764,11 @@ def summarize(ds: Dataset) -> dict:
         ],
         "warnings": list(ds.warnings),
         "resampled": bool(ds.resampled),
+        "missing": {
+            "policy": ds.missing.policy,
+            "rows": int(ds.missing.rows),
+            "values": dict(ds.missing.values),
+        },
     }
 
 

@@ -3,6 +3,12 @@
 The first stage of :mod:`modemap.data.intake`: which files a source names, their headers, and the
 raw columns a user asked for, with file-level failures (missing, empty, unparseable,
 undecodable) translated into one-line :class:`~modemap._exceptions.DataError` messages.
+A CSV file's layout (delimiter, decimal mark, a units row under the header) is a
+:class:`CsvFormat`.  Before anything is parsed, the first :data:`TEXT_PROBE_BYTES` of a CSV
+file must look like text (no NUL bytes, few control characters), so a binary file is refused
+without reading it all; every line must then have as many fields as the header
+(:mod:`modemap.data.fields`), so an extra field or a decimal comma that splits a number is
+refused instead of shifting values silently.
 Files larger than :data:`LARGE_FILE_BYTES` are read in pieces: CSV in chunks of
 :data:`CSV_CHUNK_ROWS` rows, Parquet by row groups (also from :data:`LARGE_PARQUET_ROWS`).
 Validation of the values happens in :mod:`modemap.data.intake`.
@@ -10,6 +16,7 @@ Validation of the values happens in :mod:`modemap.data.intake`.
 
 from __future__ import annotations
 
+import gzip
 import os
 import re
 import warnings
@@ -21,20 +28,34 @@ import numpy as np
 import pandas as pd
 
 from modemap._exceptions import DataError
+from modemap._params import Options, check_value
+from modemap.data.fields import (
+    check_fields,
+    check_text,
+    fields_error,
+    open_bytes,
+    parse_header,
+    with_units,
+)
 
 __all__ = [
     "CSV_CHUNK_ROWS",
     "CSV_SUFFIXES",
     "DATAFRAME_LABEL",
+    "DECIMAL_MARKS",
+    "DELIMITERS",
     "LARGE_FILE_BYTES",
     "LARGE_PARQUET_ROWS",
     "PARQUET_SUFFIXES",
+    "TEXT_PROBE_BYTES",
+    "CsvFormat",
     "Source",
     "Table",
     "first_rows",
     "load_columns",
     "open_tables",
     "parse_header",
+    "read_table",
 ]
 
 CSV_SUFFIXES = (".csv", ".csv.gz")
@@ -47,39 +68,54 @@ CSV_CHUNK_ROWS = 1_000_000
 """Rows per chunk when a large CSV is read in pieces."""
 DATAFRAME_LABEL = "<DataFrame>"
 """How a DataFrame source is named in messages."""
+DELIMITERS = (",", ";", "\t", "|")
+"""Field delimiters a CSV file may use."""
+DECIMAL_MARKS = (".", ",")
+"""Decimal marks a CSV file may use."""
+TEXT_PROBE_BYTES = 1024**2
+"""Bytes read from the start of a CSV file to decide that it is text (and holds a line end)."""
+_CONTROL_SHARE = 0.01  # more control characters than this share of the probe: not text
 
-_HEADER = re.compile(r"^\s*(?P<name>.*?)\s*\[(?P<unit>[^\[\]]*)\]\s*$")
 
 Source = str | os.PathLike | pd.DataFrame | Sequence[str | os.PathLike]
 
 
-def parse_header(header: str) -> tuple[str, str]:
-    """Split a column header ``"name [unit]"`` into ``(name, unit)``.
+# --------------------------------------------------------------------------- tables
+
+
+@dataclass(frozen=True)
+class CsvFormat:
+    """How a CSV file is laid out.
 
     Parameters
     ----------
-    header : str
-        Header text.  Without a bracketed unit the unit is ``""``.
-
-    Returns
-    -------
-    name, unit : str
-        Both stripped of surrounding blanks.
-
-    Examples
-    --------
-    >>> parse_header("T [degC]")
-    ('T', 'degC')
-    >>> parse_header("flow")
-    ('flow', '')
+    delimiter : {",", ";", "\\t", "|"}, default ","
+        Field delimiter.
+    decimal : {".", ","}, default "."
+        Decimal mark of the numbers (``","`` needs another delimiter than ``","``).
+    units_row : bool, default False
+        The line under the header holds the unit of each column; a unit found there is
+        read as if the header were ``name [unit]``.
     """
-    match = _HEADER.match(header)
-    if match and match.group("name"):
-        return match.group("name"), match.group("unit").strip()
-    return header.strip(), ""
 
+    delimiter: str = ","
+    decimal: str = "."
+    units_row: bool = False
 
-# --------------------------------------------------------------------------- tables
+    def __post_init__(self) -> None:
+        check_value(self.delimiter, [Options(DELIMITERS)], "delimiter")
+        check_value(self.decimal, [Options(DECIMAL_MARKS)], "decimal")
+        check_value(self.units_row, [Options((True, False))], "units_row")
+        if self.delimiter == self.decimal:
+            raise DataError(
+                f"the decimal mark {self.decimal!r} cannot also be the field delimiter; "
+                "choose another delimiter (e.g. ';')"
+            )
+
+    @property
+    def header_rows(self) -> int:
+        """Lines above the first data row (the header, and the units row if any)."""
+        return 2 if self.units_row else 1
 
 
 @dataclass
@@ -93,14 +129,20 @@ class Table:
     path: Path | None = None
     frame: pd.DataFrame | None = None
     encoding: str = "utf-8-sig"
+    fmt: CsvFormat = CsvFormat()
 
     @property
     def positional(self) -> bool:
         return self.kind != "csv"
 
+    @property
+    def first_row(self) -> int:
+        """File row (1-based, as a text editor numbers lines) of the first data row."""
+        return self.fmt.header_rows + 1
+
     def at(self, pos: int) -> str:
         """Where data row ``pos`` (0-based) is, in the words a user understands."""
-        return f"row index {pos}" if self.positional else f"row {pos + 2}"
+        return f"row index {pos}" if self.positional else f"row {pos + self.first_row}"
 
     def error(self, message: str, column: str | None = None, pos: int | None = None) -> DataError:
         """A :class:`DataError` naming this source, ``column`` and data row ``pos``."""
@@ -110,7 +152,7 @@ class Table:
             return DataError(message, source=self.label, column=column)
         if self.positional:
             return DataError(f"{message} at {self.at(pos)}", source=self.label, column=column)
-        return DataError(message, source=self.label, column=column, row=int(pos) + 2)
+        return DataError(message, source=self.label, column=column, row=int(pos) + self.first_row)
 
 
 def _suffix_kind(path: Path) -> str | None:
@@ -130,7 +172,7 @@ def _stem(path: Path) -> str:
     return path.stem
 
 
-def _open_file(item: str | os.PathLike) -> Table:
+def _open_file(item: str | os.PathLike, fmt: CsvFormat) -> Table:
     path = Path(item)
     label = str(item)
     kind = _suffix_kind(path)
@@ -141,8 +183,12 @@ def _open_file(item: str | os.PathLike) -> Table:
         raise DataError("file not found", source=label)
     if not path.is_file():
         raise DataError("not a regular file", source=label)
-    table = Table(label=label, stem=_stem(path), kind=kind, headers=[], path=path)
-    table.headers = _csv_headers(table) if kind == "csv" else _parquet_headers(table)
+    table = Table(label=label, stem=_stem(path), kind=kind, headers=[], path=path, fmt=fmt)
+    if kind == "csv":
+        _check_text(table)
+        table.headers = _csv_headers(table)
+    else:
+        table.headers = _parquet_headers(table)
     return table
 
 
@@ -164,16 +210,23 @@ def _index_is_time(frame: pd.DataFrame, time: str | None) -> bool:
     return named and not (columns & wanted)
 
 
-def open_tables(source: Source, time: str | None) -> tuple[list[Table], bool]:
-    """Open every source; the flag tells whether run names come from file stems."""
+def open_tables(
+    source: Source, time: str | None, fmt: CsvFormat | None = None
+) -> tuple[list[Table], bool]:
+    """Open every source; the flag tells whether run names come from file stems.
+
+    ``fmt`` is the layout of CSV files (default: :class:`CsvFormat`); Parquet files and
+    DataFrames ignore it.
+    """
+    fmt = fmt if fmt is not None else CsvFormat()
     if isinstance(source, pd.DataFrame):
         return [_open_frame(source, time)], False
     if isinstance(source, str | os.PathLike):
-        return [_open_file(source)], False
+        return [_open_file(source, fmt)], False
     if isinstance(source, Sequence) and not isinstance(source, bytes):
         if len(source) == 0:
             raise DataError("no data files given")
-        tables = [_open_file(item) for item in source]
+        tables = [_open_file(item, fmt) for item in source]
         _unique_stems(tables)
         return tables, True
     raise DataError(
@@ -194,7 +247,12 @@ def _unique_stems(tables: list[Table]) -> None:
 
 
 def _read_csv(table: Table, **options) -> pd.DataFrame:
-    """``pandas.read_csv`` (C engine) with its failures translated into :class:`DataError`."""
+    """``pandas.read_csv`` (C engine, the table's delimiter and decimal mark) with its
+    failures translated into :class:`DataError`."""
+    fmt = table.fmt
+    options = {"sep": fmt.delimiter, "decimal": fmt.decimal, **options}
+    if options.get("header") == 0 and fmt.units_row:
+        options["skiprows"] = [1]
     for encoding in dict.fromkeys((table.encoding, "latin-1")):
         try:
             with warnings.catch_warnings():
@@ -207,10 +265,22 @@ def _read_csv(table: Table, **options) -> pd.DataFrame:
         except pd.errors.EmptyDataError:
             raise table.error("the file is empty") from None
         except (pd.errors.ParserError, ValueError, OverflowError, IndexError) as exc:
-            raise table.error(f"cannot parse as CSV: {_one_line(exc)}") from None
+            raise _parse_error(table, exc) from None
         except OSError as exc:
             raise table.error(f"cannot read the file: {exc.strerror or exc}") from None
     raise table.error("cannot decode the file as text")  # pragma: no cover - latin-1 decodes all
+
+
+_FIELDS_MESSAGE = re.compile(r"Expected (\d+) fields in line (\d+), saw (\d+)")
+
+
+def _parse_error(table: Table, exc: BaseException) -> DataError:
+    """The parser's failure in our words; a wrong number of fields names its row."""
+    found = _FIELDS_MESSAGE.search(str(exc))
+    if found:
+        expected, line, seen = (int(g) for g in found.groups())
+        return fields_error(table, line, seen, expected)
+    return table.error(f"cannot parse as CSV: {_one_line(exc)}")
 
 
 def _one_line(exc: BaseException) -> str:
@@ -218,12 +288,30 @@ def _one_line(exc: BaseException) -> str:
 
 
 def _csv_headers(table: Table) -> list[str]:
+    """The header's names; with a units row, ``name [unit]`` for every unit found there."""
+    rows = table.fmt.header_rows
     head = _read_csv(
-        table, header=None, nrows=1, dtype=str, keep_default_na=False, skip_blank_lines=False
+        table, header=None, nrows=rows, dtype=str, keep_default_na=False, skip_blank_lines=False
     )
     if head.shape[0] == 0:
         raise table.error("the file is empty")
-    return [str(h) for h in head.iloc[0].tolist()]
+    headers = [str(h) for h in head.iloc[0].tolist()]
+    if not table.fmt.units_row:
+        return headers
+    if head.shape[0] < 2:
+        raise DataError("no units row under the header", source=table.label, row=2)
+    return with_units(table, headers, [str(u) for u in head.iloc[1].tolist()])
+
+
+def _check_text(table: Table) -> None:
+    """Refuse a CSV file whose first :data:`TEXT_PROBE_BYTES` do not look like text."""
+    try:
+        with open_bytes(table) as fh:
+            probe = fh.read(TEXT_PROBE_BYTES)
+            more = bool(fh.read(1))
+    except (OSError, EOFError, gzip.BadGzipFile) as exc:
+        raise table.error(f"cannot read the file: {_one_line(exc)}") from None
+    check_text(table, probe, more, _CONTROL_SHARE)
 
 
 def _parquet_headers(table: Table) -> list[str]:
@@ -243,6 +331,7 @@ def load_columns(table: Table, positions: list[int]) -> pd.DataFrame:
     elif table.kind == "parquet":
         frame = _load_parquet(table, positions)
     else:
+        check_fields(table)  # every line as many fields as the header (extra fields refused)
         options = {"header": 0, "usecols": positions, "index_col": False}
         if _is_large(table.path):
             frame = _read_csv_chunked(table, **options)
@@ -252,6 +341,15 @@ def load_columns(table: Table, positions: list[int]) -> pd.DataFrame:
         frame = _drop_trailing_blank(frame)
     frame = frame.reset_index(drop=True)
     frame.columns = range(frame.shape[1])
+    return frame
+
+
+def read_table(path: str | os.PathLike, fmt: CsvFormat | None = None) -> pd.DataFrame:
+    """Every column of one CSV or Parquet file, checked as :func:`load_columns` checks them,
+    under its header (with a units row folded in as ``name [unit]``)."""
+    (table,), _ = open_tables(path, None, fmt)
+    frame = load_columns(table, list(range(len(table.headers))))
+    frame.columns = table.headers
     return frame
 
 
@@ -289,7 +387,7 @@ def _read_csv_chunked(table: Table, **options) -> pd.DataFrame:
                 raise table.error("cannot decode the file as text") from None
             table.encoding = "latin-1"
         except (pd.errors.ParserError, ValueError, OverflowError, IndexError) as exc:
-            raise table.error(f"cannot parse as CSV: {_one_line(exc)}") from None
+            raise _parse_error(table, exc) from None
     if not chunks:
         raise table.error("no data rows (only a header)")
     return pd.concat(chunks, ignore_index=True)

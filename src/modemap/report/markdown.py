@@ -168,7 +168,9 @@ def _data_section(summary: dict[str, Any]) -> str:
         (str(k), v)
         for k, v in summary.items()
         if k not in (*known, "time", "runs", "ranges", "gaps", "warnings", "states", "inputs")
+        and k != "missing"
     ]
+    rows += _missing_rows(summary.get("missing"))
     out.append(_table(["Item", "Value"], rows))
     runs = summary.get("runs") or []
     if runs:
@@ -185,6 +187,20 @@ def _data_section(summary: dict[str, Any]) -> str:
         if items:
             out.append(f"{title}:\n\n" + "\n".join(f"- {_cell(i)}" for i in items))
     return "\n\n".join(out)
+
+
+def _missing_rows(missing: Any) -> list[tuple[str, Any]]:
+    """Rows of the training-data table on empty cells: the policy, then the counts."""
+    if not isinstance(missing, dict):
+        return []
+    policy = missing.get("policy", "refuse")
+    rows: list[tuple[str, Any]] = [("Missing values", policy)]
+    if missing.get("rows"):
+        what = "Rows dropped" if policy == "drop" else "Rows with interpolated values"
+        rows.append((what, missing["rows"]))
+        counts = ", ".join(f"{k}: {v}" for k, v in (missing.get("values") or {}).items())
+        rows.append(("Empty cells per column", counts))
+    return rows
 
 
 def _overview(model: HybridModel) -> str:

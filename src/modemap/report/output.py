@@ -89,6 +89,7 @@ def write_fit_outputs(
     from modemap.report.markdown import render_report
 
     out = check_output_folder(directory, read)
+    labels = _with_stamps(labels, dataset)
     texts = {
         "model.json": dumps_model(model),
         "labels.csv": labels[_label_columns(labels)].to_csv(index=False, float_format="%.10g"),
@@ -117,6 +118,18 @@ def write_fit_outputs(
 
 
 def _label_columns(labels: pd.DataFrame) -> list[str]:
-    """``run, time, regime`` first, then the regime probabilities (``prob_0`` ...)."""
+    """``run, time`` (then ``stamp`` when the data had date-times), ``regime``, then the
+    regime probabilities (``prob_0`` ...)."""
     probs = sorted((c for c in labels.columns if c.startswith("prob_")), key=lambda c: int(c[5:]))
-    return ["run", "time", "regime", *probs]
+    return ["run", "time", *(["stamp"] if "stamp" in labels else []), "regime", *probs]
+
+
+def _with_stamps(labels: pd.DataFrame, dataset: Dataset | None) -> pd.DataFrame:
+    """``labels`` with the original date-time stamp of each row (``stamp``, ISO 8601) when the
+    data had them and the rows are the dataset's."""
+    from modemap.data.stamps import row_stamps
+
+    text = row_stamps(dataset) if dataset is not None else None
+    if text is None or len(text) != len(labels):
+        return labels
+    return labels.assign(stamp=text)

@@ -390,7 +390,10 @@ class DashboardApp(App[None]):
 
 
 # Entry points -------------------------------------------------------------
-_READ_OPTIONS = ("time", "states", "inputs", "run", "resample", "max_gap", "min_samples")
+_READ_OPTIONS = (
+    *("time", "states", "inputs", "run", "resample", "max_gap", "min_samples"),
+    *("missing", "delimiter", "decimal", "units_row"),
+)
 
 
 def _source_spec(model: HybridModel, directory: Path) -> tuple[list[str], dict[str, Any]] | None:
