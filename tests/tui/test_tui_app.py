@@ -507,3 +507,27 @@ def test_damaged_labels_file_is_a_note_not_a_crash(tmp_path):
         model, _, labels, notes = load_view_inputs(tmp_path)
         assert labels is None and model.n_regimes == 2
         assert any(fragment in n for n in notes), notes
+
+
+@sync
+async def test_date_time_logs_get_a_date_time_axis():
+    from dataclasses import replace
+
+    from modemap.app.tui.widgets.plot import Plot
+
+    ds = make_dataset()
+    start = np.datetime64("2026-03-01T06:00:00", "us")
+    runs = tuple(
+        replace(r, stamps=start + np.round(r.time * 1e6).astype("timedelta64[us]")) for r in ds.runs
+    )  # invented stamps: the numeric time is seconds since the first stamp, as read
+    ds = replace(ds, runs=runs)
+    labels = make_labels(ds, 2)
+    app = DashboardApp(make_model(2, ds, labels), ds, labels, formatter=plain_equations)
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.pause()
+        head = text_of(app, "#tl-head")
+        assert "2026-03-01 06:00:00 … 2026-03-01 06:00:39" in head  # 39.9 s after 06:00
+        plots = list(app.query("#tl-plots Plot").results(Plot))
+        axis = "".join(seg.text for seg in plots[-1]._lines()[-1])
+        assert "06:00:00" in axis and "06:00:20" in axis  # hh:mm:ss (rounded) under 2 min
+        assert "t = 0 s (2026-03-01 06:00:00)" in text_of(app, "#tl-readout")

@@ -13,7 +13,12 @@ from textual.widgets import Static
 
 from modemap.app.tui.screens.base import Panel
 from modemap.app.tui.widgets.canvas import PlotSpec, Series
-from modemap.app.tui.widgets.data import band_function, padded_limits, run_title
+from modemap.app.tui.widgets.data import (
+    band_function,
+    padded_limits,
+    run_title,
+    stamp_labeller,
+)
 from modemap.app.tui.widgets.palette import SIM_COLOR, trace_color
 from modemap.app.tui.widgets.plot import Plot, RegimeStrip
 from modemap.app.tui.widgets.tables import validation_details
@@ -154,6 +159,7 @@ class ReplayPanel(Panel):
                 bands=bands,
                 title=st.label(st.dataset.state_names[j]),
                 show_xaxis=j == len(self._plots) - 1,
+                x_label=stamp_labeller(run),
             )
             plot.show(spec)
 

@@ -19,6 +19,8 @@ from modemap.app.tui.widgets.data import (
     pack_parts,
     padded_limits,
     run_title,
+    stamp_labeller,
+    stamp_text,
 )
 from modemap.app.tui.widgets.palette import regime_name, trace_color
 from modemap.app.tui.widgets.plot import CertaintyStrip, Plot, RegimeStrip
@@ -101,13 +103,10 @@ class TimelinePanel(Panel):
         regimes = st.regimes[st.run]
         bands = band_function(run.time, regimes)
         legend = regime_legend(st.regime_ids)
-        head.update(
-            Text(
-                f"{run_title(run, st.run, st.n_runs)}  "
-                f"t {self.view[0]:.4g}…{self.view[1]:.4g} {st.time_unit}  "
-            )
-            + legend
-        )
+        span = f"t {self.view[0]:.4g}…{self.view[1]:.4g} {st.time_unit}"
+        if run.stamps is not None:
+            span = f"{stamp_text(run, self.view[0])} … {stamp_text(run, self.view[1])}"
+        head.update(Text(f"{run_title(run, st.run, st.n_runs)}  {span}  ") + legend)
         strip.show([("regime", bands if st.labels is not None else None)], self.view, self.cursor)
         sure = st.certainty[st.run] if st.certainty else None
         self.query_one("#tl-certainty", CertaintyStrip).show(
@@ -129,6 +128,7 @@ class TimelinePanel(Panel):
                 cursor=self.cursor,
                 title=title,
                 show_xaxis=j == len(plots) - 1,
+                x_label=stamp_labeller(run),
             )
             plot.show(spec)
         width = readout.size.width or self.app.size.width
@@ -139,6 +139,8 @@ class TimelinePanel(Panel):
         i = int(nearest_index(run.time, self.cursor)[0])
         tu = st.time_unit
         parts = [f"t = {run.time[i]:.6g}{' ' + tu if tu else ''}"]
+        if run.stamps is not None:
+            parts[0] += f" ({stamp_text(run, float(run.time[i]))})"
         names = list(st.dataset.state_names) + list(st.dataset.input_names)
         values = (
             np.concatenate([run.states[i], run.inputs[i]]) if run.inputs.size else run.states[i]

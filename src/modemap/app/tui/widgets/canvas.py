@@ -101,6 +101,8 @@ class PlotSpec:
     cursor: float | None = None
     title: str = ""
     show_xaxis: bool = True
+    x_label: Callable[[float, float], str] | None = None
+    """``x_label(value, span) -> text`` of an x-axis tick (default: the number)."""
 
 
 def _fmt(value: float, span: float, width: int = 7) -> str:
@@ -261,11 +263,14 @@ def _tick(value: float, span: float) -> str:
     return "0" if text in ("-0", "0") else text
 
 
-def _xaxis(xlim: tuple[float, float], w: int) -> str:
+def _xaxis(
+    xlim: tuple[float, float], w: int, x_label: Callable[[float, float], str] | None = None
+) -> str:
     row = [" "] * w
     picks = [0.0, 0.5, 1.0] if w < 60 else [0.0, 0.25, 0.5, 0.75, 1.0]
+    name = x_label or _tick
     for frac in picks:
-        label = _tick(xlim[0] + frac * (xlim[1] - xlim[0]), xlim[1] - xlim[0])
+        label = name(xlim[0] + frac * (xlim[1] - xlim[0]), xlim[1] - xlim[0])
         pos = round(frac * (w - 1))
         start = min(max(pos - len(label) // 2, 0), w - len(label))
         if start < 0 or any(c != " " for c in row[max(start - 1, 0) : start + len(label) + 1]):
@@ -348,5 +353,7 @@ def render_plot(spec: PlotSpec, width: int, height: int) -> list[list[Segment]]:
             styles.append(st)
         lines.append([Segment(label, axis_style), *_segments(chars, styles)])
     if spec.show_xaxis:
-        lines.append([Segment(" " * MARGIN, Style()), Segment(_xaxis(xlim, w), axis_style)])
+        lines.append(
+            [Segment(" " * MARGIN, Style()), Segment(_xaxis(xlim, w, spec.x_label), axis_style)]
+        )
     return lines

@@ -25,6 +25,8 @@ __all__ = [
     "nearest_index",
     "pack_parts",
     "padded_limits",
+    "stamp_labeller",
+    "stamp_text",
 ]
 
 
@@ -257,3 +259,30 @@ def pack_parts(parts: list[str], width: int, sep: str = " │ ") -> str:
         else:
             lines.append(part)
     return "\n".join(lines)
+
+
+def stamp_labeller(run) -> Callable[[float, float], str] | None:
+    """Tick labels in the run's date-time stamps (None when it has none): the time of
+    day when the view spans less than two days (with seconds under two minutes), else the
+    month, day and hour."""
+    if getattr(run, "stamps", None) is None or run.n_samples == 0:
+        return None
+    from modemap.data.stamps import stamps_at
+
+    def label(value: float, span: float) -> str:
+        stamp = pd.Timestamp(stamps_at(run, np.array([value], dtype=float))[0])
+        if span < 120:
+            return stamp.round("s").strftime("%H:%M:%S")
+        return stamp.round("min").strftime("%H:%M" if span < 2 * 86400 else "%m-%d %H:%M")
+
+    return label
+
+
+def stamp_text(run, value: float) -> str:
+    """The run's date-time stamp at time ``value`` (ISO 8601, seconds), or empty text."""
+    if getattr(run, "stamps", None) is None or run.n_samples == 0:
+        return ""
+    from modemap.data.stamps import stamps_at
+
+    stamp = pd.Timestamp(stamps_at(run, np.array([value], dtype=float))[0])
+    return stamp.isoformat(sep=" ", timespec="seconds")
