@@ -36,8 +36,12 @@ def test_panel(snap_compare, monkeypatch, panel, size, colour):
     assert snap_compare(demo_app(3), terminal_size=size, run_before=before)
 
 
-def test_help(snap_compare):
-    assert snap_compare(demo_app(3), press=["question_mark"], terminal_size=(80, 24))
+@pytest.mark.parametrize("colour", [True, False], ids=["colour", "no-colour"])
+@pytest.mark.parametrize("size", [(80, 24), (160, 48)], ids=["80x24", "160x48"])
+def test_help(snap_compare, monkeypatch, size, colour):
+    if not colour:
+        monkeypatch.setenv("NO_COLOR", "1")
+    assert snap_compare(demo_app(3), press=["question_mark"], terminal_size=size)
 
 
 def test_refit_comparison(snap_compare):
@@ -56,7 +60,12 @@ def test_six_regimes_phase(snap_compare):
     assert snap_compare(demo_app(6), press=["5"], terminal_size=(80, 24))
 
 
-def test_save_asks_where(snap_compare, tmp_path):
+@pytest.mark.parametrize("colour", [True, False], ids=["colour", "no-colour"])
+@pytest.mark.parametrize("size", [(80, 24), (160, 48)], ids=["80x24", "160x48"])
+def test_save_asks_where(snap_compare, monkeypatch, size, colour):
+    if not colour:
+        monkeypatch.setenv("NO_COLOR", "1")
+
     async def before(pilot):
         await pilot.press("r")
         pilot.app.screen.query_one("#opt-k", Input).focus()
@@ -66,4 +75,4 @@ def test_save_asks_where(snap_compare, tmp_path):
         await _settle(pilot)
 
     app = demo_app(3, out="results-of-the-cart", save=lambda *a: "")
-    assert snap_compare(app, terminal_size=(80, 24), run_before=before)
+    assert snap_compare(app, terminal_size=size, run_before=before)
