@@ -401,7 +401,7 @@ BAD_FILES = {
         "regimes[1].coefficients.T: expected 6 numbers (one per term), got 5"
     ),
     "noncanonical_term.json": "regimes[0].terms[5]: term 'q*T' is not in canonical form",
-    "bad_input_name.json": "inputs[0]: variable name 'flow rate' is not a valid identifier",
+    "bad_input_name.json": "inputs[0]: variable name 'qqqq",
     "missing_state_coefficients.json": "regimes[0].coefficients: missing state 'P'",
     "unknown_state_coefficients.json": "regimes[0].coefficients: unknown state 'Q'",
     "string_coefficient.json": "regimes[0].coefficients.T[1]: expected a number, got the string",

@@ -34,9 +34,39 @@ EXIT_INTERRUPTED = 130
 
 
 def _names(text: str) -> list[str]:
-    """Split a comma-separated option value into names (blanks around commas ignored)."""
-    names = [part.strip() for part in text.split(",")]
-    if not all(names):
+    """Split a comma-separated option value into names (blanks around commas ignored).
+
+    A name with a comma in it is written between backticks, as in terms (a backtick
+    inside doubled): ``--states '`Flow, total`,x'``.
+    """
+    names: list[str] = []
+    part, pos = "", 0
+    while pos <= len(text):
+        if text.startswith("`", pos) and not part.strip():
+            end = pos + 1
+            while True:
+                end = text.find("`", end)
+                if end < 0:
+                    raise argparse.ArgumentTypeError(f"unclosed '`' in {text!r}")
+                if not text.startswith("``", end):
+                    break
+                end += 2
+            part = text[pos + 1 : end].replace("``", "`")
+            pos = end + 1
+            rest = text[pos:].split(",", 1)[0]
+            if rest.strip():
+                raise argparse.ArgumentTypeError(f"text after a quoted name in {text!r}")
+            pos += len(rest)
+            names.append(part)
+            part, pos = "", pos + 1
+            continue
+        if pos == len(text) or text[pos] == ",":
+            names.append(part.strip())
+            part, pos = "", pos + 1
+            continue
+        part += text[pos]
+        pos += 1
+    if not all(n.strip() for n in names):
         raise argparse.ArgumentTypeError(f"empty name in {text!r}")
     return names
 

@@ -63,6 +63,8 @@ IRREGULAR_TOLERANCE = 0.01
 """Relative spread of the time step ((max - min) / median) above which sampling is irregular."""
 
 _LIST_AT_MOST = 12
+MAX_NAME_LENGTH = 1000
+"""Longest state or input name: the term grammar's limit (``terms.expressions``)."""
 
 # --------------------------------------------------------------------------- columns
 
@@ -503,6 +505,7 @@ def read_data(
     if not pieces:
         raise DataError("no run is long enough after resampling", source=_label(tables))
     names = [parse_header(tables[0].headers[_resolve(tables[0], n)])[0] for _, n in spec.numeric]
+    _check_names(tables[0], spec, names)
     n_states = len(spec.states)
     return Dataset(
         runs=tuple(_to_run(p, n_states) for p in pieces),
@@ -517,6 +520,27 @@ def read_data(
         gaps=tuple(gaps),
         resampled=bool(resample),
     )
+
+
+def _check_names(table: Table, spec: _Spec, names: list[str]) -> None:
+    """State and input names are distinct and not too long (any other text is a valid
+    name: terms quote it, see the term grammar)."""
+    requested = [n for _, n in spec.numeric]
+    seen: dict[str, str] = {}
+    for name, given in zip(names[1:], requested[1:], strict=True):
+        if len(name) > MAX_NAME_LENGTH:
+            raise table.error(
+                f"column name has {len(name)} characters; at most {MAX_NAME_LENGTH} are "
+                "allowed for a state or input",
+                column=given[:40] + "...",
+            )
+        if name in seen:
+            raise table.error(
+                f"its name '{name}' is also the name of column '{seen[name]}' (units are not "
+                "part of a name); rename one",
+                column=given,
+            )
+        seen[name] = given
 
 
 def _check_options(max_gap: float, min_samples: int) -> None:
