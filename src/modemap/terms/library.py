@@ -45,7 +45,13 @@ from modemap.terms.expressions import (
     quote_name,
 )
 
-__all__ = ["TermLibrary", "evaluate_terms", "monomial_exponents", "monomial_name"]
+__all__ = [
+    "TermLibrary",
+    "canonical_term",
+    "evaluate_terms",
+    "monomial_exponents",
+    "monomial_name",
+]
 
 _CHUNK = 8192
 Monomial = tuple[int, ...]  # sorted variable indices with repetition: x^2*y -> (0, 0, 1)
@@ -363,6 +369,11 @@ def _as_names(value: Sequence[str] | str | None) -> tuple[str, ...]:
     if isinstance(value, str):
         return (value,)
     return tuple(value)
+
+
+def canonical_term(text: str, variables: Sequence[str]) -> str:
+    """The canonical string of a term written in the grammar (``"y*x"`` -> ``"x*y"``)."""
+    return _custom_term(text, tuple(variables))[0]
 
 
 def _custom_term(text: str, names: tuple[str, ...]) -> tuple[str, tuple]:
