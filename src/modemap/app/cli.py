@@ -22,6 +22,7 @@ from modemap._exceptions import DataError, ModemapError, ParameterError
 from modemap._progress import ProgressClock, format_duration
 from modemap.data.dataset import Dataset
 from modemap.data.intake import parse_header, peek_columns, read_data, summarize
+from modemap.data.states import default_states
 
 __all__ = ["main"]
 
@@ -96,7 +97,8 @@ def add_data_options(
         "--states",
         type=_names,
         metavar="A,B",
-        help="state columns (default: every numeric column but time, run and inputs)",
+        help="state columns (default: every numeric column but time, run and inputs, "
+        "leaving out constant, two-valued and label-like columns)",
     )
     group.add_argument("--inputs", type=_names, default=[], metavar="U,V", help="input columns")
     group.add_argument("--run", metavar="NAME", help="column identifying runs within a file")
@@ -125,7 +127,7 @@ def load_dataset(args: argparse.Namespace) -> Dataset:
         time = time if time is not None else _guess_time(columns, label)
         if states is None:
             states = _default_states(columns, [time, *args.inputs, args.run], label)
-    return read_data(
+    ds = read_data(
         source,
         time=time,
         states=states,
@@ -135,6 +137,8 @@ def load_dataset(args: argparse.Namespace) -> Dataset:
         max_gap=args.max_gap,
         min_samples=args.min_samples,
     )
+    # no states named: constant, two-valued and label-like columns are left out, with a note
+    return default_states(ds) if args.states is None else ds
 
 
 def _guess_time(columns: list[tuple[str, bool]], label: str) -> str:
