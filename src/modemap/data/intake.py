@@ -526,7 +526,7 @@ def _check_names(table: Table, spec: _Spec, names: list[str]) -> None:
     """State and input names are distinct and not too long (any other text is a valid
     name: terms quote it, see the term grammar)."""
     requested = [n for _, n in spec.numeric]
-    seen: dict[str, str] = {}
+    seen: dict[str, int] = {}
     for name, given in zip(names[1:], requested[1:], strict=True):
         if len(name) > MAX_NAME_LENGTH:
             raise table.error(
@@ -536,11 +536,11 @@ def _check_names(table: Table, spec: _Spec, names: list[str]) -> None:
             )
         if name in seen:
             raise table.error(
-                f"its name '{name}' is also the name of column '{seen[name]}' (units are not "
+                f"its name '{name}' is also the name of column {seen[name]} (units are not "
                 "part of a name); rename one",
                 column=given,
             )
-        seen[name] = given
+        seen[name] = _resolve(table, given) + 1
 
 
 def _check_options(max_gap: float, min_samples: int) -> None:
