@@ -4,7 +4,7 @@ A fit forms sums of products of the term columns (normal-equation statistics, an
 from the residuals, statistics of their squares), so every term must be a finite
 number at every sample, and small enough that its fourth power stays finite in double
 precision: values beyond :data:`LARGEST` (1e75; the largest double is about 1.8e308,
-IEEE 754) are refused.  Measured: a one-regime fit of ``x`` at 1e75 recovers the
+IEEE 754) are refused.  Measured: a one-regime fit at degree 1 of ``x`` at 1e75 recovers the
 coefficients of the same data at 1, at 1e100 it loses its standard errors to overflow.
 The checks run on all samples before any fitting, so a term that fails is named with
 the first row where it fails, instead of surfacing later as a numerical breakdown.
