@@ -135,7 +135,7 @@ def test_evaluate_rejects_wrong_shape() -> None:
         parse("x", VARS).evaluate(np.ones(3))
 
 
-ALPHABET = "xyu0123456789.eE+-*/^() sincoexplgqrtabh_[]'\";:,=lambd"
+ALPHABET = "xyu0123456789.eE+-*/^() sincoexplgqrtabh_[]'\";:,=lambd``"
 
 
 @settings(max_examples=300, deadline=None)
