@@ -88,8 +88,9 @@ def check_terms(
     names = list(library.variables_)
     custom = {canonical_term(t, names) for t in _texts(custom)}
     custom &= set(library.terms_)
-    p = library.n_terms_
-    gram = np.zeros((p, p))
+    mine = [j for j, t in enumerate(library.terms_) if t in custom]
+    cross = np.zeros((len(mine), library.n_terms_))  # products of the custom terms with all
+    squares = np.zeros(library.n_terms_)
     for start in range(0, Z.shape[0], _CHUNK):
         block = Z[start : start + _CHUNK]
         with np.errstate(all="ignore"):
@@ -98,10 +99,12 @@ def check_terms(
         if bad.any():
             row, j = np.unravel_index(int(np.argmax(bad)), bad.shape)
             raise _failure(library, custom, T[row, j], j, block[row], where(start + row), source)
-        gram += T.T @ T
-    for j, term in enumerate(library.terms_):
-        if term in custom:
-            _check_collinear(library, Z, gram, j, custom, f"{source}: " if source else "")
+        if mine:
+            cross += T[:, mine].T @ T
+            squares += np.einsum("ij,ij->j", T, T)
+    prefix = f"{source}: " if source else ""
+    for i, j in enumerate(mine):
+        _check_collinear(library, Z, cross[i], squares, j, custom, prefix)
 
 
 def _texts(value) -> tuple[str, ...]:
@@ -136,18 +139,19 @@ def _failure(library, custom, value, j, z, where, source) -> ModemapError:
     )
 
 
-def _check_collinear(library, Z, gram, j, custom, prefix) -> None:
+def _check_collinear(library, Z, cross, squares, j, custom, prefix) -> None:
+    """``cross[k]``: sum of term j times term k over the rows; ``squares[k]``: of term k squared."""
     term = library.terms_[j]
-    if gram[j, j] == 0:
+    if squares[j] == 0:
         raise ExpressionError(f"{prefix}term '{term}' is 0 at every sample of the data: remove it")
     for k, other in enumerate(library.terms_):
-        if k == j or gram[k, k] == 0 or (other in custom and k > j):
+        if k == j or squares[k] == 0 or (other in custom and k > j):
             continue  # of two custom terms, the later one is named
         with np.errstate(all="ignore"):
-            cos2 = gram[j, k] ** 2 / (gram[j, j] * gram[k, k])
+            cos2 = cross[k] ** 2 / (squares[j] * squares[k])
         if not (np.isfinite(cos2) and 1.0 - cos2 <= _PREFILTER):
             continue
-        factor = gram[j, k] / gram[k, k]
+        factor = cross[k] / squares[k]
         if not _proportional(library, Z, j, k, factor):
             continue
         kind = "the term" if other in custom else "the candidate term"
