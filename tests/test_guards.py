@@ -450,6 +450,11 @@ def test_bootstrap_threshold_error_matches_the_logit_delta_method() -> None:
     assert rec["numbers"][0] == pytest.approx(-b / w, abs=2 * se_ref)
     assert rec["stderr"][0] == pytest.approx(se_ref, rel=0.3)
     assert rec["replicates"] == 200
+    # a name that must be quoted in terms is still a one-variable threshold
+    quoted = SwitchingSurfaces(kind="memoryless", n_boot=20, holdout=0.0).fit(
+        x[:, None], labels, [x.size], ["Tank Level"]
+    )
+    assert len(quoted.stderr_["0->1"]["numbers"]) == 1
 
 
 def test_bootstrap_leaves_the_guards_as_fitted(thermostat_data) -> None:

@@ -30,7 +30,7 @@ from modemap.model.modelfile import (
     model_to_dict,
     save_model,
 )
-from modemap.terms.expressions import FUNCTIONS
+from modemap.terms.expressions import quote_name
 from modemap.terms.library import TermLibrary
 
 BAD_DIR = Path(__file__).parent / "data" / "bad_models"
@@ -147,9 +147,11 @@ FLOATS = st.one_of(
     st.sampled_from([0.0, -0.0, 5e-324, -5e-324, 1.7976931348623157e308, 1e-300, 0.1]),
 )
 # Variable names must be identifiers (modemap.terms.expressions.check_variable_names).
-NAMES = st.from_regex(r"[A-Za-z_][A-Za-z0-9_]{0,5}", fullmatch=True).filter(
-    lambda s: s not in FUNCTIONS
-)
+# plain identifiers (function names too: a variable may be called sin) and any other text,
+# which terms write between backticks
+NAMES = st.from_regex(r"[A-Za-z_][A-Za-z0-9_]{0,5}", fullmatch=True) | st.text(
+    min_size=1, max_size=8
+).filter(lambda s: s.strip() != "")
 JSON_VALUES = st.recursive(
     st.none()
     | st.booleans()
@@ -166,6 +168,7 @@ JSON_VALUES = st.recursive(
 
 def canonical_terms(variables: list[str]) -> list[str]:
     """A small canonical library over the variables (constant, linear, squares, pairs, sin)."""
+    variables = [quote_name(v) for v in variables]
     out = ["1", *variables, *(f"{v}^2" for v in variables)]
     out += [f"{a}*{b}" for i, a in enumerate(variables) for b in variables[i + 1 :]]
     if len(variables) >= 2:
@@ -401,7 +404,7 @@ BAD_FILES = {
         "regimes[1].coefficients.T: expected 6 numbers (one per term), got 5"
     ),
     "noncanonical_term.json": "regimes[0].terms[5]: term 'q*T' is not in canonical form",
-    "bad_input_name.json": "inputs[0]: variable name 'flow rate' is not a valid identifier",
+    "bad_input_name.json": "inputs[0]: variable name 'qqqq",
     "missing_state_coefficients.json": "regimes[0].coefficients: missing state 'P'",
     "unknown_state_coefficients.json": "regimes[0].coefficients: unknown state 'Q'",
     "string_coefficient.json": "regimes[0].coefficients.T[1]: expected a number, got the string",

@@ -89,8 +89,10 @@ def test_from_terms_round_trip_and_order() -> None:
 
 
 def test_errors() -> None:
-    with pytest.raises(ExpressionError, match="not a valid identifier"):
-        TermLibrary().fit(["x", "2y"])
+    with pytest.raises(ExpressionError, match="is empty"):
+        TermLibrary().fit(["x", " "])
+    with pytest.raises(ExpressionError, match="appears twice"):
+        TermLibrary().fit(["x", "x"])
     with pytest.raises(ExpressionError, match="trig variable 'z'"):
         TermLibrary(trig=["z"]).fit(VARS)
     with pytest.raises(ExpressionError, match="unknown name"):

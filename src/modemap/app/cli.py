@@ -22,6 +22,7 @@ from modemap._exceptions import DataError, ModemapError, ParameterError
 from modemap._progress import ProgressClock, format_duration
 from modemap.data.dataset import Dataset
 from modemap.data.intake import parse_header, peek_columns, read_data, summarize
+from modemap.data.states import default_states
 
 __all__ = ["main"]
 
@@ -34,9 +35,39 @@ EXIT_INTERRUPTED = 130
 
 
 def _names(text: str) -> list[str]:
-    """Split a comma-separated option value into names (blanks around commas ignored)."""
-    names = [part.strip() for part in text.split(",")]
-    if not all(names):
+    """Split a comma-separated option value into names (blanks around commas ignored).
+
+    A name with a comma in it is written between backticks, as in terms (a backtick
+    inside doubled): ``--states '`Flow, total`,x'``.
+    """
+    names: list[str] = []
+    part, pos = "", 0
+    while pos <= len(text):
+        if text.startswith("`", pos) and not part.strip():
+            end = pos + 1
+            while True:
+                end = text.find("`", end)
+                if end < 0:
+                    raise argparse.ArgumentTypeError(f"unclosed '`' in {text!r}")
+                if not text.startswith("``", end):
+                    break
+                end += 2
+            part = text[pos + 1 : end].replace("``", "`")
+            pos = end + 1
+            rest = text[pos:].split(",", 1)[0]
+            if rest.strip():
+                raise argparse.ArgumentTypeError(f"text after a quoted name in {text!r}")
+            pos += len(rest)
+            names.append(part)
+            part, pos = "", pos + 1
+            continue
+        if pos == len(text) or text[pos] == ",":
+            names.append(part.strip())
+            part, pos = "", pos + 1
+            continue
+        part += text[pos]
+        pos += 1
+    if not all(n.strip() for n in names):
         raise argparse.ArgumentTypeError(f"empty name in {text!r}")
     return names
 
@@ -110,7 +141,8 @@ def add_data_options(
         "--states",
         type=_names,
         metavar="A,B",
-        help="state columns (default: every numeric column but time, run and inputs)",
+        help="state columns (default: every numeric column but time, run and inputs, "
+        "leaving out constant, two-valued and label-like columns)",
     )
     group.add_argument("--inputs", type=_names, default=[], metavar="U,V", help="input columns")
     group.add_argument("--run", metavar="NAME", help="column identifying runs within a file")
@@ -140,7 +172,7 @@ def load_dataset(args: argparse.Namespace) -> Dataset:
         time = time if time is not None else _guess_time(columns, label)
         if states is None:
             states = _default_states(columns, [time, *args.inputs, args.run], label)
-    return read_data(
+    ds = read_data(
         source,
         time=time,
         states=states,
@@ -152,6 +184,8 @@ def load_dataset(args: argparse.Namespace) -> Dataset:
         missing=args.missing,
         **_csv_format(args),
     )
+    # no states named: constant, two-valued and label-like columns are left out, with a note
+    return default_states(ds) if args.states is None else ds
 
 
 def _guess_time(columns: list[tuple[str, bool]], label: str) -> str:

@@ -87,6 +87,8 @@ STEP_ULPS = 64
 """Fewest units in the last place of the time value a time increment must span."""
 
 _LIST_AT_MOST = 12
+MAX_NAME_LENGTH = 1000
+"""Longest state or input name: the term grammar's limit (``terms.expressions``)."""
 
 # --------------------------------------------------------------------------- columns
 
@@ -615,6 +617,7 @@ def read_data(
     if not pieces:
         raise DataError("no run is long enough after resampling", source=_label(tables))
     names = [parse_header(tables[0].headers[_resolve(tables[0], n)])[0] for _, n in spec.numeric]
+    _check_names(tables[0], spec, names)
     n_states = len(spec.states)
     return Dataset(
         runs=tuple(_to_run(p, n_states) for p in pieces),
@@ -643,6 +646,27 @@ def _zone(table: Table, stamps: Stamps | None, earlier: list, header: str):
             column=header,
         )
     return zone
+
+
+def _check_names(table: Table, spec: _Spec, names: list[str]) -> None:
+    """State and input names are distinct and not too long (any other text is a valid
+    name: terms quote it, see the term grammar)."""
+    requested = [n for _, n in spec.numeric]
+    seen: dict[str, int] = {}
+    for name, given in zip(names[1:], requested[1:], strict=True):
+        if len(name) > MAX_NAME_LENGTH:
+            raise table.error(
+                f"column name has {len(name)} characters; at most {MAX_NAME_LENGTH} are "
+                "allowed for a state or input",
+                column=given[:40] + "...",
+            )
+        if name in seen:
+            raise table.error(
+                f"its name '{name}' is also the name of column {seen[name]} (units are not "
+                "part of a name); rename one",
+                column=given,
+            )
+        seen[name] = _resolve(table, given) + 1
 
 
 def _check_options(max_gap: float, min_samples: int) -> None:

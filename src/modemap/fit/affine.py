@@ -18,12 +18,13 @@ from sklearn.utils.validation import check_is_fitted, validate_data
 from modemap._exceptions import FitError
 from modemap.fit.sparse import LocalFit, refit_support
 from modemap.fit.statistics import GramStats
+from modemap.terms.expressions import variable_of
 
 __all__ = ["AffineRegression", "affine_parts", "fit_affine"]
 
 
 def _is_linear(term: str) -> bool:
-    return term == "1" or (term.isidentifier() and term not in ("sin", "cos"))
+    return term == "1" or variable_of(term) is not None
 
 
 def fit_affine(stats: GramStats, terms: Sequence[str]) -> LocalFit:

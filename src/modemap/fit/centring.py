@@ -40,27 +40,14 @@ import numpy as np
 
 from modemap.fit.sparse import LocalFit, fit_sparse, refit_support
 from modemap.fit.statistics import GramStats
+from modemap.terms.library import monomial_exponents
 
 __all__ = ["centring_matrix", "fit_sparse_centred"]
 
 
 def _exponents(term: str, variables: Sequence[str]) -> tuple[int, ...] | None:
     """Exponent vector of a canonical monomial (``1``, ``x``, ``x^2*u``), else None."""
-    if term == "1":
-        return (0,) * len(variables)
-    if "(" in term or "/" in term:
-        return None
-    powers = [0] * len(variables)
-    index = {v: i for i, v in enumerate(variables)}
-    for factor in term.split("*"):
-        name, _, power = factor.partition("^")
-        if name not in index:
-            return None
-        try:
-            powers[index[name]] += int(power) if power else 1
-        except ValueError:
-            return None
-    return tuple(powers)
+    return monomial_exponents(term, variables)
 
 
 def centring_matrix(

@@ -36,6 +36,7 @@ import numpy as np
 
 from modemap.fit.sparse import LocalFit, refit_support
 from modemap.fit.statistics import GramStats
+from modemap.terms.expressions import quote_name
 
 __all__ = ["fit_on_increments", "increment_stats", "persistence_matrix"]
 
@@ -57,7 +58,7 @@ def persistence_matrix(terms: Sequence[str], states: Sequence[str]) -> np.ndarra
     index = {t: i for i, t in enumerate(terms)}
     E = np.zeros((len(terms), len(states)))
     for j, name in enumerate(states):
-        i = index.get(name)
+        i = index.get(quote_name(name))
         if i is None:
             return None
         E[i, j] = 1.0

@@ -36,7 +36,6 @@ Two kinds exist:
 
 from __future__ import annotations
 
-import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any, ClassVar
@@ -50,6 +49,7 @@ from modemap.fit.centring import fit_sparse_centred
 from modemap.fit.increments import fit_on_increments
 from modemap.fit.sparse import CRITERIA, LocalFit, fit_sparse, refit_support
 from modemap.fit.statistics import GramStats
+from modemap.terms.expressions import term_names
 from modemap.terms.library import TermLibrary
 
 __all__ = [
@@ -379,5 +379,5 @@ class BoundLocalModel:
 
 def uses_names(term: str, names: Sequence[str]) -> bool:
     """True when the canonical term string mentions one of ``names``."""
-    tokens = set(re.findall(r"[A-Za-z_][A-Za-z0-9_]*", term))
-    return any(n in tokens for n in names)
+    used = set(term_names(term))
+    return any(n in used for n in names)

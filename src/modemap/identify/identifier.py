@@ -140,9 +140,10 @@ class HybridIdentifier(BaseEstimator):
         if self.regimes is not None and self.regimes.local_model is not None:
             check_params(self.regimes.local_model)
         progress = progress or null_progress
+        stage = clone(self.regimes) if self.regimes else RegimeFinder()
+        stage.check_terms(ds)  # on every sample, held-out ones too, before any work
         progress(0.0, "splitting off validation data")
         train, test = split_holdout(ds, self.holdout) if self.holdout > 0 else (ds, None)
-        stage = clone(self.regimes) if self.regimes else RegimeFinder()
         last = 1.0 if test is None or not self.refit else 0.55
         finder, surfaces, model = self._identify(train, stage, scaled(progress, 0.02, last))
         model.metadata["options"] = options_record(

@@ -29,6 +29,7 @@ from modemap.model.equilibria import find_equilibria
 from modemap.model.hybrid import RegimeModel
 from modemap.regimes.rows import Rows
 from modemap.regimes.selection import Windows, library_criteria
+from modemap.regimes.term_checks import check_library_on_data
 from modemap.terms.equations import format_equations
 from modemap.terms.library import TermLibrary
 
@@ -113,6 +114,7 @@ class LocalDynamics(BaseEstimator):
         if not isinstance(ds, Dataset):
             raise DataError(f"LocalDynamics.fit expects a Dataset, got {type(ds).__name__}")
         spec = SparseLocalModel() if self.local_model is None else self.local_model
+        check_library_on_data(spec, ds, form=self.form)
         reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
         local, fit = self._best_library(spec, ds, reg)
         library = local.library

@@ -68,8 +68,11 @@ def jacobian(library: Any, coef: np.ndarray, z: np.ndarray, n_states: int) -> np
     -------
     ndarray of shape (n_states, n_states)
     """
-    partials = library.partials(np.asarray(z, dtype=np.float64)[None, :])[0]
-    return np.asarray(coef, dtype=np.float64).T @ partials[:, :n_states]
+    coef = np.asarray(coef, dtype=np.float64)
+    used = np.any(coef != 0, axis=1)  # a term left out adds nothing, even where it is inf
+    with np.errstate(all="ignore"):
+        partials = library.partials(np.asarray(z, dtype=np.float64)[None, :])[0]
+    return coef[used].T @ partials[used, :n_states]
 
 
 def equilibrium_stderr(
@@ -356,7 +359,10 @@ class _Problem:
         return np.concatenate([x, self.u])
 
     def residual(self, x: np.ndarray) -> np.ndarray:
-        f = self.library.transform(self.z(x)[None, :])[0] @ self.coef
+        used = np.any(self.coef != 0, axis=1)  # a term left out adds nothing, even if inf
+        with np.errstate(all="ignore"):
+            terms = self.library.transform(self.z(x)[None, :])[0]
+        f = terms[used] @ self.coef[used]
         return f - x if self.form == "discrete" else f
 
     def model_jacobian(self, x: np.ndarray) -> np.ndarray:

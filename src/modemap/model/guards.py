@@ -81,6 +81,7 @@ from modemap.model.guard_spread import block_indices, printed_numbers, spread
 from modemap.model.hybrid import Guard
 from modemap.model.hysteresis import hysteresis_evidence, position_in_run
 from modemap.model.logistic import LogisticFit, fit_logistic
+from modemap.terms.expressions import quote_name, variable_of
 from modemap.terms.library import TermLibrary
 
 __all__ = ["SwitchingSurfaces", "guard_text", "guard_values", "predict_labels"]
@@ -293,19 +294,21 @@ def guard_text(
     head = f"switch {guard.source} -> {guard.target} when "
     if nz.size == 0:
         return head + ("always" if guard.offset > 0 else "never")
-    if nz.size == 1 and guard.terms[nz[0]] in spans:
-        name = guard.terms[nz[0]]
+    one = variable_of(guard.terms[nz[0]]) if nz.size == 1 else None
+    if one is not None and one in spans:
+        name = one
         thr = -guard.offset / w[nz[0]]
         op = ">" if w[nz[0]] > 0 else "<"
         unit = f" {units[name]}" if units.get(name) else ""
         digits = _decimals(spans[name])
-        return head + f"{name} {op} {round(thr, digits) + 0.0:.{digits}f}{unit}"
+        return head + f"{quote_name(name)} {op} {round(thr, digits) + 0.0:.{digits}f}{unit}"
     nrm = float(np.linalg.norm(w))
     parts = []
     for i in nz:
         c = w[i] / nrm
         t = guard.terms[i]
-        label = f"{t}[{units[t]}]" if units.get(t) else t
+        unit = units.get(variable_of(t) or "")
+        label = f"{t}[{unit}]" if unit else t
         sign = "-" if c < 0 else "+"
         parts.append(f"{sign} {abs(c):.3g} {label}")
     lhs = " ".join(parts)
@@ -561,7 +564,7 @@ class SwitchingSurfaces(BaseEstimator):
         kept = self._significance
         one = {
             (g.source, g.target): np.count_nonzero(g.weights) == 1
-            and g.terms[int(np.flatnonzero(g.weights)[0])] in self._spans
+            and variable_of(g.terms[int(np.flatnonzero(g.weights)[0])]) in self._spans
             for g in self.guards_
         }
         reps: dict[tuple[int, int], list[np.ndarray]] = {k: [] for k in one}
@@ -837,7 +840,8 @@ class SwitchingSurfaces(BaseEstimator):
             sd = float(np.std(self._Z[tr, v])) or 1.0
             w = np.zeros(len(self._vars))
             w[v] = sign / sd
-            g = Guard(full.source, full.target, list(self._vars), w, -sign * thr / sd)
+            terms = [quote_name(v) for v in self._vars]
+            g = Guard(full.source, full.target, terms, w, -sign * thr / sd)
             g = _recentre(g, self._vars, self._Z, *events)
             score = _balanced_accuracy(ys, self._after_rows(g, rows) > 0)
             if best is None or score > best[0]:

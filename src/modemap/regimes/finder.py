@@ -54,6 +54,7 @@ from modemap.regimes.likelihood import regime_log_likelihood
 from modemap.regimes.refine import RefineResult, RefineSettings
 from modemap.regimes.rows import Rows
 from modemap.regimes.summary import chain_statistics, statistics
+from modemap.regimes.term_checks import check_library_on_data
 from modemap.regimes.viterbi import forward_backward, viterbi_runs
 
 __all__ = ["FitContext", "RegimeFinder"]
@@ -225,6 +226,19 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
             return self.covariance
         return "full" if self.form == "discrete" else "tied"
 
+    def check_terms(self, ds: Dataset) -> None:
+        """Refuse candidate terms that are not finite, too large or collinear on ``ds``.
+
+        The largest library the fit would use is evaluated on every sample; see
+        :mod:`modemap.terms.checks` for what is refused and how it is named.
+
+        Raises
+        ------
+        ExpressionError, DataError
+        """
+        exclude = self._switching_inputs(ds)
+        check_library_on_data(self._local_spec(), ds, form=self.form, exclude=exclude)
+
     def _local_spec(self) -> LocalModel:
         return SparseLocalModel() if self.local_model is None else self.local_model
 
@@ -307,6 +321,7 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
         )
 
     def _fit(self, ds: Dataset, progress: ProgressCallback, engine: Engine) -> RegimeFinder:
+        self.check_terms(ds)
         reg = prepare_regression(ds, form=self.form, derivative=self.derivative)
         ctx = self._context(ds, reg, engine)
         # the common targets: no regime information (continuous form: derivatives never

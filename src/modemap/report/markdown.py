@@ -18,6 +18,7 @@ import numpy as np
 
 from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
 from modemap.model.summary import regime_equations
+from modemap.terms.expressions import quote_name, variable_of
 
 __all__ = ["CAUTION", "render_report"]
 
@@ -461,7 +462,7 @@ def _guard_stderr_text(model: HybridModel, g: Guard, spread: dict) -> str:
     se = [float(v) for v in rec.get("stderr", [])]
     nz = [t for t, w in zip(g.terms, g.weights, strict=True) if w != 0]
     if len(se) == 1 and len(nz) == 1:
-        unit = model.units.get(nz[0], "")
+        unit = model.units.get(variable_of(nz[0]) or "", "")
         unit = f" {unit}" if unit not in ("", "-", "1") else ""
         return f"threshold ± {_num(se[0])}{unit}"
     if len(se) != len(nz) + 1:
@@ -577,10 +578,10 @@ def _threshold(model: HybridModel, g: Guard) -> tuple[str, float, bool] | None:
         sum(w for w, t in zip(weights, g.terms, strict=True) if t == "1")
     )
     active = [(w, t) for w, t in zip(weights, g.terms, strict=True) if t != "1" and w != 0]
-    if len(active) != 1 or active[0][1] not in model.variables:
+    if len(active) != 1 or variable_of(active[0][1]) not in model.variables:
         return None
-    w, name = active[0]
-    return name, -offset / w, bool(w > 0)
+    w, term = active[0]
+    return str(variable_of(term)), -offset / w, bool(w > 0)
 
 
 def _hysteresis_notes(model: HybridModel) -> list[str]:
@@ -593,7 +594,7 @@ def _hysteresis_notes(model: HybridModel) -> list[str]:
             continue
         a, b = _threshold(model, g), _threshold(model, back[0])
         if a and b and a[0] == b[0] and a[2] != b[2]:
-            name, unit = a[0], _unit(model, a[0])
+            name, unit = quote_name(a[0]), _unit(model, a[0])
             gap = abs(a[1] - b[1])
             notes.append(
                 f"Hysteresis between regimes {g.source} and {g.target}: the switch "
@@ -625,7 +626,7 @@ def _oblique_band(model: HybridModel, g: Guard, h: Guard) -> str:
     of their weights, each variable scaled by its range in the data, is below -0.95."""
     terms = [t for t in g.terms if t != "1"]
     if sorted(terms) != sorted(t for t in h.terms if t != "1") or any(
-        t not in model.variables for t in terms
+        variable_of(t) not in model.variables for t in terms
     ):
         return ""
 
@@ -635,7 +636,8 @@ def _oblique_band(model: HybridModel, g: Guard, h: Guard) -> str:
 
     wg, bg = linear(g)
     wh, bh = linear(h)
-    span = np.array([np.ptp(model.data_range.get(t, (0.0, 1.0))) or 1.0 for t in terms])
+    names = [str(variable_of(t)) for t in terms]
+    span = np.array([np.ptp(model.data_range.get(v, (0.0, 1.0))) or 1.0 for v in names])
     sg, sh = wg * span, wh * span
     norm = np.linalg.norm(sg) * np.linalg.norm(sh)
     if norm == 0 or float(sg @ sh) / norm > -0.95:
@@ -643,8 +645,8 @@ def _oblique_band(model: HybridModel, g: Guard, h: Guard) -> str:
     c = np.linalg.norm(sh) / np.linalg.norm(sg)
     gap = abs(bg + bh / c)
     parts = [
-        f"{_num(gap / abs(w))}{_unit(model, t)} wide along {t}"
-        for t, w in zip(terms, wg, strict=True)
+        f"{_num(gap / abs(w))}{_unit(model, v)} wide along {t}"
+        for t, v, w in zip(terms, names, wg, strict=True)
         if w != 0
     ]
     return " or ".join(parts)

@@ -80,6 +80,7 @@ from scipy import integrate, linalg, optimize
 
 from modemap._exceptions import SimulationError
 from modemap.model.hybrid import HybridModel, RegimeModel
+from modemap.terms.expressions import quote_name
 from modemap.terms.library import TermLibrary
 
 __all__ = ["SimulationResult", "simulate"]
@@ -156,7 +157,7 @@ class _TermEval:
     def __init__(self, terms: list[str], W: np.ndarray, b: np.ndarray, variables: list[str]):
         W = np.asarray(W, dtype=float).reshape(len(terms), -1)
         self.b = np.asarray(b, dtype=float).reshape(-1).copy()
-        pos = {v: i for i, v in enumerate(variables)}
+        pos = {quote_name(v): i for i, v in enumerate(variables)}  # a variable's term
         if all(t == "1" or t in pos for t in terms):
             self.lin = np.zeros((len(variables), W.shape[1]))
             for i, t in enumerate(terms):

@@ -11,26 +11,40 @@ significant digits are shown, or ``digits`` when given.
 Term strings are parsed with :mod:`modemap.terms.expressions` and re-rendered, so the
 LaTeX form has ``T^{2}`` and ``\\sin\\left(x\\right)`` and the Python form has
 ``x**2`` and ``np.sin(x)``; the Python form is an expression of the variables
-(and ``np``) only, for export: modemap itself never evaluates it as code.
+(and ``np``) only, for export: modemap itself never evaluates it as code.  When a
+variable name is not a plain identifier (or is a Python keyword or ``np``), every
+variable of the Python form is written ``z['name']``, ``z`` a mapping from names to
+values.  The text form writes such names between backticks, as the term grammar
+does (`` d`Tank Level`/dt = -0.5 `Tank Level` + 2 u ``); LaTeX sets them upright.
 """
 
 from __future__ import annotations
 
+import keyword
 import math
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 
 import numpy as np
 
 from modemap._exceptions import ParameterError
-from modemap.terms.expressions import FUNCTIONS, BinOp, Call, Const, Expr, Neg, Var, parse
+from modemap.terms.expressions import (
+    BinOp,
+    Call,
+    Const,
+    Expr,
+    Neg,
+    Var,
+    parse,
+    quote_name,
+    term_names,
+)
 
 __all__ = ["STYLES", "format_coefficient", "format_equations", "format_term"]
 
 STYLES = ("text", "latex", "python")
 _DEFAULT_SIG = 4
 _IDENT = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
-_NUMBER = re.compile(r"(?<![A-Za-z0-9_])(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
 _SCI = re.compile(r"(\d(?:\.\d*)?)e([+-]?\d+)")
 _LATEX_FUNCS = {"sin", "cos", "exp", "log", "tanh"}
 
@@ -126,13 +140,19 @@ def _prec(e: Expr) -> int:
     return 5
 
 
+_LATEX_ESCAPES = {
+    "\\": r"\backslash{}", "{": r"\{", "}": r"\}", "_": r"\_", "#": r"\#", "$": r"\$",
+    "%": r"\%", "&": r"\&", "^": r"\hat{}", "~": r"\sim{}", " ": r"\ ",
+}  # fmt: skip
+
+
 def _latex_name(name: str) -> str:
-    if len(name) == 1:
+    if len(name) == 1 and name.isalpha() and name.isascii():
         return name
     m = re.fullmatch(r"([A-Za-z])_?(\d+)", name)
     if m:
         return f"{m.group(1)}_{{{m.group(2)}}}"
-    return r"\mathrm{" + name.replace("_", r"\_") + "}"
+    return r"\mathrm{" + "".join(_LATEX_ESCAPES.get(ch, ch) for ch in name) + "}"
 
 
 def _latex(e: Expr) -> str:
@@ -169,22 +189,46 @@ def _latex_number(text: str) -> str:
     return _SCI.sub(lambda m: rf"{m.group(1)} \times 10^{{{int(m.group(2))}}}", text)
 
 
-def _python(text: str) -> str:
-    """Grammar text to Python: ``^`` -> ``**``, functions -> ``np.<name>``.
+def _python_namer(variables: Sequence[str]) -> Callable[[str], str]:
+    """How the Python form writes a variable: bare, or ``z['name']`` for every variable
+    when one of them cannot be a Python name."""
+    if all(_IDENT.fullmatch(v) and not keyword.iskeyword(v) and v != "np" for v in variables):
+        return str
+    return lambda name: f"z[{name!r}]"
 
-    The grammar's precedence of unary minus, products and powers is Python's,
-    so a token-level rewrite keeps the meaning.
+
+def _python(e: Expr, name: Callable[[str], str]) -> str:
+    """Python text of a tree: ``^`` -> ``**``, functions -> ``np.<name>``.
+
+    The grammar's precedence of unary minus, products and powers is Python's, so the
+    grammar's parenthesising rules carry over.
     """
-    out = _IDENT.sub(lambda m: f"np.{m.group(0)}" if m.group(0) in FUNCTIONS else m.group(0), text)
-    return out.replace("^", "**")
+
+    def wrap(child: Expr, minimum: int) -> str:
+        text = _python(child, name)
+        return f"({text})" if _prec(child) < minimum else text
+
+    if isinstance(e, Const):
+        return str(e)
+    if isinstance(e, Var):
+        return name(e.name)
+    if isinstance(e, Neg):
+        return "-" + wrap(e.arg, 3)
+    if isinstance(e, Call):
+        return f"np.{e.func}({_python(e.arg, name)})"
+    if isinstance(e, BinOp):
+        if e.op in "+-":
+            return f"{_python(e.left, name)} {e.op} {wrap(e.right, 2)}"
+        if e.op in "*/":
+            return f"{wrap(e.left, 2)}{e.op}{wrap(e.right, 3)}"
+        return f"{wrap(e.left, 5)}**{wrap(e.right, 3)}"
+    raise TypeError(f"unknown expression node {e!r}")
 
 
 def _variables(terms: Sequence[str], state_names: Sequence[str]) -> list[str]:
     names = list(state_names)
     for term in terms:
-        for ident in _IDENT.findall(_NUMBER.sub(" ", term)):
-            if ident not in FUNCTIONS and ident not in names:
-                names.append(ident)
+        names += [n for n in term_names(term) if n not in names]
     return names
 
 
@@ -197,7 +241,7 @@ def format_term(term: str, variables: Sequence[str], style: str = "text") -> tup
     if style == "latex":
         return _latex(expr), needs
     if style == "python":
-        return _python(str(expr)), needs
+        return _python(expr, _python_namer(variables)), needs
     return str(expr), needs
 
 
@@ -210,6 +254,7 @@ def _lhs(name: str, form: str, style: str, unit: str, time_unit: str) -> str:
         left = rf"\frac{{d{n}}}{{dt}}" if form == "continuous" else f"{n}_{{k+1}}"
         unit_text = (unit + "/" + (time_unit or "time")) if form == "continuous" else unit
         return left + (rf"\ [\mathrm{{{unit_text}}}]" if unit else "")
+    name = quote_name(name)
     left = f"d{name}/dt" if form == "continuous" else f"{name}[k+1]"
     if unit:
         left += f" [{unit}/{time_unit or 'time'}]" if form == "continuous" else f" [{unit}]"
@@ -232,6 +277,7 @@ def _factored(
     name: str,
     style: str,
     digits: int | None,
+    python_name: Callable[[str], str] = str,
 ) -> str:
     """``a (x - x*)`` for the equation ``a x + c`` (x* = -c/a)."""
     x_star = -c / a
@@ -241,7 +287,7 @@ def _factored(
     coef = format_coefficient(a, se[0], digits=digits)
     shift = format_coefficient(abs(x_star), se_star, digits=digits)
     op = "-" if x_star >= 0 else "+"
-    var = _latex_name(name) if style == "latex" else name
+    var = {"latex": _latex_name, "python": python_name}.get(style, quote_name)(name)
     if style == "python":
         return f"{coef}*({var} {op} {shift})"
     if style == "latex":
@@ -317,10 +363,12 @@ def format_equations(
 def _rhs(terms, coef, se, rendered, name, style, digits, show_stderr, factored) -> str:
     active = np.flatnonzero(coef != 0)
     sel = {terms[i] for i in active}
-    if factored and sel == {"1", name} and not show_stderr:
-        i1, ix = terms.index("1"), terms.index(name)
+    own = quote_name(name)  # the term that is the state itself
+    if factored and sel == {"1", own} and not show_stderr:
+        i1, ix = terms.index("1"), terms.index(own)
         errs = (None, None) if se is None else (float(se[ix]), float(se[i1]))
-        return _factored(float(coef[ix]), float(coef[i1]), errs, name, style, digits)
+        namer = _python_namer(_variables(terms, [name]))
+        return _factored(float(coef[ix]), float(coef[i1]), errs, name, style, digits, namer)
     pieces = []
     for i in active:
         s = None if se is None else float(se[i])

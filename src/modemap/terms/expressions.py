@@ -6,11 +6,17 @@ Custom candidate terms are written in a small grammar of our own::
     product := unary (("*" | "/") unary)*
     unary   := "-" unary | power
     power   := atom ("^" unary)?          # right-associative: x^2^3 = x^(2^3)
-    atom    := NUMBER | NAME | FUNC "(" expr ")" | "(" expr ")"
+    atom    := NUMBER | NAME | QUOTED | FUNC "(" expr ")" | "(" expr ")"
 
 ``NUMBER`` is a decimal literal such as ``2``, ``0.5``, ``.5`` or ``1e-3``;
-``NAME`` is one of the given variables; ``FUNC`` is one of ``sin cos exp log
-sqrt abs tanh sign``.  ``-x^2`` means ``-(x^2)``.  Python's ``**`` is rejected
+``NAME`` is one of the given variables written bare, which works for names made
+of letters, digits and ``_`` not starting with a digit; ``QUOTED`` is any
+variable name between backticks, a backtick inside written twice:
+`` `Tank Level` ``, `` `LT-101.PV` ``, `` `Level (m)` ``, `` `2` ``, `` `a``b` `` (the
+name ``a`b``).  A quoted name is always a variable, never a function or a number.
+``FUNC`` is one of ``sin cos exp log sqrt abs tanh sign``; a bare function name
+is a function only when ``(`` follows it, so a variable may be called ``sin``.
+``-x^2`` means ``-(x^2)``.  Python's ``**`` is rejected
 with a hint to write ``^``.  Nothing else is accepted: no attribute access,
 indexing, strings, keywords, commas or statements.  The text is never handed
 to Python's ``eval``/``exec``/``compile``: a hand-written tokenizer and a
@@ -19,11 +25,17 @@ recursive-descent parser build a small immutable tree, evaluated with numpy.
 The tree is simplified lightly while it is built (constant folding of the
 arithmetic operators, ``0*x -> 0``, ``1*x -> x``, ``x+0 -> x``, ``x^1 -> x``,
 ``x^0 -> 1``), and ``str(expr)`` prints a canonical normal form with the
-fewest parentheses that keep the tree: ``parse(str(e), vars) == e``.
+fewest parentheses that keep the tree: ``parse(str(e), vars) == e``.  Names are
+printed bare when they can be (:func:`quote_name`), so terms over plain names
+read as they always did.
+
+Variable names may be any non-empty text of at most :data:`MAX_NAME_LENGTH`
+characters; they must be distinct.
 """
 
 from __future__ import annotations
 
+import itertools
 import math
 import re
 from collections.abc import Callable, Sequence
@@ -35,6 +47,7 @@ from modemap._exceptions import ExpressionError
 
 __all__ = [
     "FUNCTIONS",
+    "MAX_NAME_LENGTH",
     "BinOp",
     "Call",
     "Const",
@@ -43,6 +56,9 @@ __all__ = [
     "Var",
     "check_variable_names",
     "parse",
+    "quote_name",
+    "term_names",
+    "variable_of",
 ]
 
 FUNCTIONS: dict[str, Callable[[np.ndarray], np.ndarray]] = {
@@ -58,7 +74,9 @@ FUNCTIONS: dict[str, Callable[[np.ndarray], np.ndarray]] = {
 
 _IDENT = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 _NUMBER = re.compile(r"(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
-_MAX_LENGTH = 10_000
+MAX_NAME_LENGTH = 1000
+"""Longest variable name (characters): canonical terms over such names stay parseable."""
+_MAX_LENGTH = 100_000  # characters of one term: 10 quoted names of the longest length fit
 _MAX_DEPTH = 50
 _MAX_TOKENS = 201  # symbols in one term, plus the end marker
 _MAX_TREE_DEPTH = 40  # keeps printing and differentiation far from Python's recursion limit
@@ -165,7 +183,7 @@ class Var(Expr):
         found[self.name] = self.index
 
     def __str__(self) -> str:
-        return self.name
+        return quote_name(self.name)
 
 
 @dataclass(frozen=True)
@@ -402,25 +420,51 @@ class _Token:
     column: int  # 1-based
 
 
+def quote_name(name: str) -> str:
+    """A variable name as terms write it: bare when it can be, else between backticks.
+
+    A name of letters, digits and ``_`` not starting with a digit is written as it
+    is (``x``, ``T_in``, ``sin``); any other is put between backticks with each
+    backtick inside doubled: ``Tank Level`` -> `` `Tank Level` ``.
+
+    Examples
+    --------
+    >>> quote_name("T_in"), quote_name("LT-101.PV"), quote_name("a`b")
+    ('T_in', '`LT-101.PV`', '`a``b`')
+    """
+    if _IDENT.fullmatch(name):
+        return name
+    return "`" + name.replace("`", "``") + "`"
+
+
+def _shown(name: str) -> str:
+    """A name for messages: ``'x'`` or `` `Tank Level` ``."""
+    quoted = quote_name(name)
+    return f"'{name}'" if quoted == name else quoted
+
+
 def check_variable_names(variables: Sequence[str]) -> tuple[str, ...]:
-    """Validate variable names (identifiers, unique) and return them as a tuple.
+    """Validate variable names (non-empty text, unique) and return them as a tuple.
 
     Raises
     ------
     ExpressionError
-        If a name is not an identifier ``[A-Za-z_][A-Za-z0-9_]*`` or repeats.
+        If a name is not a string, is empty or blank, is longer than
+        :data:`MAX_NAME_LENGTH` characters, or repeats.
     """
     names = tuple(variables)
     for name in names:
-        if not isinstance(name, str) or not _IDENT.fullmatch(name):
+        if not isinstance(name, str) or not name.strip():
+            raise ExpressionError(f"variable name {name!r} is empty; name the column")
+        if len(name) > MAX_NAME_LENGTH:
             raise ExpressionError(
-                f"variable name {name!r} is not a valid identifier for terms (letters, digits "
-                "and '_', not starting with a digit); rename the column"
+                f"variable name {name[:40]!r}... has {len(name)} characters; at most "
+                f"{MAX_NAME_LENGTH} are allowed"
             )
     seen: set[str] = set()
     for name in names:
         if name in seen:
-            raise ExpressionError(f"variable name '{name}' appears twice")
+            raise ExpressionError(f"variable name {_shown(name)} appears twice")
         seen.add(name)
     return names
 
@@ -440,6 +484,10 @@ def _tokenize(text: str) -> list[_Token]:
             tokens.append(_Token("op", ch, column))
             pos += 1
             continue
+        if ch == "`":
+            name, pos = _quoted(text, pos)
+            tokens.append(_Token("quoted", name, column))
+            continue
         match = _NUMBER.match(text, pos) or _IDENT.match(text, pos)
         if match is None:
             raise _error(text, column, f"unexpected character {ch!r}")
@@ -448,6 +496,22 @@ def _tokenize(text: str) -> list[_Token]:
         pos = match.end()
     tokens.append(_Token("end", "", len(text) + 1))
     return tokens
+
+
+def _quoted(text: str, start: int) -> tuple[str, int]:
+    """The name quoted at ``text[start] == '`'`` and the position after its closing quote."""
+    parts: list[str] = []
+    pos = start + 1
+    while True:
+        end = text.find("`", pos)
+        if end < 0:
+            raise _error(text, start + 1, "quoted name is not closed (no matching '`')")
+        parts.append(text[pos:end])
+        if text.startswith("``", end):  # a doubled backtick is one backtick of the name
+            parts.append("`")
+            pos = end + 2
+            continue
+        return "".join(parts), end + 1
 
 
 def _error(text: str, column: int, message: str) -> ExpressionError:
@@ -477,7 +541,12 @@ class _Parser:
         return token
 
     def fail(self, token: _Token, expected: str) -> ExpressionError:
-        found = "end of input" if token.kind == "end" else repr(token.text)
+        if token.kind == "end":
+            found = "end of input"
+        elif token.kind == "quoted":
+            found = repr(quote_name(token.text))
+        else:
+            found = repr(token.text)
         return _error(self.text, token.column, f"expected {expected}, found {found}")
 
     def parse(self) -> Expr:
@@ -540,6 +609,10 @@ class _Parser:
             return Const(value)
         if token.kind == "name":
             return self.name(token)
+        if token.kind == "quoted":
+            if token.text in self.variables:
+                return Var(token.text, self.variables[token.text])
+            raise _error(self.text, token.column, self.unknown(token.text))
         if token.kind == "op" and token.text == "(":
             inner = self.expr()
             self.expect(")")
@@ -564,10 +637,11 @@ class _Parser:
             return Var(token.text, self.variables[token.text])
         if token.text in FUNCTIONS:
             raise _error(self.text, token.column, f"expected '(' after function '{token.text}'")
-        allowed = ", ".join(self.variables) or "(none)"
-        raise _error(
-            self.text, token.column, f"unknown name '{token.text}'; variables are {allowed}"
-        )
+        raise _error(self.text, token.column, self.unknown(token.text))
+
+    def unknown(self, name: str) -> str:
+        allowed = ", ".join(quote_name(v) for v in self.variables) or "(none)"
+        return f"unknown name {_shown(name)}; variables are {allowed}"
 
     def expect(self, symbol: str) -> None:
         token = self.peek()
@@ -611,6 +685,39 @@ def parse(text: str, variables: Sequence[str]) -> Expr:
             f"{_MAX_TREE_DEPTH}); split it into several terms"
         )
     return expr
+
+
+def variable_of(term: str) -> str | None:
+    """The variable a canonical term is, or None: ``"x"`` -> ``"x"``,
+    ``"`Tank Level`"`` -> ``"Tank Level"``, ``"x^2"`` / ``"1"`` / ``"sin(x)"`` -> None."""
+    if term.startswith("`"):
+        try:
+            name, end = _quoted(term, 0)
+        except ExpressionError:
+            return None
+        return name if end == len(term) and quote_name(name) == term else None
+    return term if _IDENT.fullmatch(term) else None
+
+
+def term_names(text: str) -> list[str]:
+    """Names of the variables a term text mentions, in order of first appearance.
+
+    Reads the text with the grammar's tokenizer, without a variable list: every quoted
+    name, and every bare name not followed by ``(``.  ``"x^2*`Tank Level`"`` gives
+    ``["x", "Tank Level"]``; ``"sin(x)"`` gives ``["x"]``.
+
+    Raises
+    ------
+    ExpressionError
+        On text the tokenizer cannot read.
+    """
+    tokens = _tokenize(text)
+    names: list[str] = []
+    for token, after in itertools.pairwise(tokens):
+        is_call = token.kind == "name" and after.kind == "op" and after.text == "("
+        if token.kind in ("name", "quoted") and not is_call and token.text not in names:
+            names.append(token.text)
+    return names
 
 
 def _tree_depth(expr: Expr) -> int:

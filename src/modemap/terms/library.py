@@ -10,6 +10,8 @@ strings:
   ``1, x, y, x^2, x*y, y^2``; variables inside a product appear in the order of
   the variable list (``x^2*u``);
 * ``sin(v)``, ``cos(v)`` for each variable named in ``trig``;
+* names that are not plain identifiers written between backticks
+  (``"`Tank Level`^2*u"``, see :func:`modemap.terms.expressions.quote_name`);
 * custom expressions in the grammar of :mod:`modemap.terms.expressions`, printed in
   its normal form (a custom term equal to an existing one is dropped; a
   custom product of variables is recognised as a monomial, so ``"y*x"`` is the
@@ -24,6 +26,7 @@ size of the data.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from functools import lru_cache
 from itertools import combinations_with_replacement
 
 import numpy as np
@@ -31,9 +34,24 @@ from sklearn.base import BaseEstimator
 from sklearn.exceptions import NotFittedError
 
 from modemap._exceptions import DataError, ExpressionError
-from modemap.terms.expressions import BinOp, Call, Const, Expr, Var, check_variable_names, parse
+from modemap.terms.expressions import (
+    BinOp,
+    Call,
+    Const,
+    Expr,
+    Var,
+    check_variable_names,
+    parse,
+    quote_name,
+)
 
-__all__ = ["TermLibrary", "evaluate_terms", "monomial_name"]
+__all__ = [
+    "TermLibrary",
+    "canonical_term",
+    "evaluate_terms",
+    "monomial_exponents",
+    "monomial_name",
+]
 
 _CHUNK = 8192
 Monomial = tuple[int, ...]  # sorted variable indices with repetition: x^2*y -> (0, 0, 1)
@@ -42,14 +60,16 @@ Monomial = tuple[int, ...]  # sorted variable indices with repetition: x^2*y -> 
 def monomial_name(monomial: Monomial, variables: Sequence[str]) -> str:
     """Canonical name of a monomial given as sorted variable indices.
 
-    ``()`` is ``"1"``; ``(0, 0, 2)`` over ``("x", "y", "u")`` is ``"x^2*u"``.
+    ``()`` is ``"1"``; ``(0, 0, 2)`` over ``("x", "y", "u")`` is ``"x^2*u"``.  Names
+    that are not plain identifiers are quoted (``"`Tank Level`^2"``).
     """
     if not monomial:
         return "1"
     parts = []
     for index in sorted(set(monomial)):
         power = monomial.count(index)
-        parts.append(variables[index] if power == 1 else f"{variables[index]}^{power}")
+        name = quote_name(variables[index])
+        parts.append(name if power == 1 else f"{name}^{power}")
     return "*".join(parts)
 
 
@@ -70,6 +90,25 @@ def _as_monomial(expr: Expr) -> Monomial | None:
             return None
         return tuple(sorted(base * int(power)))
     return None
+
+
+@lru_cache(maxsize=4096)
+def _exponents(term: str, variables: tuple[str, ...]) -> tuple[int, ...] | None:
+    if term == "1":
+        return (0,) * len(variables)
+    try:
+        monomial = _as_monomial(parse(term, variables))
+    except ExpressionError:
+        return None
+    if monomial is None:
+        return None
+    return tuple(monomial.count(i) for i in range(len(variables)))
+
+
+def monomial_exponents(term: str, variables: Sequence[str]) -> tuple[int, ...] | None:
+    """Exponent of each variable in a monomial term (``1``, ``x``, ``x^2*`Tank Level```),
+    or None for a term that is not a monomial of the variables (``sin(x)``, ``2*x``)."""
+    return _exponents(term, tuple(variables))
 
 
 def _as_trig(expr: Expr) -> tuple[str, int] | None:
@@ -147,7 +186,7 @@ class TermLibrary(BaseEstimator):
             kinds.append(("mono", monomial))
         for name in _as_names(self.trig):
             for func in ("sin", "cos"):
-                terms.append(f"{func}({name})")
+                terms.append(f"{func}({quote_name(name)})")
                 kinds.append(("trig", func, names.index(name)))
         for text in _as_names(self.custom):
             name, kind = _custom_term(text, names)
@@ -330,6 +369,11 @@ def _as_names(value: Sequence[str] | str | None) -> tuple[str, ...]:
     if isinstance(value, str):
         return (value,)
     return tuple(value)
+
+
+def canonical_term(text: str, variables: Sequence[str]) -> str:
+    """The canonical string of a term written in the grammar (``"y*x"`` -> ``"x*y"``)."""
+    return _custom_term(text, tuple(variables))[0]
 
 
 def _custom_term(text: str, names: tuple[str, ...]) -> tuple[str, tuple]:
