@@ -11,7 +11,8 @@ from sklearn.linear_model import LogisticRegression
 
 from modemap import FitError, ParameterError
 from modemap.model.equilibria import place_equilibria
-from modemap.model.guards import SwitchingSurfaces, guard_text, predict_labels
+from modemap.model.guard_rules import guard_text, predict_labels
+from modemap.model.guards import SwitchingSurfaces
 from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
 from modemap.simulation.simulator import simulate
 

@@ -33,7 +33,7 @@ from scipy.optimize import root
 from scipy.stats import qmc
 
 from modemap._exceptions import FitError
-from modemap.model.guards import guard_values
+from modemap.model.guard_rules import guard_values
 from modemap.model.hybrid import FORMS, Equilibrium, Guard, HybridModel, RegimeModel
 
 __all__ = [

@@ -54,7 +54,7 @@ def printed_numbers(final: Guard, guard: Guard, one_variable: bool) -> np.ndarra
 
     A one-variable threshold: ``[threshold]``.  A surface: the weights of ``final``'s
     non-zero terms and the offset, divided by the norm of the weights (a unit normal), as
-    :func:`modemap.model.guards.guard_text` prints them.  NaN where ``guard`` lost the term.
+    :func:`modemap.model.guard_rules.guard_text` prints them.  NaN where ``guard`` lost the term.
     """
     w = np.asarray(guard.weights, dtype=float)
     nz = np.flatnonzero(np.asarray(final.weights, dtype=float) != 0)
