@@ -338,7 +338,7 @@ def _bounds(
             a, b = float(pair[0]), float(pair[1])
             span = max(b - a, 1e-12 * max(abs(a), abs(b), 1.0))
             lo[j], hi[j] = a - blowup * span, b + blowup * span
-            scale[j] = span
+            scale[j] = (hi[j] - lo[j]) / (1 + 2 * blowup)  # the span, as rounded before
             continue
         seen = _centroid_values(cents, j)
         if seen.size:
