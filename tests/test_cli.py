@@ -278,7 +278,8 @@ def test_every_command_help_has_an_example(command, capsys):
     assert "examples:\n  modemap " + command in out
 
 
-def test_view_of_a_missing_folder_says_not_found(tmp_path, capsys):
+def test_view_of_a_missing_folder_says_not_found(tmp_path, capsys, monkeypatch):
+    monkeypatch.setattr("modemap.app.cli._tty", lambda stream: True)  # as if in a terminal
     err = _fail(capsys, ["view", str(tmp_path / "nope_dir")])
     assert "nope_dir: not found" in err
 

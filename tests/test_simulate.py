@@ -276,3 +276,105 @@ def test_linear_hold_input_matches_interpolated_reference(nonlinear):
         method="DOP853", rtol=1e-12, atol=1e-12, max_step=0.05,
     )  # fmt: skip
     np.testing.assert_allclose(res.states[:, 0], ref.y[0], atol=1e-7)
+
+
+# -- every run ends: blow-up box without a data range, budgets, switching loops ------------
+
+
+def riccati(data_range=None, metadata=None) -> HybridModel:
+    """x' = x^2: from x0 = 1 the solution 1 / (1 - t) blows up at t = 1 (common practice)."""
+    return HybridModel(
+        states=["x"], inputs=[], form="continuous", regimes=[regime(0, ["x^2"], [1.0])],
+        data_range=data_range or {}, metadata=metadata or {},
+    )  # fmt: skip
+
+
+def test_blowup_without_a_data_range_stops_at_the_default_box():
+    # box: x0 +- 1e6 * max(1, |x0|) = [-999999, 1000001]; 1 / (1 - t) = 1000001 at
+    # t = 1 - 1/1000001 (worked by hand).  Near the singularity the solver's dense output
+    # overshoots, so the stop is located within 1e-4 before it, never after t = 1.
+    t = np.linspace(0.0, 2.0, 201)
+    res = simulate(riccati(), t, [1.0])
+    assert res.status == 1 and "blow-up" in res.message
+    t_stop = float(res.message.split("t=")[1].split(":")[0])
+    assert 1 - 1e-4 < t_stop <= 1 - 1 / 1000001
+    assert np.all(np.isnan(res.states[t > 1.0, 0]))
+
+
+def test_blowup_without_a_data_range_falls_back_to_the_training_centroids():
+    # x' = x from 1 with centroids 0 and 2: span max(2 - 0, 2, 1) = 2, box [-20, 22];
+    # exp(t) reaches 22 at ln 22 (common practice)
+    model = HybridModel(
+        states=["x"], inputs=[], form="continuous", regimes=[regime(0, ["x", "x^2"], [1.0, 0.0])],
+        data_range={"x": (float("nan"), float("nan"))},
+        metadata={"regime_centroids": {"0": [0.0], "1": [2.0]}},
+    )  # fmt: skip
+    t = np.linspace(0.0, 5.0, 501)
+    res = simulate(model, t, [1.0])
+    assert res.status == 1
+    assert t[np.isfinite(res.states[:, 0])][-1] == pytest.approx(np.log(22.0), abs=0.011)
+
+
+def fast_oscillator(omega: float) -> HybridModel:
+    # x' = -omega y, y' = omega x (+ a zero x^2 term: the ODE-solver path)
+    reg = regime(0, ["x", "y", "x^2"], [[0, omega], [-omega, 0], [0, 0]])
+    return HybridModel(
+        states=["x", "y"], inputs=[], form="continuous", regimes=[reg],
+        data_range={"x": (-1.0, 1.0), "y": (-1.0, 1.0)},
+    )  # fmt: skip
+
+
+def test_fast_oscillator_over_a_long_horizon_stops_at_the_step_budget():
+    # 1e6 rad/s over 1000 s is 1.6e8 periods: far beyond any budget
+    t = np.linspace(0.0, 1000.0, 11)
+    res = simulate(fast_oscillator(1e6), t, [1.0, 0.0], max_nfev=2000)
+    assert res.status == 3 and "step budget of 2000" in res.message
+    assert res.nfev == 2001 and np.all(res.regimes[1:] == -1)
+
+
+def test_step_budget_default_leaves_ordinary_runs_alone():
+    # omega = 1: x = cos t, y = sin t (common practice), finished well inside the budget
+    t = np.linspace(0.0, 20.0, 201)
+    res = simulate(fast_oscillator(1.0), t, [1.0, 0.0], rtol=1e-9, atol=1e-11)
+    assert res.status == 0 and res.nfev < 20_000
+    np.testing.assert_allclose(res.states[:, 0], np.cos(t), atol=1e-6)
+
+
+def test_wall_time_budget_stops_a_long_run():
+    t = np.linspace(0.0, 1000.0, 11)
+    res = simulate(fast_oscillator(1e6), t, [1.0, 0.0], max_nfev=10**9, max_seconds=0.2)
+    assert res.status == 3 and "wall-time budget of 0.2 s" in res.message
+
+
+def test_a_grid_far_finer_than_the_model_step_is_refused_or_bounded():
+    model = relaxation_oscillator()
+    t = np.arange(100) * 1e-300
+    with pytest.raises(SimulationError, match=r"step of 1e-300 after sample \d+ is below 1e-12"):
+        simulate(HybridModel(**{**model.__dict__, "step": 0.1}), t, [2.0, 0.0])
+    res = simulate(model, t, [2.0, 0.0])  # no sampling step recorded: the budget ends it
+    assert res.status == 3 and "step budget of 22000" in res.message
+
+
+@pytest.mark.parametrize("form", ["continuous", "discrete"])
+@pytest.mark.parametrize("terms", [["1"], ["1", "x^2"]])
+def test_guards_forming_a_cycle_at_one_instant_stop_with_a_message(form, terms):
+    # 0 -> 1 and 1 -> 0 on the same condition x > -1: both fire at once from x0 = 0
+    coef = [1.0] + [0.0] * (len(terms) - 1)
+    regs = [regime(0, terms, coef), regime(1, terms, coef)]
+    guards = [Guard(k, 1 - k, ["x"], np.array([1.0]), 1.0) for k in (0, 1)]
+    model = HybridModel(
+        states=["x"], inputs=[], form=form, regimes=regs, guards=guards, step=1.0,
+        data_range={"x": (-1.0, 1.0)},
+    )  # fmt: skip
+    res = simulate(model, np.arange(10.0), [0.0], regime0=0)
+    assert res.status == 2
+    assert "switching loop at one instant (regimes 0 -> 1 -> 0" in res.message
+
+
+def test_budget_options_are_checked():
+    from modemap import ParameterError
+
+    with pytest.raises(ParameterError, match="max_nfev"):
+        simulate(relaxation_oscillator(), np.arange(3.0), [0.0, 0.0], max_nfev=0)
+    with pytest.raises(ParameterError, match="max_seconds"):
+        simulate(relaxation_oscillator(), np.arange(3.0), [0.0, 0.0], max_seconds=-1.0)

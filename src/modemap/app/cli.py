@@ -530,6 +530,8 @@ def _run_fit(args: argparse.Namespace) -> int:
     from modemap.report.output import check_output_folder, write_fit_outputs
 
     check_output_folder(args.out, args.data)  # before the fit, not after it
+    if args.view:
+        _need_terminal("fit --view")
     ident = identifier_from_args(args)
     ds = load_dataset(args)
     terminal = sys.stderr.isatty()
@@ -635,6 +637,12 @@ def _add_simulate(subparsers: argparse._SubParsersAction) -> None:
     )
     parser.add_argument("--out", required=True, metavar="FILE", help="output CSV")
     add_reading_options(parser)
+    parser.add_argument(
+        "--partial",
+        action="store_true",
+        help="when a run stops early (blow-up, chattering, budget), still write the CSV "
+        "(NaN states and regime -1 after the stop) instead of refusing with exit code 2",
+    )
     _add_debug(parser)
     parser.set_defaults(handler=_run_simulate)
 
@@ -666,8 +674,9 @@ def _run_simulate(args: argparse.Namespace) -> int:
     from modemap._atomic import atomic_write
     from modemap.data.stamps import format_stamps, stamps_at
     from modemap.model.modelfile import load_model
-    from modemap.simulation.simulator import simulate
+    from modemap.report.output import recover_output_folder
 
+    recover_output_folder(os.path.dirname(os.path.abspath(args.model)))  # a write cut short
     model = load_model(args.model)
     peeked = peek_columns(args.data, **_csv_format(args))
     columns = [h for h, _ in peeked]
@@ -681,12 +690,17 @@ def _run_simulate(args: argparse.Namespace) -> int:
     time = args.time or _guess_time(peeked, str(args.data))
     ds = _read_grid(args.data, time, model, has_states, args)
     initial = _parse_initial(args.initial, model.states) if args.initial else None
-    frames = []
+    frames, stopped = [], []
     for r in ds.runs:
         x0 = np.array([initial[s] for s in model.states]) if initial is not None else r.states[0]
-        result = simulate(model, r.time, x0, r.inputs if model.inputs else None, args.regime)
+        result = _simulate_run(args, model, r, x0)
         if result.status != 0:
-            print(f"modemap: run '{r.name}': {result.message}", file=sys.stderr)
+            if not args.partial:
+                raise ModemapError(
+                    f"{args.model}: run '{r.name}': {result.message}; nothing written "
+                    f"(--partial writes the samples up to the stop)"
+                )
+            stopped.append(f"modemap: warning: run '{r.name}': {result.message}")
         frame = {"run": r.origin, model.time_name: result.time}
         stamps = stamps_at(r, result.time)
         if stamps is not None:  # the input's date-time stamps beside the numeric time
@@ -697,8 +711,22 @@ def _run_simulate(args: argparse.Namespace) -> int:
     table = pd.concat(frames, ignore_index=True)
     with atomic_write(args.out) as fh:
         table.to_csv(fh, index=False, float_format="%.10g")
-    print(f"simulated {len(ds.runs)} run(s), {len(table)} samples; wrote {args.out}")
+    for line in stopped:
+        print(line, file=sys.stderr)
+    early = f" ({len(stopped)} stopped early: NaN states after the stop)" if stopped else ""
+    print(f"simulated {len(ds.runs)} run(s){early}, {len(table)} samples; wrote {args.out}")
     return 0
+
+
+def _simulate_run(args: argparse.Namespace, model, run, x0):
+    """One run through the simulator; a request it refuses names the data file and run."""
+    from modemap._exceptions import SimulationError
+    from modemap.simulation.simulator import simulate
+
+    try:
+        return simulate(model, run.time, x0, run.inputs if model.inputs else None, args.regime)
+    except SimulationError as exc:
+        raise SimulationError(f"{args.data}: run '{run.name}': {exc}") from None
 
 
 def _read_grid(path: str, time: str, model, has_states: bool, args) -> Dataset:
@@ -749,10 +777,32 @@ def _add_view(subparsers: argparse._SubParsersAction) -> None:
     parser.set_defaults(handler=_run_view)
 
 
+def _need_terminal(command: str) -> None:
+    """Refuse a full-screen command when stdin or stdout is not a terminal (a pipe, a file,
+    a batch job): the dashboard would wait for keys that never come."""
+    closed = [name for name, f in (("stdin", sys.stdin), ("stdout", sys.stdout)) if not _tty(f)]
+    if closed:
+        raise ModemapError(
+            f"{command}: the dashboard needs a terminal, but {' and '.join(closed)} "
+            f"{'is' if len(closed) == 1 else 'are'} not one; run it in a terminal "
+            f"('modemap check', 'fit' and 'simulate' work in scripts)"
+        )
+
+
+def _tty(stream) -> bool:
+    try:
+        return stream is not None and stream.isatty()
+    except (AttributeError, ValueError):  # replaced or closed streams
+        return False
+
+
 def _run_view(args: argparse.Namespace) -> int:
+    _need_terminal("view")
     from modemap.app.tui import run_view, run_view_data
+    from modemap.report.output import recover_output_folder
 
     if len(args.data) == 1 and os.path.isdir(args.data[0]):
+        recover_output_folder(args.data[0])  # finish or undo a write a kill cut short
         run_view(args.data[0])
         return 0
     missing = [p for p in args.data if not os.path.exists(p)]

@@ -1,27 +1,34 @@
 """Write the results of a fit: ``model.json``, ``labels.csv`` and ``report.md``.
 
-All three are rendered in memory first, then written to temporary files in the
-output folder, then renamed into place.  A failure before the renames leaves
-the folder exactly as it was (earlier results included); nothing half-written
-is ever left under a final name.
+All three are rendered in memory first, then written as one unit by
+:func:`modemap._atomic.write_file_set`: staged in ``DIR/.modemap-write/`` and swapped
+in under a journal, so the folder holds the complete earlier set or the complete new
+set, never a mix, even when a rename fails midway or the process is killed between two
+files.  A swap cut short by a kill is undone by the next write into the folder, or by
+:func:`recover_output_folder` (which ``modemap view`` and ``modemap simulate`` call
+before they read a results folder).
 """
 
 from __future__ import annotations
 
 import contextlib
 import os
-import tempfile
 from collections.abc import Sequence
 from pathlib import Path
 
 import pandas as pd
 
-from modemap._atomic import current_umask
+from modemap._atomic import WORK_FOLDER, recover_file_set, write_file_set
 from modemap._exceptions import ModemapError
 from modemap.data.dataset import Dataset
 from modemap.model.hybrid import HybridModel
 
-__all__ = ["RESULT_FILES", "check_output_folder", "write_fit_outputs"]
+__all__ = [
+    "RESULT_FILES",
+    "check_output_folder",
+    "recover_output_folder",
+    "write_fit_outputs",
+]
 
 RESULT_FILES = ("model.json", "labels.csv", "report.md")
 
@@ -32,8 +39,10 @@ def check_output_folder(
     """The output folder, refused before any work when writing there could lose data.
 
     Refused: an empty name (it would mean the current folder by accident), a path that
-    exists and is not a folder, and a folder where one of the result files
-    (:data:`RESULT_FILES`) would replace a file the run reads (``read``: the data files).
+    exists and is not a folder, a folder where a result file's name
+    (:data:`RESULT_FILES`) is taken by a folder, and a folder where one of the result
+    files would replace a file the run reads (``read``: the data files).  Nothing is
+    changed on disk.
 
     Raises
     ------
@@ -47,6 +56,11 @@ def check_output_folder(
         raise ModemapError(f"{out}: exists and is not a folder")
     for name in RESULT_FILES:
         target = out / name
+        if target.is_dir():
+            raise ModemapError(
+                f"{target}: is a folder where a result file goes; move it or choose another "
+                f"output folder"
+            )
         for source in read:
             source = Path(source)
             if target.exists() and source.exists() and os.path.samefile(target, source):
@@ -97,24 +111,31 @@ def write_fit_outputs(
             model, dataset_summary=summarize(dataset) if dataset is not None else None
         ),
     }
-    out.mkdir(parents=True, exist_ok=True)
-    temps: dict[str, str] = {}
-    try:
-        for name, text in texts.items():
-            fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=out)
-            temps[name] = tmp
-            with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-                fh.write(text)
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.chmod(tmp, 0o666 & ~current_umask())
-        for name, tmp in temps.items():
-            os.replace(tmp, out / name)
-    finally:
-        for tmp in temps.values():
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(tmp)
-    return [out / name for name in RESULT_FILES]
+    paths = write_file_set(out, texts)
+    _remove_stale_temporaries(out)
+    return paths
+
+
+def recover_output_folder(directory: str | os.PathLike[str]) -> str:
+    """Finish or undo a write of the results into ``directory`` that a kill cut short.
+
+    Call before reading a results folder.  Returns ``"none"``, ``"cleaned"`` or
+    ``"rolled back"`` (:func:`modemap._atomic.recover_file_set`); a folder that does not
+    exist gives ``"none"``.
+    """
+    out = Path(directory)
+    if not (out / WORK_FOLDER).exists():
+        return "none"
+    return recover_file_set(out)
+
+
+def _remove_stale_temporaries(out: Path) -> None:
+    """Temporaries of a result name left by a killed single-file write (``.model.json.*.tmp``:
+    :func:`modemap._atomic.atomic_write`, or this writer before result sets)."""
+    for name in RESULT_FILES:
+        for tmp in out.glob(f".{name}.*.tmp"):
+            with contextlib.suppress(OSError):
+                tmp.unlink()
 
 
 def _label_columns(labels: pd.DataFrame) -> list[str]:

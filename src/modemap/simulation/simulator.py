@@ -51,11 +51,27 @@ pairs the variables at sample ``k`` with the regime observed at ``k``.
 
 Protection
 ----------
-* Blow-up: a state leaving ``[min - blowup*range, max + blowup*range]`` of the
-  model's ``data_range`` (or becoming non-finite) stops the run, status 1.
+Every run ends, with a status and a message as :func:`scipy.integrate.solve_ivp`
+reports them:
+
+* Blow-up: a state leaving ``[min - blowup*range, max + blowup*range]`` (or becoming
+  non-finite) stops the run, status 1.  ``min, max`` is the state's range in the
+  model's ``data_range`` (the training data); for a state without one, the span of
+  the regimes' training centroids (``metadata["regime_centroids"]``) and the initial
+  value, with ``range`` at least the largest of their magnitudes and 1; with neither,
+  the initial value plus or minus ``DEFAULT_BOX`` (1e6) times ``max(1, |x0|)``.
 * Chattering: more than ``max_switch_rate`` switches per unit time over the
   last 10 switches (default cap: 2 per smallest sample step), or more than
-  ``n_regimes + 1`` switches at one instant, stops the run, status 2.
+  ``n_regimes + 1`` switches at one instant (guards that form a cycle all firing
+  at once), stops the run, status 2.
+* Budgets: more than ``max_nfev`` right-hand-side evaluations by the ODE solver
+  (default: 20,000 plus 20 per output sample) or more than ``max_seconds`` of wall
+  time (default 60 s) stops the run, status 3.  A fast oscillation over a long
+  horizon ends here.  (Re-simulating the runs of the reactor and water-heater demos
+  took 0.4 to 0.8 evaluations per sample.)  A time grid with a step below 1e-12 of
+  the model's sampling step is refused before the run
+  (:class:`~modemap.SimulationError`); without a sampling step in the model such a
+  grid ends at the budget.
 * Solver failure: status -1 with the solver's message.
 
 Samples after a stop hold NaN states and regime -1.
@@ -73,21 +89,26 @@ regime with the smallest largest guard value is used.
 
 from __future__ import annotations
 
+import time as _clock
 from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import integrate, linalg, optimize
 
 from modemap._exceptions import SimulationError
+from modemap._params import Interval, check_value
 from modemap.model.hybrid import HybridModel, RegimeModel
 from modemap.terms.expressions import quote_name
 from modemap.terms.library import TermLibrary
 
-__all__ = ["SimulationResult", "simulate"]
+__all__ = ["DEFAULT_BOX", "SimulationResult", "simulate"]
 
 _EPS_FIRE = 1e-9  # a guard must exceed this to fire at the very start of a stretch
 _CHATTER_WINDOW = 10
 _CHUNK = 4096  # largest block of exact steps between guard checks
+DEFAULT_BOX = 1e6  # blow-up half-width, in max(1, |x0|), for a state the model has no range of
+_NFEV_BASE, _NFEV_PER_SAMPLE = 20_000, 20  # default step budget
+_MIN_STEP_RATIO = 1e-12  # smallest time step accepted, relative to the model's sampling step
 
 
 @dataclass
@@ -105,8 +126,8 @@ class SimulationResult:
     switches : list of (float, int, int)
         ``(time, from, to)`` in order.
     status : int
-        0 finished, 1 stopped by blow-up, 2 stopped by the chattering cap,
-        -1 solver failure.
+        0 finished, 1 stopped by blow-up, 2 stopped by the chattering cap or a switching
+        loop at one instant, 3 stopped by the step or wall-time budget, -1 solver failure.
     message : str
     nfev : int
         Right-hand-side evaluations by the ODE solver (0 for exact steps).
@@ -254,6 +275,14 @@ def _check_request(
         raise SimulationError("time: need at least one finite time value")
     if time.size > 1 and np.any(np.diff(time) <= 0):
         raise SimulationError("time: values must be strictly increasing")
+    step = float(model.step) if np.isfinite(model.step) and model.step > 0 else None
+    if time.size > 1 and step is not None:
+        k = int(np.argmin(np.diff(time)))
+        if time[k + 1] - time[k] < _MIN_STEP_RATIO * step:
+            raise SimulationError(
+                f"time: step of {time[k + 1] - time[k]:g} after sample {k + 1} is below "
+                f"{_MIN_STEP_RATIO:g} of the model's sampling step {step:g}; use a coarser grid"
+            )
     x0 = np.asarray(x0, dtype=float).reshape(-1)
     if x0.size != ns:
         raise SimulationError(
@@ -292,15 +321,51 @@ def _hold_mask(U: np.ndarray, hold: str) -> np.ndarray:
     return np.array([np.unique(U[:, j]).size <= 2 for j in range(U.shape[1])], dtype=bool)
 
 
-def _bounds(model: HybridModel, blowup: float) -> tuple[np.ndarray, np.ndarray]:
-    lo = np.full(len(model.states), -np.inf)
-    hi = np.full(len(model.states), np.inf)
+def _bounds(
+    model: HybridModel, blowup: float, x0: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The blow-up box ``(lo, hi)`` per state and the scale of each state (for ``atol``).
+
+    See the module notes: the training range, else the regimes' centroids, else a wide
+    box around ``x0``.
+    """
+    ns = len(model.states)
+    lo, hi = np.empty(ns), np.empty(ns)
+    scale = np.maximum(np.abs(x0), 1.0)
+    cents = model.metadata.get("regime_centroids") if model.metadata else None
     for j, s in enumerate(model.states):
-        if s in model.data_range:
-            a, b = (float(v) for v in model.data_range[s])
+        pair = np.asarray(model.data_range.get(s, (np.nan, np.nan)), dtype=float)
+        if np.all(np.isfinite(pair)):
+            a, b = float(pair[0]), float(pair[1])
             span = max(b - a, 1e-12 * max(abs(a), abs(b), 1.0))
             lo[j], hi[j] = a - blowup * span, b + blowup * span
-    return lo, hi
+            scale[j] = (hi[j] - lo[j]) / (1 + 2 * blowup)  # the span, as rounded before
+            continue
+        seen = _centroid_values(cents, j)
+        if seen.size:
+            a, b = min(seen.min(), x0[j]), max(seen.max(), x0[j])
+            span = max(b - a, abs(a), abs(b), 1.0)
+            lo[j], hi[j] = a - blowup * span, b + blowup * span
+        else:
+            half = DEFAULT_BOX * max(1.0, abs(float(x0[j])))
+            lo[j], hi[j] = x0[j] - half, x0[j] + half
+    return lo, hi, scale
+
+
+def _centroid_values(cents: object, j: int) -> np.ndarray:
+    """The finite values of state ``j`` among the regimes' centroids (none when absent)."""
+    if not isinstance(cents, dict):
+        return np.zeros(0)
+    out = []
+    for values in cents.values():
+        if isinstance(values, list | tuple) and len(values) > j:
+            try:
+                v = float(values[j])
+            except (TypeError, ValueError):
+                continue
+            if np.isfinite(v):
+                out.append(v)
+    return np.array(out, dtype=float)
 
 
 def _initial_regime(model: HybridModel, regs: dict[int, _Regime], z0: np.ndarray) -> int:
@@ -323,12 +388,15 @@ def _initial_regime(model: HybridModel, regs: dict[int, _Regime], z0: np.ndarray
 class _Sim:
     """The state machine of one simulation (kept out of the public function)."""
 
-    def __init__(self, model, time, x0, U, zoh, *, rate, blowup, rtol, atol, method):
+    def __init__(self, model, time, x0, U, zoh, *, rate, blowup, rtol, atol, method, budget):
         self.model, self.time = model, time
         self.inp = _Inputs(time, U, zoh)
         self.regs = {r.id: _Regime(r, model) for r in model.regimes}
         self.ns = len(model.states)
-        self.lo, self.hi = _bounds(model, blowup)
+        self.lo, self.hi, scale = _bounds(model, blowup, x0)
+        self.max_nfev, max_seconds = budget
+        self.max_seconds = max_seconds
+        self.deadline = _clock.monotonic() + max_seconds if max_seconds is not None else None
         self.rtol, self.method = rtol, method
         self.h = np.diff(time)
         self.h_uniform = bool(
@@ -338,8 +406,6 @@ class _Sim:
             if reg.input_only and np.all(zoh):
                 Zu = np.hstack([np.zeros((time.size, self.ns)), U])
                 reg.fire_idx = np.flatnonzero(reg.guard_values(Zu).max(axis=1) > _EPS_FIRE)
-        scale = np.where(np.isfinite(self.hi - self.lo), (self.hi - self.lo) / (1 + 2 * blowup), 0)
-        scale = np.where(scale > 0, scale, np.maximum(np.abs(x0), 1.0))
         self.atol = rtol * scale if atol is None else atol
         min_step = float(np.min(np.diff(time))) if time.size > 1 else 1.0
         self.rate = float(rate) if rate is not None else 2.0 / min_step
@@ -354,6 +420,28 @@ class _Sim:
     def z(self, x: np.ndarray, u: np.ndarray) -> np.ndarray:
         return np.concatenate([x, u])
 
+    def check_time(self, t: float) -> None:
+        """Stop (status 3) once the wall-time budget is used up."""
+        if self.deadline is not None and _clock.monotonic() > self.deadline:
+            raise _Stop(
+                3,
+                f"stopped at t={t:g}: wall-time budget of {self.max_seconds:g} s used up "
+                f"(max_seconds)",
+            )
+
+    def check_nfev(self, t: float) -> None:
+        """Stop (status 3) once the solver has used its step budget; checks time too."""
+        self.nfev += 1
+        if self.nfev > self.max_nfev:
+            raise _Stop(
+                3,
+                f"stopped at t={t:g}: step budget of {self.max_nfev} right-hand-side "
+                f"evaluations used up (max_nfev); the model changes too fast for this "
+                f"time grid or horizon",
+            )
+        if self.nfev % 256 == 0:
+            self.check_time(t)
+
     def check_bounds(self, x: np.ndarray, t: float) -> None:
         if not np.all(np.isfinite(x)) or np.any(x < self.lo) or np.any(x > self.hi):
             raise _Stop(1, f"stopped at t={t:g}: state left the blow-up box (blowup factor)")
@@ -363,7 +451,12 @@ class _Sim:
         self.same_time = self.same_time + 1 if last is not None and t == last else 0
         self.switches.append((float(t), int(r), int(target)))
         if self.same_time > len(self.regs):
-            raise _Stop(2, f"stopped at t={t:g}: switching loop between regimes at one instant")
+            loop = [a for _, a, _ in self.switches[-self.same_time - 1 :]] + [int(target)]
+            raise _Stop(
+                2,
+                f"stopped at t={t:g}: switching loop at one instant (regimes "
+                f"{' -> '.join(str(r) for r in loop)} ...: guards that form a cycle all fire)",
+            )
         w = _CHATTER_WINDOW
         if len(self.switches) > w and t - self.switches[-w - 1][0] < w / self.rate:
             raise _Stop(
@@ -389,6 +482,7 @@ class _Sim:
         t, x, k = float(time[0]), x0.copy(), 0
         self.check_bounds(x, t)
         while k < n - 1:
+            self.check_time(t)
             r = self.immediate(t, x, r, k)
             reg = self.regs[r]
             if reg.affine:
@@ -563,6 +657,7 @@ class _Sim:
             return u_k
 
         def fun(tt, y):
+            self.check_nfev(tt)
             return reg.rhs.one(np.concatenate([y, u_of(tt)]))
 
         events = []
@@ -597,7 +692,6 @@ class _Sim:
         except (ValueError, FloatingPointError, np.linalg.LinAlgError) as exc:
             # e.g. event location on a right-hand side that stopped being finite
             raise _Stop(-1, f"solver failure at t={t:g}: {exc}") from None
-        self.nfev += int(sol.nfev)
         if sol.status == -1:
             raise _Stop(-1, f"solver failure at t={t:g}: {sol.message}")
         m = np.size(sol.t)
@@ -629,6 +723,7 @@ class _Sim:
         self.check_bounds(x0, float(self.time[0]))
         k, x = 0, x0.copy()
         while k < n - 1:
+            self.check_time(float(self.time[k]))
             reg = self.regs[r]
             stop = min(n - 1, k + reg.chunk)
             xs = self.map_steps(reg, x, k, stop)
@@ -649,7 +744,7 @@ class _Sim:
                 self.X[k] = np.nan
                 self.R[k] = -1
                 self.check_bounds(x, float(self.time[k]))
-            for _ in range(len(self.regs) + 1):
+            while True:  # a cycle of guards firing at once ends in switch()'s loop cap
                 g = self.regs[r].guard_values(Zb[f - 1][None])[0]
                 if g.size == 0 or g.max() <= 0:
                     break
@@ -688,6 +783,8 @@ def simulate(
     atol: float | np.ndarray | None = None,
     method: str = "auto",
     hold: str = "auto",
+    max_nfev: int | None = None,
+    max_seconds: float | None = 60.0,
 ) -> SimulationResult:
     """Simulate a hybrid model from ``x0`` on the time grid ``time``.
 
@@ -711,6 +808,12 @@ def simulate(
         ``"auto"`` or any :func:`scipy.integrate.solve_ivp` method name.
     hold : {"auto", "zoh", "linear"}
         Reconstruction of inputs between samples.
+    max_nfev : int, optional
+        Step budget: right-hand-side evaluations the ODE solver may use in all (default:
+        20,000 plus 20 per output sample); beyond it the run stops with status 3.
+    max_seconds : float or None, default 60
+        Wall-time budget of the whole simulation (None: no limit); beyond it the run
+        stops with status 3.
 
     Returns
     -------
@@ -723,9 +826,13 @@ def simulate(
     """
     time, x0, U = _check_request(model, time, x0, inputs)
     zoh = _hold_mask(U, hold)
+    check_value(max_nfev, [Interval(int, 1, None), None], "max_nfev", "simulate")
+    check_value(max_seconds, [Interval(float, 0, None, closed="neither"), None], "max_seconds")
+    if max_nfev is None:
+        max_nfev = _NFEV_BASE + _NFEV_PER_SAMPLE * time.size
     sim = _Sim(
         model, time, x0, U, zoh, rate=max_switch_rate, blowup=blowup, rtol=rtol, atol=atol,
-        method=method,
+        method=method, budget=(int(max_nfev), max_seconds),
     )  # fmt: skip
     if regime0 is None:
         regime0 = _initial_regime(model, sim.regs, np.concatenate([x0, U[0]]))
