@@ -272,6 +272,11 @@ def _add_fit(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
     parser.add_argument("--view", action="store_true", help="open the dashboard on the result")
     parser.add_argument("--quiet", action="store_true", help="no progress display")
+    parser.add_argument(
+        "--json",
+        action="store_true",
+        help="print a machine-readable summary of the fit on stdout (progress stays on stderr)",
+    )
     _add_debug(parser)
     parser.set_defaults(handler=_run_fit)
 
@@ -471,15 +476,40 @@ def _run_fit(args: argparse.Namespace) -> int:
     ident.model_.metadata["data"] = _data_record(args)
     paths = write_fit_outputs(args.out, ident.model_, ident.labels_, dataset=ds, read=args.data)
     model = ident.model_
-    print(
-        f"{model.n_regimes} regime(s), {len(model.guards)} guard(s); wrote "
-        + ", ".join(str(p) for p in paths)
-    )
+    if args.json:
+        print(json.dumps(fit_summary(model, paths), indent=2, allow_nan=False))
+    else:
+        print(
+            f"{model.n_regimes} regime(s), {len(model.guards)} guard(s); wrote "
+            + ", ".join(str(p) for p in paths)
+        )
     if args.view:
         from modemap.app.tui import run_view
 
         run_view(args.out)
     return 0
+
+
+def fit_summary(model, paths: Sequence[str | os.PathLike[str]]) -> dict:
+    """The ``fit --json`` summary: the model file's own sections (the same figures, built
+    by :func:`modemap.model.modelfile.model_to_dict`), the chosen degree and the files."""
+    from modemap.model.modelfile import model_to_dict
+
+    d = model_to_dict(model)
+    chosen = next((row for row in d["selection"] if row.get("chosen")), {})
+    return {
+        "n_regimes": model.n_regimes,
+        "form": d["form"],
+        "states": d["states"],
+        "inputs": d["inputs"],
+        "degree": chosen.get("degree"),
+        "regimes": d["regimes"],
+        "guard_kind": d["guard_kind"],
+        "guards": d["guards"],
+        "selection": d["selection"],
+        "validation": d["validation"],
+        "files": [str(p) for p in paths],
+    }
 
 
 def _data_record(args: argparse.Namespace) -> dict:
