@@ -94,3 +94,19 @@ def test_proposal_on_many_short_runs_matches_the_run_by_run_fit(monkeypatch) -> 
     monkeypatch.setattr("modemap.regimes.short_runs.MIN_BATCH", 10**9)  # hmmlearn only
     reference = propose(features, lengths, 2, seed=0)
     np.testing.assert_array_equal(labels, reference)
+
+
+@pytest.mark.parametrize("name", ["buck", "reactor", "water_heaters"])
+def test_the_bundled_demos_take_the_run_by_run_path(name) -> None:
+    # their runs are long: nothing is batched, so their fits are what they were before the
+    # batching (model files compared byte for byte when it was added)
+    from pathlib import Path
+
+    from modemap.data.intake import read_data
+
+    root = Path(__file__).resolve().parents[1] / "datasets"
+    states = {"buck": ["i_L", "v_C"], "reactor": ["C_A", "T"], "water_heaters": ["T"]}[name]
+    ds = read_data(root / f"{name}.csv", time="t", states=states, run="run")
+    lengths = np.array([r.n_samples for r in ds.runs])
+    assert not batched(lengths).any()
+    assert not batched(lengths - 1).any()  # discrete form: one row fewer per run

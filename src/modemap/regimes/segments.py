@@ -25,16 +25,29 @@ average) with its true labels: without these cuts the heater-off fit carried
 spurious ``T^2`` and ``w^2`` terms (the draw stepped every 12 samples on
 average, inside a 9-sample smoothing window); with them it kept ``T`` and
 ``T*w`` only.
+
+Many short stretches of the same length and settings (many short runs give tens of
+thousands) are differentiated together, as one array: central differences with NumPy's own
+formulas, term by term, which give each stretch exactly the numbers it gets alone, and
+Savitzky-Golay with SciPy's filter along the stacked axis, which agrees to round-off (its
+end-point polynomial fits are one least-squares solve for all stretches).  Checked against
+the one-stretch path in ``tests/test_regimes_segments.py``.  Only the stretches of short
+runs are batched, under the rule of the regime chain's recursions
+(:func:`modemap.regimes.short_runs.batched`: at least 16 runs of at most 64 samples), so data
+of a few long runs take the one-stretch path exactly as before; other methods always do.
 """
 
 from __future__ import annotations
 
+from collections import defaultdict
 from itertools import pairwise
 from typing import Any
 
 import numpy as np
+from scipy.signal import savgol_filter
 
-from modemap.data.derivatives import differentiate
+from modemap.data.derivatives import RECORD_ONLY, differentiate, is_uniform
+from modemap.regimes.short_runs import batched
 
 __all__ = ["segment_derivatives", "stepped_columns"]
 
@@ -77,15 +90,21 @@ def segment_derivatives(
     if len(per_run) != len(lengths):
         per_run = [settings] * len(lengths)
     steps = _input_steps(inputs, labels.size)
+    jobs: list[tuple[int, int, dict[str, Any]]] = []  # stretch rows a:b and its settings
+    targets: list[tuple[slice | int, slice | int]] = []  # rows of out <- rows of the result
+    together: list[bool] = []  # the stretch may be computed with others
+    short = batched(np.asarray(lengths)).tolist()
     offset = 0
-    for length, run_settings in zip(lengths, per_run, strict=True):
+    for length, run_settings, in_batch in zip(lengths, per_run, short, strict=True):
+        first = len(jobs)
         stop = offset + int(length)
         lab = labels[offset:stop]
         cuts = np.flatnonzero((lab[1:] != lab[:-1]) | steps[offset + 1 : stop]) + 1
-        edges = np.concatenate([[0], cuts, [lab.size]]) + offset
+        edges = (np.concatenate([[0], cuts, [lab.size]]) + offset).tolist()
         for i, (a, b) in enumerate(pairwise(edges)):
             if b - a >= 2:
-                out[a:b] = _stretch(time[a:b], states[a:b], run_settings)
+                jobs.append((a, b, run_settings))
+                targets.append((slice(a, b), slice(None)))
                 continue
             # one sample between an input step and a label change: the step is a fact, the
             # label change a hypothesis, so take the sample's derivative from the stretch on
@@ -93,15 +112,107 @@ def segment_derivatives(
             left_step = a > offset and steps[a]
             right_step = b < stop and steps[b]
             if left_step and not right_step and b < stop:
-                c = edges[i + 2]
-                out[a] = _stretch(time[a:c], states[a:c], run_settings)[0]
+                jobs.append((a, edges[i + 2], run_settings))
+                targets.append((a, 0))
             elif right_step and not left_step and a > offset:
-                c = edges[i - 1]
-                out[a] = _stretch(time[c:b], states[c:b], run_settings)[-1]
+                jobs.append((edges[i - 1], b, run_settings))
+                targets.append((a, -1))
             elif left_step and right_step:
                 # the input holds for this one interval only: its mean slope
                 out[a] = (states[b] - states[a]) / (time[b] - time[a])
+        together += [in_batch] * (len(jobs) - first)
         offset = stop
+    results = _stretches(time, states, jobs, together)
+    for (rows, pick), dx in zip(targets, results, strict=True):
+        out[rows] = dx[pick]
+    return out
+
+
+def _stretches(
+    time: np.ndarray,
+    states: np.ndarray,
+    jobs: list[tuple[int, int, dict[str, Any]]],
+    together: list[bool],
+) -> list[np.ndarray]:
+    """The derivative of each stretch ``(a, b, settings)``; those marked ``together`` and
+    alike (length, settings, step) are computed as one array."""
+    results: list[np.ndarray | None] = [None] * len(jobs)
+    groups: dict[tuple | None, list[int]] = defaultdict(list)
+    for j, ((a, b, settings), join) in enumerate(zip(jobs, together, strict=True)):
+        groups[_batch_key(time[a:b], settings) if join else None].append(j)
+    for key, members in groups.items():
+        if key is None:
+            for j in members:
+                a, b, settings = jobs[j]
+                results[j] = _stretch(time[a:b], states[a:b], settings)
+            continue
+        rows = np.array([jobs[j][0] for j in members])[:, None] + np.arange(key[1])
+        stack = states[rows]  # (stretches, n, m)
+        if key[0] == "savgol":
+            _, _, window, order, step = key
+            dx = savgol_filter(stack, window, order, deriv=1, delta=step, axis=1, mode="interp")
+        else:
+            dx = _gradient(stack, time[rows], uniform=key[3], edge_order=key[2])
+        for j, d in zip(members, dx, strict=True):
+            results[j] = d
+    return results  # type: ignore[return-value]
+
+
+def _batch_key(t: np.ndarray, settings: dict[str, Any]) -> tuple | None:
+    """What a stretch's derivative depends on besides its values, or None (alone)."""
+    n = t.size
+    method = settings.get("method", "central")
+    if method == "central" or n < _MIN_SMOOTH:
+        dt = np.diff(t)
+        uniform = bool((dt == dt[0]).all())  # NumPy's own test for a scalar spacing
+        return ("central", n, 2 if n >= 3 else 1, uniform)
+    options = {k: v for k, v in settings.items() if k not in RECORD_ONLY and k != "method"}
+    if method != "savgol" or options.get("window") is None or set(options) - {"window", "order"}:
+        return None
+    window, order = int(options["window"]), int(options.get("order", 2))
+    if window % 2 == 0 or window < 3 or not 1 <= order < window or not is_uniform(t):
+        return None  # the one-stretch path says what is wrong
+    window = min(window, n if n % 2 else n - 1)
+    return ("savgol", n, window, min(order, window - 1), float(np.median(np.diff(t))))
+
+
+def _gradient(f: np.ndarray, t: np.ndarray, *, uniform: bool, edge_order: int) -> np.ndarray:
+    """``np.gradient(f[s], t[s], axis=0, edge_order=...)`` for every stretch ``s`` at once.
+
+    ``f`` is (stretches, n, m) and ``t`` (stretches, n); NumPy's formulas term by term in
+    the same order, so each stretch gets the same numbers as alone.
+    """
+    dx = np.diff(t, axis=1)[:, :, None]  # (S, n - 1, 1)
+    h = dx[:, :1]  # the spacing of a uniform stretch
+    out = np.empty_like(f)
+    if uniform:
+        out[:, 1:-1] = (f[:, 2:] - f[:, :-2]) / (2.0 * h)
+    else:
+        dx1, dx2 = dx[:, :-1], dx[:, 1:]
+        a = -(dx2) / (dx1 * (dx1 + dx2))
+        b = (dx2 - dx1) / (dx1 * dx2)
+        c = dx1 / (dx2 * (dx1 + dx2))
+        out[:, 1:-1] = a * f[:, :-2] + b * f[:, 1:-1] + c * f[:, 2:]
+    if edge_order == 1:
+        out[:, :1] = (f[:, 1:2] - f[:, :1]) / (h if uniform else dx[:, :1])
+        out[:, -1:] = (f[:, -1:] - f[:, -2:-1]) / (h if uniform else dx[:, -1:])
+        return out
+    if uniform:
+        a, b, c = -1.5 / h, 2.0 / h, -0.5 / h
+    else:
+        dx1, dx2 = dx[:, :1], dx[:, 1:2]
+        a = -(2.0 * dx1 + dx2) / (dx1 * (dx1 + dx2))
+        b = (dx1 + dx2) / (dx1 * dx2)
+        c = -dx1 / (dx2 * (dx1 + dx2))
+    out[:, :1] = a * f[:, :1] + b * f[:, 1:2] + c * f[:, 2:3]
+    if uniform:
+        a, b, c = 0.5 / h, -2.0 / h, 1.5 / h
+    else:
+        dx1, dx2 = dx[:, -2:-1], dx[:, -1:]
+        a = (dx2) / (dx1 * (dx1 + dx2))
+        b = -(dx2 + dx1) / (dx1 * dx2)
+        c = (2.0 * dx2 + dx1) / (dx2 * (dx1 + dx2))
+    out[:, -1:] = a * f[:, -3:-2] + b * f[:, -2:-1] + c * f[:, -1:]
     return out
 
 
