@@ -40,7 +40,7 @@ from scipy.signal import savgol_coeffs, savgol_filter
 
 from modemap._exceptions import DataError
 
-__all__ = ["DERIVATIVE_METHODS", "differentiate", "estimate_noise", "is_uniform"]
+__all__ = ["DERIVATIVE_METHODS", "differentiate", "estimate_noise"]
 
 DERIVATIVE_METHODS = ("central", "savgol", "spline", "tv")
 
@@ -382,11 +382,6 @@ def _per_column(value: Any, m: int, name: str) -> list[float]:
     if values.shape != (m,) or not np.all(np.isfinite(values)) or np.any(values < 0):
         raise DataError(f"derivative option {name} must be >= 0, one value or one per column ({m})")
     return [float(v) for v in values]
-
-
-def is_uniform(t: np.ndarray) -> bool:
-    """Whether every step is within ``UNIFORM_TOLERANCE`` of the median step."""
-    return _is_uniform(t)
 
 
 def _is_uniform(t: np.ndarray) -> bool:

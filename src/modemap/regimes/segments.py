@@ -46,7 +46,7 @@ from typing import Any
 import numpy as np
 from scipy.signal import savgol_filter
 
-from modemap.data.derivatives import RECORD_ONLY, differentiate, is_uniform
+from modemap.data.derivatives import RECORD_ONLY, UNIFORM_TOLERANCE, differentiate
 from modemap.regimes.short_runs import batched
 
 __all__ = ["segment_derivatives", "stepped_columns"]
@@ -138,8 +138,16 @@ def _stretches(
     alike (length, settings, step) are computed as one array."""
     results: list[np.ndarray | None] = [None] * len(jobs)
     groups: dict[tuple | None, list[int]] = defaultdict(list)
+    alike: dict[tuple | None, list[int]] = defaultdict(list)  # same length and options
     for j, ((a, b, settings), join) in enumerate(zip(jobs, together, strict=True)):
-        groups[_batch_key(time[a:b], settings) if join else None].append(j)
+        alike[_options_key(b - a, settings) if join else None].append(j)
+    for options, members in alike.items():
+        if options is None:
+            groups[None] += members
+            continue
+        rows = np.array([jobs[j][0] for j in members])[:, None] + np.arange(options[1])
+        for j, key in zip(members, _batch_keys(time[rows], options), strict=True):
+            groups[key].append(j)
     for key, members in groups.items():
         if key is None:
             for j in members:
@@ -158,22 +166,31 @@ def _stretches(
     return results  # type: ignore[return-value]
 
 
-def _batch_key(t: np.ndarray, settings: dict[str, Any]) -> tuple | None:
-    """What a stretch's derivative depends on besides its values, or None (alone)."""
-    n = t.size
+def _options_key(n: int, settings: dict[str, Any]) -> tuple | None:
+    """The settings of a stretch of ``n`` samples that its derivative depends on, or None
+    (a method or option computed one stretch at a time)."""
     method = settings.get("method", "central")
     if method == "central" or n < _MIN_SMOOTH:
-        dt = np.diff(t)
-        uniform = bool((dt == dt[0]).all())  # NumPy's own test for a scalar spacing
-        return ("central", n, 2 if n >= 3 else 1, uniform)
+        return ("central", n, 2 if n >= 3 else 1)
     options = {k: v for k, v in settings.items() if k not in RECORD_ONLY and k != "method"}
     if method != "savgol" or options.get("window") is None or set(options) - {"window", "order"}:
         return None
     window, order = int(options["window"]), int(options.get("order", 2))
-    if window % 2 == 0 or window < 3 or not 1 <= order < window or not is_uniform(t):
+    if window % 2 == 0 or window < 3 or not 1 <= order < window:
         return None  # the one-stretch path says what is wrong
     window = min(window, n if n % 2 else n - 1)
-    return ("savgol", n, window, min(order, window - 1), float(np.median(np.diff(t))))
+    return ("savgol", n, window, min(order, window - 1))
+
+
+def _batch_keys(t: np.ndarray, options: tuple) -> list[tuple | None]:
+    """Each stretch's key (``t`` is (stretches, n)): its options and what the result depends
+    on in its time stamps, with the tests of the one-stretch path row by row."""
+    dt = np.diff(t, axis=1)
+    if options[0] == "central":  # NumPy's own test for a scalar spacing
+        return [(*options, bool(u)) for u in (dt == dt[:, :1]).all(axis=1)]
+    step = np.median(dt, axis=1)  # derivatives.is_uniform and the Savitzky-Golay step
+    uniform = np.max(np.abs(dt - step[:, None]), axis=1) <= UNIFORM_TOLERANCE * step
+    return [(*options, float(h)) if u else None for h, u in zip(step, uniform, strict=True)]
 
 
 def _gradient(f: np.ndarray, t: np.ndarray, *, uniform: bool, edge_order: int) -> np.ndarray:
