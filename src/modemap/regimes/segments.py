@@ -46,7 +46,12 @@ from typing import Any
 import numpy as np
 from scipy.signal import savgol_filter
 
-from modemap.data.derivatives import RECORD_ONLY, UNIFORM_TOLERANCE, differentiate
+from modemap.data.derivatives import (
+    RECORD_ONLY,
+    UNIFORM_TOLERANCE,
+    differentiate,
+    gradient_rows,
+)
 from modemap.regimes.short_runs import batched
 
 __all__ = ["segment_derivatives", "stepped_columns"]
@@ -160,7 +165,7 @@ def _stretches(
             _, _, window, order, step = key
             dx = savgol_filter(stack, window, order, deriv=1, delta=step, axis=1, mode="interp")
         else:
-            dx = _gradient(stack, time[rows], uniform=key[3], edge_order=key[2])
+            dx = gradient_rows(stack, time[rows], uniform=key[3], edge_order=key[2])
         for j, d in zip(members, dx, strict=True):
             results[j] = d
     return results  # type: ignore[return-value]
@@ -191,46 +196,6 @@ def _batch_keys(t: np.ndarray, options: tuple) -> list[tuple | None]:
     step = np.median(dt, axis=1)  # derivatives.is_uniform and the Savitzky-Golay step
     uniform = np.max(np.abs(dt - step[:, None]), axis=1) <= UNIFORM_TOLERANCE * step
     return [(*options, float(h)) if u else None for h, u in zip(step, uniform, strict=True)]
-
-
-def _gradient(f: np.ndarray, t: np.ndarray, *, uniform: bool, edge_order: int) -> np.ndarray:
-    """``np.gradient(f[s], t[s], axis=0, edge_order=...)`` for every stretch ``s`` at once.
-
-    ``f`` is (stretches, n, m) and ``t`` (stretches, n); NumPy's formulas term by term in
-    the same order, so each stretch gets the same numbers as alone.
-    """
-    dx = np.diff(t, axis=1)[:, :, None]  # (S, n - 1, 1)
-    h = dx[:, :1]  # the spacing of a uniform stretch
-    out = np.empty_like(f)
-    if uniform:
-        out[:, 1:-1] = (f[:, 2:] - f[:, :-2]) / (2.0 * h)
-    else:
-        dx1, dx2 = dx[:, :-1], dx[:, 1:]
-        a = -(dx2) / (dx1 * (dx1 + dx2))
-        b = (dx2 - dx1) / (dx1 * dx2)
-        c = dx1 / (dx2 * (dx1 + dx2))
-        out[:, 1:-1] = a * f[:, :-2] + b * f[:, 1:-1] + c * f[:, 2:]
-    if edge_order == 1:
-        out[:, :1] = (f[:, 1:2] - f[:, :1]) / (h if uniform else dx[:, :1])
-        out[:, -1:] = (f[:, -1:] - f[:, -2:-1]) / (h if uniform else dx[:, -1:])
-        return out
-    if uniform:
-        a, b, c = -1.5 / h, 2.0 / h, -0.5 / h
-    else:
-        dx1, dx2 = dx[:, :1], dx[:, 1:2]
-        a = -(2.0 * dx1 + dx2) / (dx1 * (dx1 + dx2))
-        b = (dx1 + dx2) / (dx1 * dx2)
-        c = -dx1 / (dx2 * (dx1 + dx2))
-    out[:, :1] = a * f[:, :1] + b * f[:, 1:2] + c * f[:, 2:3]
-    if uniform:
-        a, b, c = 0.5 / h, -2.0 / h, 1.5 / h
-    else:
-        dx1, dx2 = dx[:, -2:-1], dx[:, -1:]
-        a = (dx2) / (dx1 * (dx1 + dx2))
-        b = -(dx2 + dx1) / (dx1 * dx2)
-        c = (2.0 * dx2 + dx1) / (dx2 * (dx1 + dx2))
-    out[:, -1:] = a * f[:, -3:-2] + b * f[:, -2:-1] + c * f[:, -1:]
-    return out
 
 
 def stepped_columns(inputs: np.ndarray) -> np.ndarray:

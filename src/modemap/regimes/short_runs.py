@@ -16,10 +16,10 @@ recursions, so the results agree with hmmlearn's run-by-run ones to round-off (c
 * Viterbi decoding in log space ("The Viterbi algorithm", Proceedings of the IEEE 61(3),
   1973, DOI 10.1109/PROC.1973.9030) with back-pointers.
 
-Only runs up to :data:`SHORT_RUN` samples are batched (a step loop over a long run would be
-slow in Python); callers keep longer runs on hmmlearn's compiled per-run code, and use the
-batch only when there are at least :data:`MIN_BATCH` short runs, so data of a few long runs
-(the bundled demos, most plant logs) take exactly the path they took before.
+Which runs are batched is :func:`modemap.data.batches.batched`'s rule (at least 16 runs of at
+most 64 samples; a step loop over a long run would be slow in Python); callers keep the other
+runs on hmmlearn's compiled per-run code, so data of a few long runs (the bundled demos, most
+plant logs) take exactly the path they took before.
 """
 
 from __future__ import annotations
@@ -27,6 +27,8 @@ from __future__ import annotations
 from collections.abc import Iterator
 
 import numpy as np
+
+from modemap.data.batches import MIN_BATCH, SHORT_RUN, batched, run_starts
 
 __all__ = [
     "MIN_BATCH",
@@ -36,26 +38,6 @@ __all__ = [
     "run_starts",
     "viterbi_batched",
 ]
-
-SHORT_RUN = 64
-"""Runs of at most this many samples are batched."""
-MIN_BATCH = 16
-"""Fewest short runs for which the batch is used."""
-
-
-def run_starts(lengths: np.ndarray) -> np.ndarray:
-    """First row of each run."""
-    lengths = np.asarray(lengths, dtype=np.int64)
-    return np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
-
-
-def batched(lengths: np.ndarray) -> np.ndarray:
-    """Which runs go to the batch: short ones, when there are enough of them."""
-    lengths = np.asarray(lengths, dtype=np.int64)
-    short = (lengths > 0) & (lengths <= SHORT_RUN)
-    if short.sum() < MIN_BATCH:
-        short[:] = False
-    return short
 
 
 def _groups(lengths: np.ndarray) -> Iterator[np.ndarray]:
