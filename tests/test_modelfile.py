@@ -543,3 +543,17 @@ def test_a_text_edit_of_a_model_file_loads_or_raises_model_file_error(data) -> N
     stop = data.draw(st.integers(start, min(len(text), start + 20)))
     insert = data.draw(st.text(alphabet='[]{}",:0123456789e-.nul\\ ', max_size=12))
     _loads_or_refuses(text[:start] + insert + text[stop:])
+
+
+def test_a_model_too_large_to_load_back_is_not_saved(tmp_path: Path, monkeypatch) -> None:
+    from modemap.model import modelfile
+
+    path = tmp_path / "model.json"
+    save_model(small_model(), path)
+    before = path.read_bytes()
+    monkeypatch.setattr(modelfile, "MAX_FILE_BYTES", len(before) - 1)
+    with pytest.raises(ModelFileError, match="cannot save: the model file would be"):
+        save_model(small_model(), path)
+    assert path.read_bytes() == before
+    with pytest.raises(ModelFileError, match="is too large for a model file"):
+        load_model(path)  # the limit the saver respects is the loader's

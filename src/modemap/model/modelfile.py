@@ -132,11 +132,16 @@ def _dumps(model: HybridModel, source: str) -> str:
     _Reader(source, saving=True).model(data)  # what we write must load back
     text = json.dumps(data, indent=2, sort_keys=False, allow_nan=False, ensure_ascii=False)
     try:
-        text.encode("utf-8")
+        size = len(text.encode("utf-8"))
     except UnicodeEncodeError as exc:
         raise ModelFileError(
             f"{source}: cannot save: text that is not valid Unicode ({exc.reason})"
         ) from None
+    if size >= MAX_FILE_BYTES:  # never write a file that would not load back
+        raise ModelFileError(
+            f"{source}: cannot save: the model file would be {size} bytes, above the limit "
+            f"of {MAX_FILE_BYTES} bytes a model file is read with"
+        )
     return text + "\n"
 
 
