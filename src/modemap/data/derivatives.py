@@ -129,8 +129,10 @@ def differentiate_runs(
     same formulas as :func:`differentiate`, central differences with NumPy's formulas term by
     term (:func:`gradient_rows`: the same numbers) and Savitzky-Golay with SciPy's filter
     along the stacked axis (the same to round-off: its end-point fits are one least-squares
-    solve for all runs).  Every other run, and any run that would be refused, goes through
-    :func:`differentiate` alone.
+    solve for all runs).  Explicit Savitzky-Golay settings (a recorded ``window`` and
+    ``order``, as a refit replays them) are batched for runs of any length from 3 samples.
+    Every other run, and any run that would be refused, goes through :func:`differentiate`
+    alone.
 
     Returns
     -------
@@ -144,17 +146,65 @@ def differentiate_runs(
     starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
     out = np.empty_like(X)
     settings: list[dict[str, Any] | None] = [None] * lengths.size
-    together = method == "auto" and not options
+    given = {k: v for k, v in options.items() if k not in RECORD_ONLY}
     for n in np.unique(lengths):
         runs = np.flatnonzero(lengths == n)
         done = np.zeros(runs.size, dtype=bool)
-        if together and 5 <= n < 35:
-            rows = starts[runs][:, None] + np.arange(n)
+        rows = starts[runs][:, None] + np.arange(n)
+        if method == "auto" and not given and 5 <= n < 35:
             done = _auto_together(time[rows], X[rows], rows, out, settings, runs)
+        elif method == "savgol" and n >= 3 and _savgol_options(given) is not None:
+            window, order = _savgol_options(given)  # type: ignore[misc]
+            window = min(window, n if n % 2 else n - 1)
+            done = _savgol_together(
+                time[rows], X[rows], rows, out, settings, runs, window, min(order, window - 1)
+            )
         for r in runs[~done]:
             a, b = starts[r], starts[r] + lengths[r]
             out[a:b], settings[r] = differentiate(time[a:b], X[a:b], method, **options)
     return out, settings  # type: ignore[return-value]
+
+
+def _savgol_options(given: dict[str, Any]) -> tuple[int, int] | None:
+    """``(window, order)`` of explicit Savitzky-Golay options that are valid, else None
+    (the one-run path then says what is wrong)."""
+    if set(given) - {"window", "order"} or given.get("window") is None:
+        return None
+    window, order = int(given["window"]), int(given.get("order", 2))
+    if window % 2 == 0 or window < 3 or not 1 <= order < window:
+        return None
+    return window, order
+
+
+def _savgol_together(
+    t: np.ndarray,
+    X: np.ndarray,
+    rows: np.ndarray,
+    out: np.ndarray,
+    settings: list[dict[str, Any] | None],
+    runs: np.ndarray,
+    window: int,
+    order: int,
+) -> np.ndarray:
+    """``differentiate(..., "savgol", window=..., order=...)`` for runs of one length (t:
+    (R, n), X: (R, n, m)); writes ``out`` and ``settings``; returns which runs were done."""
+    dt = np.diff(t, axis=1)
+    valid = np.isfinite(t).all(axis=1) & np.isfinite(X).all(axis=(1, 2)) & (dt > 0).all(axis=1)
+    step = np.median(dt, axis=1)
+    uniform = np.max(np.abs(dt - step[:, None]), axis=1) <= UNIFORM_TOLERANCE * step
+    done = valid & uniform
+    for h in np.unique(step[done]):
+        pick = np.flatnonzero(done & (step == h))
+        dx = savgol_filter(X[pick], window, order, deriv=1, delta=h, axis=1, mode="interp")
+        for i, d in zip(pick, dx, strict=True):
+            out[rows[i]] = d
+            settings[runs[i]] = {
+                "method": "savgol",
+                "window": window,
+                "order": order,
+                "step": float(h),
+            }
+    return done
 
 
 def _auto_together(
