@@ -170,14 +170,18 @@ def viterbi_batched(
         back = np.empty((top, r, k), dtype=np.int64)
         back[0] = stay
         delta = log_start[None, :] + log_emission[rows[0]]
+        every = live.all(axis=1)  # steps where no run of the group has ended
         for t in range(1, top):
             cand = delta[:, :, None] + log_trans[None, :, :]  # (R, from, to)
             best = cand.argmax(axis=1)
-            new = np.take_along_axis(cand, best[:, None, :], axis=1)[:, 0, :]
+            new = cand.max(axis=1)  # the value at ``best``
             new += log_emission[rows[t]]
-            on = live[t][:, None]
-            delta = np.where(on, new, delta)
-            back[t] = np.where(on, best, stay)
+            if every[t]:
+                delta, back[t] = new, best
+            else:
+                on = live[t][:, None]
+                delta = np.where(on, new, delta)
+                back[t] = np.where(on, best, stay)
         state = delta.argmax(axis=1)
         log_prob[group] = delta[np.arange(r), state]
         states = np.empty((top, r), dtype=np.int64)
