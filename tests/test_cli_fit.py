@@ -172,3 +172,25 @@ def test_output_folder_that_would_lose_data_is_refused_before_the_fit(tmp_path, 
     assert "would be overwritten" in err and "labels.csv" in err
     assert data.read_bytes() == before
     assert sorted(p.name for p in folder.iterdir()) == ["labels.csv"]
+
+
+def test_fit_json_summary_matches_the_model_file(fitted, tmp_path, capsys) -> None:
+    data, _ = fitted
+    out = tmp_path / "json_result"
+    argv = ["fit", str(data), *COLUMNS, "--seed", "1", "--out", str(out), "--json"]
+    assert main([*argv, "--quiet"]) == 0
+    captured = capsys.readouterr()
+    summary = json.loads(captured.out)  # stdout is nothing but the JSON document
+    model = json.loads((out / "model.json").read_text())
+    assert summary["n_regimes"] == len(model["regimes"]) == 2
+    for key in ("regimes", "guards", "guard_kind", "selection", "validation", "states", "form"):
+        assert summary[key] == model[key], key
+    chosen = [row for row in model["selection"] if row["chosen"]]
+    assert len(chosen) == 1 and summary["degree"] == chosen[0]["degree"]
+    assert sorted(Path(p).name for p in summary["files"]) == [
+        "labels.csv",
+        "model.json",
+        "report.md",
+    ]
+    assert summary["validation"]  # held-out figures are present
+    assert captured.err == ""  # --quiet: nothing on stderr; progress never goes to stdout

@@ -164,3 +164,56 @@ def test_recorded_settings_replay_the_same_estimate(method: str) -> None:
     np.testing.assert_array_equal(again, first)
     if method != "central":  # raw differences of noisy data are poor (see above)
         assert relative_error(again, dx) < 0.1
+
+
+# --------------------------------------------------------------------------- runs together
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_runs_together_equal_each_run_alone(seed, monkeypatch) -> None:
+    # reference: differentiate() run by run (its own auto rule, NumPy's and SciPy's code)
+    from modemap.data import derivatives
+
+    alone_calls = []
+    one_run = derivatives.differentiate
+    monkeypatch.setattr(
+        derivatives, "differentiate", lambda *a, **k: alone_calls.append(1) or one_run(*a, **k)
+    )
+    rng = np.random.default_rng(seed)
+    lengths = rng.integers(2, 50, size=300)
+    parts_t, parts_x = [], []
+    for n in lengths:
+        step = 0.1 if seed != 1 else [0.1, 0.2][int(rng.integers(0, 2))]
+        t = np.arange(n) * step + rng.uniform(0, 5)
+        if seed == 2 and rng.random() < 0.2:  # some irregular runs (spline or refused)
+            t = np.cumsum(rng.uniform(0.05, 0.15, n))
+        noise = 10 ** rng.uniform(-6, -1)  # clean runs take central, noisy ones savgol
+        x = np.column_stack([np.sin(t), np.cos(2 * t)]) + noise * rng.standard_normal((n, 2))
+        parts_t.append(t), parts_x.append(x)
+    time, X = np.concatenate(parts_t), np.concatenate(parts_x)
+    # the auto rule, and recorded Savitzky-Golay settings replayed (as a refit does)
+    request = {} if seed != 2 else {"method": "savgol", "window": 7, "order": 3, "noise": [0.1]}
+    try:
+        dx, settings = derivatives.differentiate_runs(time, X, lengths, **request)
+    except DataError:  # an irregular run refused for savgol, as it is alone
+        assert seed == 2
+        keep = [
+            i for i, (t, n) in enumerate(zip(parts_t, lengths, strict=True))
+            if n < 3 or np.ptp(np.diff(t)) < 1e-9
+        ]  # fmt: skip
+        lengths = lengths[keep]
+        time = np.concatenate([parts_t[i] for i in keep])
+        X = np.concatenate([parts_x[i] for i in keep])
+        alone_calls.clear()
+        dx, settings = derivatives.differentiate_runs(time, X, lengths, **request)
+    assert len(alone_calls) < len(lengths) / 2  # most runs went in batches
+    methods = set()
+    for r, (a, b) in enumerate(zip(np.cumsum(lengths) - lengths, np.cumsum(lengths), strict=True)):
+        alone, used = one_run(time[a:b], X[a:b], **request)
+        assert settings[r] == used
+        methods.add(used["method"])
+        if used["method"] == "savgol":  # end-point fits: one least-squares solve for all runs
+            np.testing.assert_allclose(dx[a:b], alone, rtol=1e-12, atol=1e-12)
+        else:
+            np.testing.assert_array_equal(dx[a:b], alone)
+    assert ({"savgol"} if seed == 2 else {"central", "savgol"}) <= methods

@@ -420,6 +420,8 @@ BAD_FILES = {
     "null_offset.json": "guards[0].offset: expected a number, got null",
     "empty_regimes.json": "regimes: expected at least one regime",
     "latin1.json": "not UTF-8 text",
+    "deep_nesting.json": "arrays and objects nested more than 64 deep (from line 10)",
+    "huge_integer.json": "line 56, column 11: integer 10000000... (401 digits) is too large",
     "negative_equilibrium_stderr.json": (
         "regimes[0].equilibria[0].stderr.T: a standard error cannot be negative"
     ),
@@ -474,3 +476,87 @@ def test_documented_example_loads_and_evaluates_as_documented() -> None:
     for g in model.guards:
         value = TermLibrary.from_terms(g.terms, model.variables).transform(z) @ g.weights
         assert value + g.offset == pytest.approx([-1.0])
+
+
+# --------------------------------------------------------------------------- property: any input
+
+_JSON_SCALARS = (
+    st.none()
+    | st.booleans()
+    | st.integers(min_value=-(10**400), max_value=10**400)
+    | st.floats(allow_nan=False, allow_infinity=False)
+    | st.text(max_size=8)
+)
+_JSON_VALUES = st.recursive(
+    _JSON_SCALARS,
+    lambda inner: (
+        st.lists(inner, max_size=4) | st.dictionaries(st.text(max_size=6), inner, max_size=4)
+    ),
+    max_leaves=20,
+)
+
+
+def _paths(value, prefix=()):
+    """Every path (tuple of keys and indices) inside a JSON value."""
+    yield prefix
+    if isinstance(value, dict):
+        for key, item in value.items():
+            yield from _paths(item, (*prefix, key))
+    elif isinstance(value, list):
+        for i, item in enumerate(value):
+            yield from _paths(item, (*prefix, i))
+
+
+def _loads_or_refuses(text: str) -> None:
+    """The loader's contract: a valid model (which saves and loads back) or ModelFileError."""
+    try:
+        model = loads_model(text, source="mutant.json")
+    except ModelFileError as exc:
+        assert "\n" not in str(exc) and str(exc).startswith("mutant.json: ")
+        return
+    assert loads_model(dumps_model(model)).n_regimes == model.n_regimes
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(value=_JSON_VALUES)
+def test_any_json_value_loads_or_raises_model_file_error(value) -> None:
+    _loads_or_refuses(json.dumps(value))
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(data=st.data(), replacement=_JSON_VALUES, delete=st.booleans())
+def test_a_mutated_model_file_loads_or_raises_model_file_error(data, replacement, delete) -> None:
+    d = model_to_dict(small_model())
+    path = data.draw(st.sampled_from(list(_paths(d))[1:]))
+    parent = d
+    for key in path[:-1]:
+        parent = parent[key]
+    if delete and isinstance(parent, dict):
+        del parent[path[-1]]
+    else:
+        parent[path[-1]] = replacement
+    _loads_or_refuses(json.dumps(d))
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(data=st.data())
+def test_a_text_edit_of_a_model_file_loads_or_raises_model_file_error(data) -> None:
+    text = json.dumps(model_to_dict(small_model()), indent=1)
+    start = data.draw(st.integers(0, len(text)))
+    stop = data.draw(st.integers(start, min(len(text), start + 20)))
+    insert = data.draw(st.text(alphabet='[]{}",:0123456789e-.nul\\ ', max_size=12))
+    _loads_or_refuses(text[:start] + insert + text[stop:])
+
+
+def test_a_model_too_large_to_load_back_is_not_saved(tmp_path: Path, monkeypatch) -> None:
+    from modemap.model import modelfile
+
+    path = tmp_path / "model.json"
+    save_model(small_model(), path)
+    before = path.read_bytes()
+    monkeypatch.setattr(modelfile, "MAX_FILE_BYTES", len(before) - 1)
+    with pytest.raises(ModelFileError, match="cannot save: the model file would be"):
+        save_model(small_model(), path)
+    assert path.read_bytes() == before
+    with pytest.raises(ModelFileError, match="is too large for a model file"):
+        load_model(path)  # the limit the saver respects is the loader's

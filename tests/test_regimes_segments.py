@@ -84,3 +84,46 @@ def test_an_input_held_for_one_sample_gives_that_interval_s_slope() -> None:
     assert abs(whole[k, 0] + 2.0) > 0.5
     out = segment_derivatives(t, x, whole, np.array([t.size]), labels, settings, inputs=u[:, None])
     assert out[k, 0] == pytest.approx(-2.0, abs=1e-9)
+
+
+# --------------------------------------------------------------------------- stretches together
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_stretches_together_equal_each_stretch_alone(seed, monkeypatch) -> None:
+    # reference: the one-stretch path (np.gradient, or differentiate -> scipy's savgol_filter)
+    from modemap.regimes import segments
+    from modemap.regimes.segments import _stretch, _stretches
+
+    alone_calls = []
+    monkeypatch.setattr(
+        segments, "_stretch", lambda t, x, s: alone_calls.append(1) or _stretch(t, x, s)
+    )
+    rng = np.random.default_rng(seed)
+    n = 20000
+    uniform = np.arange(n) * 0.1
+    jittered = np.cumsum(rng.uniform(0.05, 0.15, n))
+    time = uniform if seed % 2 else jittered
+    states = rng.normal(size=(n, 2)).cumsum(axis=0)
+    settings = [
+        {"method": "central"},
+        {"method": "savgol", "window": 5, "order": 3, "step": 0.1, "auto": True},
+        {"method": "savgol", "window": 9, "order": 2},
+        {"method": "spline", "degree": 4, "smoothing": [1.0, 1.0]},
+    ]
+    jobs, a = [], 0
+    while a < n - 40:
+        b = a + int(rng.integers(2, 14))
+        choice = settings[int(rng.integers(0, 3 if seed % 2 else 1))]
+        if seed == 3 and rng.random() < 0.05:
+            choice = settings[3]
+        jobs.append((a, b, choice))
+        a = b
+    together = _stretches(time, states, jobs, [True] * len(jobs))
+    assert len(alone_calls) < len(jobs) / 2  # most went in batches
+    for (a, b, s), got in zip(jobs, together, strict=True):
+        alone = _stretch(time[a:b], states[a:b], s)
+        if s["method"] == "savgol" and b - a >= 7:  # one least-squares solve for all ends
+            np.testing.assert_allclose(got, alone, rtol=1e-12, atol=1e-12)
+        else:  # NumPy's formulas term by term: the same numbers
+            np.testing.assert_array_equal(got, alone)

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 import traceback
@@ -77,8 +78,27 @@ def _positive_gap(text: str) -> float:
         value = float(text)
     except ValueError:
         raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
-    if not value > 1:
-        raise argparse.ArgumentTypeError(f"must be larger than 1, got {text}")
+    if not (value > 1 and math.isfinite(value)):
+        raise argparse.ArgumentTypeError(f"must be larger than 1 and finite, got {text}")
+    return value
+
+
+def _whole(text: str) -> int:
+    """A whole-number option value (argparse names the option in its message)."""
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+
+
+def _share(text: str) -> float:
+    """A share in [0, 1) (the hold-out)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number in [0, 1), got {text!r}") from None
+    if not 0 <= value < 1:
+        raise argparse.ArgumentTypeError(f"expected a number in [0, 1), got {text}")
     return value
 
 
@@ -157,7 +177,11 @@ def add_data_options(
         help="split runs where the step exceeds N times the median (default 5)",
     )
     group.add_argument(
-        "--min-samples", type=int, default=8, metavar="N", help="fewest samples per run (default 8)"
+        "--min-samples",
+        type=_whole,
+        default=8,
+        metavar="N",
+        help="fewest samples per run (default 8)",
     )
     add_reading_options(parser)
 
@@ -165,6 +189,8 @@ def add_data_options(
 def load_dataset(args: argparse.Namespace) -> Dataset:
     """Read the data named by :func:`add_data_options`, filling in default columns."""
     source = args.data[0] if len(args.data) == 1 else list(args.data)
+    if args.min_samples < 2:
+        raise ModemapError(f"--min-samples must be a whole number >= 2, got {args.min_samples}")
     time, states = args.time, args.states
     if time is None or states is None:
         columns = peek_columns(source, **_csv_format(args))
@@ -337,6 +363,11 @@ def _add_fit(subparsers: argparse._SubParsersAction) -> None:
     parser.add_argument("--out", required=True, metavar="DIR", help="output folder")
     parser.add_argument("--view", action="store_true", help="open the dashboard on the result")
     parser.add_argument("--quiet", action="store_true", help="no progress display")
+    parser.add_argument(
+        "--json",
+        action="store_true",
+        help="print a machine-readable summary of the fit on stdout (progress stays on stderr)",
+    )
     _add_debug(parser)
     parser.set_defaults(handler=_run_fit)
 
@@ -352,7 +383,7 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--max-regimes",
-        type=int,
+        type=_whole,
         default=6,
         metavar="K",
         help="largest number of regimes 'auto' tries (default: 6)",
@@ -379,7 +410,7 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--max-degree",
-        type=int,
+        type=_whole,
         default=3,
         metavar="D",
         help="highest degree 'auto' considers (default: 3)",
@@ -419,7 +450,7 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--holdout",
-        type=float,
+        type=_share,
         default=0.25,
         metavar="F",
         help="share of runs (or of the run's tail) kept out for validation (default: 0.25)",
@@ -433,21 +464,21 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--min-dwell",
-        type=int,
+        type=_whole,
         default=1,
         metavar="N",
         help="shortest stay in a regime, in samples (default: 1)",
     )
     group.add_argument(
         "--min-regime-samples",
-        type=int,
+        type=_whole,
         default=None,
         metavar="N",
         help="smallest regime kept, in samples (default: 5 per candidate term and at least "
         "20 when the number of regimes is chosen; 2 per term plus 2 and at least 10 when it "
         "is given)",
     )
-    group.add_argument("--seed", type=int, default=0, help="random seed (default: 0)")
+    group.add_argument("--seed", type=_whole, default=0, help="random seed (default: 0)")
     group.add_argument(
         "--engine",
         choices=("local", "dask"),
@@ -481,6 +512,8 @@ def _degree(text: str) -> str | int:
         raise argparse.ArgumentTypeError(
             f"expected 'auto' or a whole number, got {text!r}"
         ) from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected 'auto' or a whole number >= 0, got {text}")
     return value
 
 
@@ -491,8 +524,8 @@ def _threshold(text: str) -> str | float:
         value = float(text)
     except ValueError:
         value = float("nan")
-    if not value >= 0:
-        raise ModemapError(f"--threshold: expected 'auto' or a number >= 0, got '{text}'")
+    if not (value >= 0 and math.isfinite(value)):
+        raise ModemapError(f"--threshold: expected 'auto' or a finite number >= 0, got '{text}'")
     return value
 
 
@@ -500,10 +533,6 @@ def identifier_from_args(args: argparse.Namespace):
     """A :class:`modemap.identify.HybridIdentifier` configured from the command line."""
     from modemap.identify import HybridIdentifier
 
-    if args.degree != "auto" and args.degree < 0:
-        raise ModemapError(f"--degree: expected 'auto' or a whole number >= 0, got {args.degree}")
-    if not 0 <= args.holdout < 1:
-        raise ModemapError(f"--holdout: expected a share in [0, 1), got {args.holdout}")
     return HybridIdentifier.from_options(
         n_regimes=_regimes(args.regimes),
         max_regimes=args.max_regimes,
@@ -540,15 +569,40 @@ def _run_fit(args: argparse.Namespace) -> int:
     ident.model_.metadata["data"] = _data_record(args)
     paths = write_fit_outputs(args.out, ident.model_, ident.labels_, dataset=ds, read=args.data)
     model = ident.model_
-    print(
-        f"{model.n_regimes} regime(s), {len(model.guards)} guard(s); wrote "
-        + ", ".join(str(p) for p in paths)
-    )
+    if args.json:
+        print(json.dumps(fit_summary(model, paths), indent=2, allow_nan=False))
+    else:
+        print(
+            f"{model.n_regimes} regime(s), {len(model.guards)} guard(s); wrote "
+            + ", ".join(str(p) for p in paths)
+        )
     if args.view:
         from modemap.app.tui import run_view
 
         run_view(args.out)
     return 0
+
+
+def fit_summary(model, paths: Sequence[str | os.PathLike[str]]) -> dict:
+    """The ``fit --json`` summary: the model file's own sections (the same figures, built
+    by :func:`modemap.model.modelfile.model_to_dict`), the chosen degree and the files."""
+    from modemap.model.modelfile import model_to_dict
+
+    d = model_to_dict(model)
+    chosen = next((row for row in d["selection"] if row.get("chosen")), {})
+    return {
+        "n_regimes": model.n_regimes,
+        "form": d["form"],
+        "states": d["states"],
+        "inputs": d["inputs"],
+        "degree": chosen.get("degree"),
+        "regimes": d["regimes"],
+        "guard_kind": d["guard_kind"],
+        "guards": d["guards"],
+        "selection": d["selection"],
+        "validation": d["validation"],
+        "files": [str(p) for p in paths],
+    }
 
 
 def _data_record(args: argparse.Namespace) -> dict:
@@ -633,7 +687,7 @@ def _add_simulate(subparsers: argparse._SubParsersAction) -> None:
         "--initial", metavar="A=1,B=2", help="initial state (default: DATA's first row)"
     )
     parser.add_argument(
-        "--regime", type=int, metavar="ID", help="initial regime (default: classify)"
+        "--regime", type=_whole, metavar="ID", help="initial regime (default: classify)"
     )
     parser.add_argument("--out", required=True, metavar="FILE", help="output CSV")
     add_reading_options(parser)
@@ -678,6 +732,12 @@ def _run_simulate(args: argparse.Namespace) -> int:
 
     recover_output_folder(os.path.dirname(os.path.abspath(args.model)))  # a write cut short
     model = load_model(args.model)
+    ids = [r.id for r in model.regimes]
+    if args.regime is not None and args.regime not in ids:
+        raise ModemapError(
+            f"--regime {args.regime}: {args.model} has no such regime "
+            f"(its regimes: {', '.join(map(str, ids))})"
+        )
     peeked = peek_columns(args.data, **_csv_format(args))
     columns = [h for h, _ in peeked]
     bare = {parse_header(h)[0] for h in columns}
@@ -870,7 +930,8 @@ class _Parser(argparse.ArgumentParser):
     where the usage is (``--help``); exit code 2 as argparse's."""
 
     def error(self, message: str) -> NoReturn:
-        self.exit(2, f"{self.prog}: error: {message} (see '{self.prog} --help')\n")
+        text = " ".join(message.split())
+        self.exit(2, f"modemap: error: {text} (see '{self.prog} --help')\n")
 
     def parse_args(self, args=None, namespace=None):  # type: ignore[override]
         parsed, extra = self.parse_known_args(args, namespace)

@@ -40,7 +40,13 @@ from scipy.signal import savgol_coeffs, savgol_filter
 
 from modemap._exceptions import DataError
 
-__all__ = ["DERIVATIVE_METHODS", "differentiate", "estimate_noise"]
+__all__ = [
+    "DERIVATIVE_METHODS",
+    "differentiate",
+    "differentiate_runs",
+    "estimate_noise",
+    "gradient_rows",
+]
 
 DERIVATIVE_METHODS = ("central", "savgol", "spline", "tv")
 
@@ -109,6 +115,144 @@ def differentiate(
         _check_options(method, options)
         dX, settings = _METHODS[method](t, X2, **options)
     return (dX[:, 0] if squeeze else dX), settings
+
+
+def differentiate_runs(
+    time: np.ndarray, X: np.ndarray, lengths: np.ndarray, method: str = "auto", **options: Any
+) -> tuple[np.ndarray, list[dict[str, Any]]]:
+    """:func:`differentiate` of each run ``rows[starts[r] : starts[r] + lengths[r]]``, with runs
+    of the same length computed together where the method allows it.
+
+    With ``method="auto"`` and no options, runs of 5 to 34 samples (whose Savitzky-Golay
+    window is always 5) are laid side by side: the noise, the step, the derivative's RMS and
+    the choice between central differences and Savitzky-Golay are computed per run with the
+    same formulas as :func:`differentiate`, central differences with NumPy's formulas term by
+    term (:func:`gradient_rows`: the same numbers) and Savitzky-Golay with SciPy's filter
+    along the stacked axis (the same to round-off: its end-point fits are one least-squares
+    solve for all runs).  Explicit Savitzky-Golay settings (a recorded ``window`` and
+    ``order``, as a refit replays them) are batched for runs of any length from 3 samples.
+    Every other run, and any run that would be refused, goes through :func:`differentiate`
+    alone.
+
+    Returns
+    -------
+    dX : ndarray of shape (n, m)
+    settings : list of dict
+        One per run, as :func:`differentiate` returns them.
+    """
+    time = np.asarray(time, dtype=np.float64)
+    X = np.asarray(X, dtype=np.float64).reshape(time.shape[0], -1)
+    lengths = np.asarray(lengths, dtype=np.int64)
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64)
+    out = np.empty_like(X)
+    settings: list[dict[str, Any] | None] = [None] * lengths.size
+    given = {k: v for k, v in options.items() if k not in RECORD_ONLY}
+    for n in np.unique(lengths):
+        runs = np.flatnonzero(lengths == n)
+        done = np.zeros(runs.size, dtype=bool)
+        rows = starts[runs][:, None] + np.arange(n)
+        if method == "auto" and not given and 5 <= n < 35:
+            done = _auto_together(time[rows], X[rows], rows, out, settings, runs)
+        elif method == "savgol" and n >= 3 and _savgol_options(given) is not None:
+            window, order = _savgol_options(given)  # type: ignore[misc]
+            window = min(window, n if n % 2 else n - 1)
+            done = _savgol_together(
+                time[rows], X[rows], rows, out, settings, runs, window, min(order, window - 1)
+            )
+        for r in runs[~done]:
+            a, b = starts[r], starts[r] + lengths[r]
+            out[a:b], settings[r] = differentiate(time[a:b], X[a:b], method, **options)
+    return out, settings  # type: ignore[return-value]
+
+
+def _savgol_options(given: dict[str, Any]) -> tuple[int, int] | None:
+    """``(window, order)`` of explicit Savitzky-Golay options that are valid, else None
+    (the one-run path then says what is wrong)."""
+    if set(given) - {"window", "order"} or given.get("window") is None:
+        return None
+    window, order = int(given["window"]), int(given.get("order", 2))
+    if window % 2 == 0 or window < 3 or not 1 <= order < window:
+        return None
+    return window, order
+
+
+def _savgol_together(
+    t: np.ndarray,
+    X: np.ndarray,
+    rows: np.ndarray,
+    out: np.ndarray,
+    settings: list[dict[str, Any] | None],
+    runs: np.ndarray,
+    window: int,
+    order: int,
+) -> np.ndarray:
+    """``differentiate(..., "savgol", window=..., order=...)`` for runs of one length (t:
+    (R, n), X: (R, n, m)); writes ``out`` and ``settings``; returns which runs were done."""
+    dt = np.diff(t, axis=1)
+    valid = np.isfinite(t).all(axis=1) & np.isfinite(X).all(axis=(1, 2)) & (dt > 0).all(axis=1)
+    step = np.median(dt, axis=1)
+    uniform = np.max(np.abs(dt - step[:, None]), axis=1) <= UNIFORM_TOLERANCE * step
+    done = valid & uniform
+    for h in np.unique(step[done]):
+        pick = np.flatnonzero(done & (step == h))
+        dx = savgol_filter(X[pick], window, order, deriv=1, delta=h, axis=1, mode="interp")
+        for i, d in zip(pick, dx, strict=True):
+            out[rows[i]] = d
+            settings[runs[i]] = {
+                "method": "savgol",
+                "window": window,
+                "order": order,
+                "step": float(h),
+            }
+    return done
+
+
+def _auto_together(
+    t: np.ndarray,
+    X: np.ndarray,
+    rows: np.ndarray,
+    out: np.ndarray,
+    settings: list[dict[str, Any] | None],
+    runs: np.ndarray,
+) -> np.ndarray:
+    """``differentiate(..., "auto")`` for runs of one length ``n`` in [5, 35) (t: (R, n),
+    X: (R, n, m)); writes ``out`` and ``settings``; returns which runs were done."""
+    dt = np.diff(t, axis=1)
+    valid = np.isfinite(t).all(axis=1) & np.isfinite(X).all(axis=(1, 2)) & (dt > 0).all(axis=1)
+    d4 = np.diff(X, n=4, axis=1)
+    mad = np.median(np.abs(d4 - np.median(d4, axis=1, keepdims=True)), axis=1)
+    sigma = mad / _MAD_SCALE / np.sqrt(70.0)  # estimate_noise, run by run
+    step = np.median(dt, axis=1)
+    exact = (dt == dt[:, :1]).all(axis=1)
+    grad = np.empty_like(X)
+    for flag in (True, False):
+        pick = exact == flag
+        if pick.any():
+            grad[pick] = gradient_rows(X[pick], t[pick], uniform=flag, edge_order=2)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        raw = np.mean(grad**2, axis=1)
+        rms = np.sqrt(np.maximum(raw - sigma**2 / (2.0 * step[:, None] ** 2), 0.0))
+        clean = np.all(sigma / (np.sqrt(2.0) * step[:, None]) <= CLEAN_FRACTION * rms, axis=1)
+    uniform = np.max(np.abs(dt - step[:, None]), axis=1) <= UNIFORM_TOLERANCE * step
+    central = valid & clean
+    smooth = valid & ~clean & uniform
+    for i in np.flatnonzero(central):
+        out[rows[i]] = grad[i]
+    for h in np.unique(step[smooth]):
+        pick = np.flatnonzero(smooth & (step == h))
+        dx = savgol_filter(X[pick], 5, AUTO_ORDER, deriv=1, delta=h, axis=1, mode="interp")
+        for i, d in zip(pick, dx, strict=True):
+            out[rows[i]] = d
+    for i in np.flatnonzero(central | smooth):
+        chosen: dict[str, Any] = (
+            {"method": "central"}
+            if central[i]
+            else {"method": "savgol", "window": 5, "order": AUTO_ORDER, "step": float(step[i])}
+        )
+        chosen["auto"] = True
+        chosen["noise"] = [float(v) for v in sigma[i]]
+        settings[runs[i]] = chosen
+    return central | smooth
 
 
 def estimate_noise(X: np.ndarray) -> np.ndarray:
@@ -397,3 +541,45 @@ def _uniform_step(t: np.ndarray, method: str) -> float:
             "or use 'central' or 'spline'"
         )
     return float(np.median(np.diff(t)))
+
+
+def gradient_rows(f: np.ndarray, t: np.ndarray, *, uniform: bool, edge_order: int) -> np.ndarray:
+    """``np.gradient(f[s], t[s], axis=0, edge_order=...)`` for every run ``s`` at once.
+
+    ``f`` is (runs, n, m) and ``t`` (runs, n); ``uniform`` says that every run's steps are
+    all equal (NumPy's own test, ``dt == dt[0]``, then takes its scalar-spacing formulas).
+    NumPy's formulas term by term in the same order, so each run gets the same numbers as
+    alone.
+    """
+    dx = np.diff(t, axis=1)[:, :, None]  # (S, n - 1, 1)
+    h = dx[:, :1]  # the spacing of a uniform stretch
+    out = np.empty_like(f)
+    if uniform:
+        out[:, 1:-1] = (f[:, 2:] - f[:, :-2]) / (2.0 * h)
+    else:
+        dx1, dx2 = dx[:, :-1], dx[:, 1:]
+        a = -(dx2) / (dx1 * (dx1 + dx2))
+        b = (dx2 - dx1) / (dx1 * dx2)
+        c = dx1 / (dx2 * (dx1 + dx2))
+        out[:, 1:-1] = a * f[:, :-2] + b * f[:, 1:-1] + c * f[:, 2:]
+    if edge_order == 1:
+        out[:, :1] = (f[:, 1:2] - f[:, :1]) / (h if uniform else dx[:, :1])
+        out[:, -1:] = (f[:, -1:] - f[:, -2:-1]) / (h if uniform else dx[:, -1:])
+        return out
+    if uniform:
+        a, b, c = -1.5 / h, 2.0 / h, -0.5 / h
+    else:
+        dx1, dx2 = dx[:, :1], dx[:, 1:2]
+        a = -(2.0 * dx1 + dx2) / (dx1 * (dx1 + dx2))
+        b = (dx1 + dx2) / (dx1 * dx2)
+        c = -dx1 / (dx2 * (dx1 + dx2))
+    out[:, :1] = a * f[:, :1] + b * f[:, 1:2] + c * f[:, 2:3]
+    if uniform:
+        a, b, c = 0.5 / h, -2.0 / h, 1.5 / h
+    else:
+        dx1, dx2 = dx[:, -2:-1], dx[:, -1:]
+        a = (dx2) / (dx1 * (dx1 + dx2))
+        b = -(dx2 + dx1) / (dx1 * dx2)
+        c = (2.0 * dx2 + dx1) / (dx2 * (dx1 + dx2))
+    out[:, -1:] = a * f[:, -3:-2] + b * f[:, -2:-1] + c * f[:, -1:]
+    return out

@@ -16,8 +16,9 @@ from typing import Any
 import numpy as np
 
 from modemap._exceptions import DataError, ParameterError
+from modemap.data.batches import batched
 from modemap.data.dataset import Dataset
-from modemap.data.derivatives import differentiate
+from modemap.data.derivatives import differentiate, differentiate_runs
 
 __all__ = ["FORMS", "RegressionData", "prepare_regression"]
 
@@ -78,6 +79,24 @@ def _merge_settings(settings: list[dict[str, Any]]) -> dict[str, Any]:
     return first
 
 
+def _short_runs_together(
+    ds: Dataset, method: str, options: dict[str, Any]
+) -> dict[int, tuple[np.ndarray, dict[str, Any]]]:
+    """Derivatives of many short runs computed side by side (:mod:`.batches`), by run."""
+    sizes = np.array([run.n_samples for run in ds.runs], dtype=np.int64)
+    short = np.flatnonzero(batched(sizes))
+    if short.size == 0:
+        return {}
+    time = np.concatenate([ds.runs[i].time for i in short])
+    states = np.concatenate([ds.runs[i].states for i in short], axis=0)
+    dx, used = differentiate_runs(time, states, sizes[short], method, **options)
+    bounds = np.concatenate([[0], np.cumsum(sizes[short])])
+    return {
+        int(i): (dx[a:b], u)
+        for i, a, b, u in zip(short, bounds[:-1], bounds[1:], used, strict=True)
+    }
+
+
 def prepare_regression(
     ds: Dataset, *, form: str = "continuous", derivative: str | Mapping[str, Any] = "auto"
 ) -> RegressionData:
@@ -99,12 +118,13 @@ def prepare_regression(
     if form not in FORMS:
         raise ParameterError(f"form must be one of {', '.join(FORMS)}, got {form!r}")
     method, options = _derivative_request(derivative)
+    done = _short_runs_together(ds, method, options) if form == "continuous" else {}
     Zs, Ys, times, index, lengths, run_ids, settings = [], [], [], [], [], [], []
     offset = 0
     for i, run in enumerate(ds.runs):
         z = np.hstack([run.states, run.inputs]).astype(np.float64, copy=False)
         if form == "continuous":
-            dx, used = differentiate(run.time, run.states, method, **options)
+            dx, used = done.get(i) or differentiate(run.time, run.states, method, **options)
             settings.append(used)
             rows = np.arange(run.n_samples)
             Zs.append(z), Ys.append(np.asarray(dx).reshape(run.n_samples, -1))

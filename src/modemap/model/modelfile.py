@@ -24,6 +24,7 @@ from __future__ import annotations
 import json
 import math
 import os
+import re
 from pathlib import Path
 from typing import Any, NoReturn
 
@@ -52,6 +53,15 @@ FORMAT_VERSION = 1
 SUPPORTED_VERSIONS = (1,)
 GUARD_KINDS = ("per-source", "memoryless")
 _FREE_SECTIONS = ("derivative", "statistics", "validation", "metadata")
+
+#: Largest model file read, in bytes (checked before reading).  A fitted model is a few
+#: kilobytes to a few megabytes; anything this large is not a model file.
+MAX_FILE_BYTES = 64 * 2**20
+#: Deepest nesting of arrays and objects accepted (checked before parsing).  The model
+#: file itself nests seven levels deep; the free-form sections get room to spare.
+MAX_DEPTH = 64
+#: Longest integer literal accepted, in digits; a longer one cannot be a float anyway.
+_MAX_DIGITS = 400
 
 
 # --------------------------------------------------------------------------- writing
@@ -122,11 +132,16 @@ def _dumps(model: HybridModel, source: str) -> str:
     _Reader(source, saving=True).model(data)  # what we write must load back
     text = json.dumps(data, indent=2, sort_keys=False, allow_nan=False, ensure_ascii=False)
     try:
-        text.encode("utf-8")
+        size = len(text.encode("utf-8"))
     except UnicodeEncodeError as exc:
         raise ModelFileError(
             f"{source}: cannot save: text that is not valid Unicode ({exc.reason})"
         ) from None
+    if size >= MAX_FILE_BYTES:  # never write a file that would not load back
+        raise ModelFileError(
+            f"{source}: cannot save: the model file would be {size} bytes, above the limit "
+            f"of {MAX_FILE_BYTES} bytes a model file is read with"
+        )
     return text + "\n"
 
 
@@ -310,7 +325,14 @@ def load_model(path: str | os.PathLike[str]) -> HybridModel:
     """
     source = os.fspath(path)
     try:
-        raw = Path(path).read_bytes()
+        size = Path(path).stat().st_size
+        if size > MAX_FILE_BYTES and Path(path).is_file():
+            raise ModelFileError(
+                f"{source}: {size} bytes is too large for a model file "
+                f"(the limit is {MAX_FILE_BYTES} bytes)"
+            )
+        with open(path, "rb") as fh:
+            raw = fh.read(MAX_FILE_BYTES + 1)
     except FileNotFoundError as exc:
         raise ModelFileError(f"{source}: file not found") from exc
     except IsADirectoryError as exc:
@@ -324,6 +346,10 @@ def load_model(path: str | os.PathLike[str]) -> HybridModel:
             f"{source}: not UTF-8 text (byte {exc.start} cannot be decoded); "
             "model files are UTF-8 JSON"
         ) from exc
+    if len(raw) > MAX_FILE_BYTES:  # grew while being read, or not a regular file
+        raise ModelFileError(
+            f"{source}: too large for a model file (the limit is {MAX_FILE_BYTES} bytes)"
+        )
     return loads_model(text, source=source)
 
 
@@ -335,16 +361,99 @@ def loads_model(text: str, source: str = "<string>") -> HybridModel:
     text : str
     source : str
         Name used in error messages.
+
+    Raises
+    ------
+    ModelFileError
+        Text longer than :data:`MAX_FILE_BYTES` or nested deeper than :data:`MAX_DEPTH`
+        (both checked before parsing), an integer too large for a float, invalid JSON, or
+        any problem :func:`model_from_dict` finds.
     """
+    if not isinstance(text, str):
+        raise ModelFileError(f"{source}: expected the text of a model file, got {_kind(text)}")
+    if len(text) > MAX_FILE_BYTES:
+        raise ModelFileError(
+            f"{source}: too large for a model file (the limit is {MAX_FILE_BYTES} bytes)"
+        )
+    _check_depth(text, source)
     try:
-        data = json.loads(text, parse_constant=_no_constant, object_pairs_hook=_no_duplicates)
+        data = json.loads(
+            text,
+            parse_constant=_no_constant,
+            parse_int=_integer,
+            object_pairs_hook=_no_duplicates,
+        )
     except json.JSONDecodeError as exc:
         raise ModelFileError(
             f"{source}: invalid JSON at line {exc.lineno}, column {exc.colno}: {exc.msg}"
         ) from exc
+    except _BigInteger as exc:
+        where = _position(text, exc.literal)
+        raise ModelFileError(f"{source}: {where}integer {exc}") from None
     except _JsonProblem as exc:
         raise ModelFileError(f"{source}: invalid JSON: {exc}") from None
+    except RecursionError:  # a stack smaller than MAX_DEPTH needs (an embedding host)
+        raise ModelFileError(f"{source}: nested too deeply to read") from None
     return model_from_dict(data, source=source)
+
+
+_STRING = re.compile(r'"(?:[^"\\]|\\.)*"', re.DOTALL)
+
+
+def _check_depth(text: str, source: str) -> None:
+    """Refuse text whose arrays and objects nest deeper than :data:`MAX_DEPTH`.
+
+    Counted on the text with its strings removed, so the parser never recurses that
+    deep: Python's parser recurses once per level and would fail with RecursionError.
+    """
+    if text.count("[") + text.count("{") <= MAX_DEPTH:
+        return
+    bare = _STRING.sub("", text).encode("utf-8", "surrogatepass")
+    codes = np.frombuffer(bare, dtype=np.uint8)
+    steps = (
+        (codes == ord("[")).astype(np.int8)
+        + (codes == ord("{"))
+        - (codes == ord("]"))
+        - (codes == ord("}"))
+    )
+    depth = np.cumsum(steps, dtype=np.int64)
+    if depth.size and int(depth.max()) > MAX_DEPTH:
+        at = int(np.argmax(depth > MAX_DEPTH))
+        line = bare[:at].count(b"\n") + 1
+        raise ModelFileError(
+            f"{source}: arrays and objects nested more than {MAX_DEPTH} deep "
+            f"(from line {line}); a model file nests 7 deep"
+        )
+
+
+class _BigInteger(ValueError):
+    def __init__(self, literal: str) -> None:
+        self.literal = literal
+        digits = len(literal.lstrip("-"))
+        shown = literal if digits <= 12 else f"{literal[:8]}... ({digits} digits)"
+        super().__init__(f"{shown} is too large for a number (the largest is about 1.8e308)")
+
+
+def _integer(literal: str) -> int:
+    """``json.loads``' integer hook: integers a float can hold (Python's limit on the
+    digits of an ``int`` would raise ValueError, and a longer one overflows a float)."""
+    if len(literal) > _MAX_DIGITS:
+        raise _BigInteger(literal)
+    value = int(literal)
+    try:
+        float(value)
+    except OverflowError:
+        raise _BigInteger(literal) from None
+    return value
+
+
+def _position(text: str, literal: str) -> str:
+    match = re.search(r"(?<![\w.+-])" + re.escape(literal) + r"(?![\w.])", text)
+    if match is None:
+        return ""
+    line = text.count("\n", 0, match.start()) + 1
+    column = match.start() - (text.rfind("\n", 0, match.start()) + 1) + 1
+    return f"line {line}, column {column}: "
 
 
 def model_from_dict(d: Any, source: str = "<dict>") -> HybridModel:
@@ -382,6 +491,8 @@ def _kind(value: Any) -> str:
         return "null"
     if isinstance(value, bool):
         return "true" if value else "false"
+    if isinstance(value, int) and abs(value) >= 10**15:
+        return f"an integer of about {math.ceil(abs(value).bit_length() * math.log10(2))} digits"
     if isinstance(value, int | float):
         return f"the number {value!r}"
     if isinstance(value, str):
@@ -435,8 +546,8 @@ class _Reader:
         return value
 
     def integer(self, value: Any, path: str) -> int:
-        if not isinstance(value, int) or isinstance(value, bool) or value < 0:
-            self.fail(path, f"expected a non-negative integer, got {_kind(value)}")
+        if not isinstance(value, int) or isinstance(value, bool) or not 0 <= value < 2**63:
+            self.fail(path, f"expected a non-negative integer below 2^63, got {_kind(value)}")
         return value
 
     def number(self, value: Any, path: str, nullable: bool = False) -> float:
@@ -445,7 +556,10 @@ class _Reader:
         if not _is_number(value):
             want = "a number or null" if nullable else "a number"
             self.fail(path, f"expected {want}, got {_kind(value)}")
-        x = float(value)
+        try:
+            x = float(value)
+        except OverflowError:  # an int from a dictionary (a file's are checked when parsed)
+            x = math.inf
         if not math.isfinite(x):
             self.fail(path, f"number out of range ({value!r}); numbers must be finite")
         return x

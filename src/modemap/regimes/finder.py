@@ -329,6 +329,13 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
         rows = Rows.of(reg.Z, self._common_targets(reg), reg.lengths, reg.time)
         if rows.n_rows < 2:
             raise FitError(f"{ds.source}: too few samples to find regimes ({rows.n_rows})")
+        wanted = self.n_regimes
+        if wanted != "auto" and wanted * ctx.settings.min_samples > rows.n_rows:
+            raise FitError(
+                f"{wanted} regimes were asked for, but the {rows.n_rows} samples hold at most "
+                f"{rows.n_rows // ctx.settings.min_samples} regime(s) of "
+                f"{ctx.settings.min_samples} samples (the smallest regime kept)"
+            )
         integral = ctx.local.integral_final_fit
         overall, progress = progress, scaled(progress, 0.0, 0.95) if integral else progress
         if self._warm(ds):

@@ -23,6 +23,11 @@ contiguous windows of 2,000 samples (or shorter when runs are shorter) drawn at 
 is then decoded with our own Viterbi.  The proposal is only a starting point for the exact
 refinement on all samples (:mod:`.refine`), so its fit is kept bounded: its cost does not grow
 with the data beyond the decoding pass.
+
+hmmlearn's expectation step and score loop over the runs in Python; with many short runs
+(thousands of runs of ten samples) that loop is the cost, so :class:`_ShortRunsHMM` does the
+short runs' forward-backward passes side by side (:mod:`.short_runs`) and leaves longer runs,
+and data with few short runs, to hmmlearn as before.
 """
 
 from __future__ import annotations
@@ -35,6 +40,7 @@ from hmmlearn import hmm
 from sklearn.cluster import KMeans
 from threadpoolctl import threadpool_limits
 
+from modemap.regimes.short_runs import batched, forward_backward_scaled, run_starts
 from modemap.regimes.viterbi import viterbi_runs
 
 __all__ = ["MAX_FIT_SAMPLES", "gaussian_log_density", "propose", "standardise"]
@@ -120,7 +126,7 @@ def _fit_one(
     trans = np.full((k, k), (1.0 - sticky) / (k - 1))
     np.fill_diagonal(trans, sticky)
     prior = np.ones((k, k)) + np.eye(k) * max(1.0, 0.1 * n / k)
-    model = hmm.GaussianHMM(
+    model = _ShortRunsHMM(
         n_components=k,
         covariance_type=covariance,
         n_iter=30,
@@ -143,6 +149,66 @@ def _fit_one(
     finally:
         log.disabled = disabled
     return model
+
+
+class _ShortRunsHMM(hmm.GaussianHMM):
+    """hmmlearn's Gaussian HMM (scaled recursions) with the short runs of an expectation
+    step or a score batched; the sufficient statistics are the same sums."""
+
+    def _do_estep(self, X: np.ndarray, lengths: np.ndarray):  # type: ignore[override]
+        lengths = np.asarray(lengths, dtype=np.int64)
+        short = batched(lengths)
+        if self.implementation != "scaling" or not short.any():
+            return super()._do_estep(X, lengths)
+        rows = np.repeat(short, lengths)
+        stats, log_prob = (
+            super()._do_estep(X[~rows], lengths[~short])
+            if not short.all()
+            else (self._initialize_sufficient_statistics(), 0.0)
+        )
+        x = X[rows]
+        frame = self._compute_likelihood(x)
+        short_lengths = lengths[short]
+        probs, post, xi_sum, start_sum = forward_backward_scaled(
+            frame, run_starts(short_lengths), short_lengths, self.startprob_, self.transmat_,
+            need_xi="t" in self.params,
+        )  # fmt: skip
+        stats["nobs"] += int(short.sum())
+        if "s" in self.params:
+            stats["start"] += start_sum
+        if "t" in self.params:
+            stats["trans"] += xi_sum
+        params, self.params = self.params, self.params.replace("s", "").replace("t", "")
+        try:  # the emission statistics (sums over rows): one call for all short runs
+            self._accumulate_sufficient_statistics(stats, x, frame, post, None, None)
+        finally:
+            self.params = params
+        stats["nobs"] -= 1  # that call counted the rows as one more sequence
+        return stats, log_prob + float(probs.sum())
+
+    def _score_scaling(self, X, lengths=None, *, compute_posteriors):  # type: ignore[override]
+        lengths = np.asarray([len(X)] if lengths is None else lengths, dtype=np.int64)
+        short = batched(lengths)
+        if not short.any():
+            return super()._score_scaling(X, lengths, compute_posteriors=compute_posteriors)
+        rows = np.repeat(short, lengths)
+        frame = self._compute_likelihood(X[rows])
+        short_lengths = lengths[short]
+        probs, post, _, _ = forward_backward_scaled(
+            frame, run_starts(short_lengths), short_lengths, self.startprob_, self.transmat_,
+            need_xi=False,
+        )  # fmt: skip
+        log_prob = float(probs.sum())
+        posteriors = np.zeros((len(X), self.n_components))
+        posteriors[rows] = post
+        if not short.all():
+            long_prob, long_post = super()._score_scaling(
+                X[~rows], lengths[~short], compute_posteriors=compute_posteriors
+            )
+            log_prob += long_prob
+            if compute_posteriors:
+                posteriors[~rows] = long_post
+        return log_prob, posteriors if compute_posteriors else np.empty((0, self.n_components))
 
 
 def _subsample(

@@ -20,7 +20,8 @@ probabilities of a Markov-switching model).
 Runs (``lengths``) are decoded independently: each run starts from ``log_start`` whatever the
 previous run ended in, so the best path of the concatenation is the concatenation of the best
 paths of the runs, and the log-probability is their sum (as hmmlearn reports for
-``decode(X, lengths)``).
+``decode(X, lengths)``).  Many short runs are decoded side by side in numpy instead of
+one by one (:mod:`.short_runs`); a few long runs take hmmlearn's code as before.
 """
 
 from __future__ import annotations
@@ -29,6 +30,13 @@ from typing import Any
 
 import numpy as np
 from hmmlearn.base import BaseHMM
+
+from modemap.regimes.short_runs import (
+    batched,
+    forward_backward_scaled,
+    run_starts,
+    viterbi_batched,
+)
 
 __all__ = ["forward_backward", "forward_gated", "viterbi", "viterbi_runs"]
 
@@ -121,7 +129,31 @@ def viterbi_runs(
         runs = lengths.size
         log_prob = e.sum() + log_start[0] * runs + log_trans[0, 0] * (n - runs)
         return np.zeros(n, dtype=np.int64), float(log_prob)
-    chain = _GivenEmissions(n_components=k, algorithm="viterbi")
+    short = batched(lengths)
+    if not short.any():
+        return _viterbi_hmmlearn(e, lengths, log_start, log_trans)
+    path, log_probs = viterbi_batched(
+        e, run_starts(lengths)[short], lengths[short], *chain_of(log_start, log_trans)
+    )
+    log_prob = float(log_probs.sum())
+    if not short.all():
+        rows = np.repeat(~short, lengths)
+        long_path, long_prob = _viterbi_hmmlearn(e[rows], lengths[~short], log_start, log_trans)
+        path[rows] = long_path
+        log_prob += long_prob
+    return path, log_prob
+
+
+def chain_of(log_start: np.ndarray, log_trans: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The chain's logs as hmmlearn sees them (after its exp and log)."""
+    with np.errstate(divide="ignore"):
+        return np.log(np.exp(log_start)), np.log(np.exp(log_trans))
+
+
+def _viterbi_hmmlearn(
+    e: np.ndarray, lengths: np.ndarray, log_start: np.ndarray, log_trans: np.ndarray
+) -> tuple[np.ndarray, float]:
+    chain = _GivenEmissions(n_components=e.shape[1], algorithm="viterbi")
     chain.startprob_ = np.exp(log_start)
     chain.transmat_ = np.exp(log_trans)
     log_prob, path = chain.decode(e, lengths=lengths)
@@ -160,10 +192,40 @@ def forward_backward(
     if k == 1:
         _, log_prob = viterbi_runs(e, lengths, log_start, log_trans)
         return log_prob, np.ones((n, 1))
-    chain = _GivenEmissions(n_components=k, implementation="log")
+    lengths = lengths[lengths > 0]
+    short = batched(lengths)
+    if not short.any():
+        return _forward_backward_hmmlearn(e, lengths, log_start, log_trans)
+    # scaled recursions on each row's emissions relative to its best regime (no underflow
+    # where any regime is possible); the row maxima are added back to the log-likelihood
+    peak = e.max(axis=1, keepdims=True)
+    rows = np.repeat(short, lengths)
+    with np.errstate(under="ignore"):
+        frame = np.exp(e - peak)
+    try:
+        log_probs, posteriors, _, _ = forward_backward_scaled(
+            frame, run_starts(lengths)[short], lengths[short], np.exp(log_start),
+            np.exp(log_trans), need_xi=False,
+        )  # fmt: skip
+    except ValueError:  # a run with no possible path: hmmlearn's log-space code says -inf
+        return _forward_backward_hmmlearn(e, lengths, log_start, log_trans)
+    log_prob = float(log_probs.sum() + peak[rows, 0].sum())
+    if not short.all():
+        long_prob, long_post = _forward_backward_hmmlearn(
+            e[~rows], lengths[~short], log_start, log_trans
+        )
+        posteriors[~rows] = long_post
+        log_prob += long_prob
+    return log_prob, posteriors
+
+
+def _forward_backward_hmmlearn(
+    e: np.ndarray, lengths: np.ndarray, log_start: np.ndarray, log_trans: np.ndarray
+) -> tuple[float, np.ndarray]:
+    chain = _GivenEmissions(n_components=e.shape[1], implementation="log")
     chain.startprob_ = np.exp(log_start)
     chain.transmat_ = np.exp(log_trans)
-    log_prob, posteriors = chain.score_samples(e, lengths=lengths[lengths > 0])
+    log_prob, posteriors = chain.score_samples(e, lengths=lengths)
     return float(log_prob), posteriors
 
 
