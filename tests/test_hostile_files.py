@@ -122,7 +122,8 @@ def test_simulate_refuses_a_damaged_model_file(name, folders, capsys):
 
 
 @pytest.mark.parametrize("name", ["deep_arrays", "integer_400_digits", "float_overflow"])
-def test_view_refuses_a_folder_with_a_damaged_model_file(name, folders, capsys):
+def test_view_refuses_a_folder_with_a_damaged_model_file(name, folders, capsys, monkeypatch):
+    monkeypatch.setattr("modemap.app.cli._tty", lambda stream: True)  # as if in a terminal
     damage, fragment = DAMAGED[name]
     model = folders["model"] / "model.json"
     model.write_text(damage(_model_text()), encoding="utf-8")
@@ -139,7 +140,8 @@ def test_simulate_refuses_a_1_gb_model_file_without_reading_it(folders, capsys):
     assert f"the limit is {MAX_FILE_BYTES} bytes" in err
 
 
-def test_view_refuses_a_1_gb_model_file_without_reading_it(folders, capsys):
+def test_view_refuses_a_1_gb_model_file_without_reading_it(folders, capsys, monkeypatch):
+    monkeypatch.setattr("modemap.app.cli._tty", lambda stream: True)  # as if in a terminal
     model = folders["model"] / "model.json"
     _sparse_file(model, 2**30)
     err = refused(capsys, ["view", str(folders["model"])], watch=[folders["out"]])
