@@ -176,6 +176,13 @@ def _savgol_options(given: dict[str, Any]) -> tuple[int, int] | None:
     return window, order
 
 
+def _steps_together(t: np.ndarray, X: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Steps ``(R, n - 1)``, which runs are finite and increasing, and each run's median step."""
+    dt = np.diff(t, axis=1)
+    valid = np.isfinite(t).all(axis=1) & np.isfinite(X).all(axis=(1, 2)) & (dt > 0).all(axis=1)
+    return dt, valid, np.median(dt, axis=1)
+
+
 def _savgol_together(
     t: np.ndarray,
     X: np.ndarray,
@@ -188,9 +195,7 @@ def _savgol_together(
 ) -> np.ndarray:
     """``differentiate(..., "savgol", window=..., order=...)`` for runs of one length (t:
     (R, n), X: (R, n, m)); writes ``out`` and ``settings``; returns which runs were done."""
-    dt = np.diff(t, axis=1)
-    valid = np.isfinite(t).all(axis=1) & np.isfinite(X).all(axis=(1, 2)) & (dt > 0).all(axis=1)
-    step = np.median(dt, axis=1)
+    dt, valid, step = _steps_together(t, X)
     uniform = np.max(np.abs(dt - step[:, None]), axis=1) <= UNIFORM_TOLERANCE * step
     done = valid & uniform
     for h in np.unique(step[done]):
@@ -217,12 +222,10 @@ def _auto_together(
 ) -> np.ndarray:
     """``differentiate(..., "auto")`` for runs of one length ``n`` in [5, 35) (t: (R, n),
     X: (R, n, m)); writes ``out`` and ``settings``; returns which runs were done."""
-    dt = np.diff(t, axis=1)
-    valid = np.isfinite(t).all(axis=1) & np.isfinite(X).all(axis=(1, 2)) & (dt > 0).all(axis=1)
+    dt, valid, step = _steps_together(t, X)
     d4 = np.diff(X, n=4, axis=1)
     mad = np.median(np.abs(d4 - np.median(d4, axis=1, keepdims=True)), axis=1)
     sigma = mad / _MAD_SCALE / np.sqrt(70.0)  # estimate_noise, run by run
-    step = np.median(dt, axis=1)
     exact = (dt == dt[:, :1]).all(axis=1)
     grad = np.empty_like(X)
     for flag in (True, False):
