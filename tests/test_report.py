@@ -435,3 +435,15 @@ def test_guard_numbers_carry_their_standard_errors() -> None:
     assert "| 1 | 0 | T < 4.5 degC | – |" in text  # not computed: said so
     assert "40 block-bootstrap resamples" in text
     assert "guard_stderr" not in text  # shown in the table, not in the metadata dump
+
+
+def test_a_gate_threshold_has_no_standard_error() -> None:
+    # a two-valued variable (a gate) forces the switch at one value: the printed threshold is
+    # the middle of its two values by convention, and any value between them fits the data
+    model = two_regime_model()
+    model.metadata["guard_stderr"] = {"0->1": {"numbers": [5.5], "stderr": [0.0], "replicates": 40}}
+    model.metadata["guard_significance"] = {
+        "0->1": {"kept": {"T": 9.0}, "dropped": {}, "override": {"T": "forces at 6"}}
+    }
+    text = render_report(model)
+    assert "| T > 5.5 degC | – (a two-valued variable: any threshold between its values) |" in text

@@ -461,6 +461,9 @@ def _guard_stderr_text(model: HybridModel, g: Guard, spread: dict) -> str:
         return "–"
     se = [float(v) for v in rec.get("stderr", [])]
     nz = [t for t, w in zip(g.terms, g.weights, strict=True) if w != 0]
+    sig = ((model.metadata or {}).get("guard_significance") or {}).get(f"{g.source}->{g.target}")
+    if len(nz) == 1 and nz[0] in ((sig or {}).get("override") or {}):
+        return "– (a two-valued variable: any threshold between its values)"
     if len(se) == 1 and len(nz) == 1:
         unit = model.units.get(variable_of(nz[0]) or "", "")
         unit = f" {unit}" if unit not in ("", "-", "1") else ""
