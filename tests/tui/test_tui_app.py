@@ -531,3 +531,30 @@ async def test_date_time_logs_get_a_date_time_axis():
         axis = "".join(seg.text for seg in plots[-1]._lines()[-1])
         assert "06:00:00" in axis and "06:00:20" in axis  # hh:mm:ss (rounded) under 2 min
         assert "t = 0 s (2026-03-01 06:00:00)" in text_of(app, "#tl-readout")
+
+
+@sync
+async def test_keys_work_while_a_simulation_runs():
+    # the re-simulation runs in a worker thread: switching panels and runs does not wait for it
+    import threading
+    import time as _time
+
+    from conftest import fake_simulate
+
+    release = threading.Event()
+
+    def slow(*args):
+        release.wait(10.0)  # a long re-simulation (the library bounds it by its budgets)
+        return fake_simulate(*args)
+
+    app = demo_app(3, simulate=slow)
+    async with app.run_test(size=SIZE) as pilot:
+        await pilot.press("4")
+        await pilot.pause()
+        assert "simulating" in text_of(app, "#rp-head")
+        start = _time.monotonic()
+        await pilot.press("n", "1", "2")
+        assert app.query_one(ContentSwitcher).current == "regimes"
+        assert _time.monotonic() - start < 5.0
+        release.set()
+        await app.workers.wait_for_complete()
