@@ -16,7 +16,7 @@ import pandas as pd
 import pytest
 
 import modemap
-from modemap.app import cli
+from modemap.app import cli, cli_data
 from modemap.app.cli import main
 
 
@@ -221,7 +221,7 @@ def test_interrupt_exits_130(monkeypatch, write_file, capsys):
     def interrupted(*args, **kwargs):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(cli, "read_data", interrupted)
+    monkeypatch.setattr(cli_data, "read_data", interrupted)
     assert main(["check", str(write_file("a.csv", GOOD)), "--states", "x"]) == 130
     assert capsys.readouterr().err == "modemap: interrupted\n"
 
@@ -230,7 +230,7 @@ def test_os_error_is_a_user_error(monkeypatch, write_file, capsys):
     def denied(*args, **kwargs):
         raise PermissionError(13, "Permission denied", "a.csv")
 
-    monkeypatch.setattr(cli, "read_data", denied)
+    monkeypatch.setattr(cli_data, "read_data", denied)
     err = _fail(capsys, ["check", str(write_file("a.csv", GOOD)), "--states", "x"])
     assert "a.csv: Permission denied" in err
 

@@ -21,232 +21,22 @@ from typing import NoReturn
 import modemap
 from modemap._exceptions import DataError, ModemapError, ParameterError
 from modemap._progress import ProgressClock, format_duration
+from modemap.app.cli_data import (
+    add_data_options,
+    add_reading_options,
+    csv_format,
+    guess_time,
+    load_dataset,
+    share,
+    whole,
+)
 from modemap.data.dataset import Dataset
 from modemap.data.intake import parse_header, peek_columns, read_data, summarize
-from modemap.data.states import default_states
 
 __all__ = ["main"]
 
-_TIME_NAMES = ("time", "t")
 EXIT_USER_ERROR = 2
 EXIT_INTERRUPTED = 130
-
-
-# --------------------------------------------------------------------------- shared options
-
-
-def _names(text: str) -> list[str]:
-    """Split a comma-separated option value into names (blanks around commas ignored).
-
-    A name with a comma in it is written between backticks, as in terms (a backtick
-    inside doubled): ``--states '`Flow, total`,x'``.
-    """
-    names: list[str] = []
-    part, pos = "", 0
-    while pos <= len(text):
-        if text.startswith("`", pos) and not part.strip():
-            end = pos + 1
-            while True:
-                end = text.find("`", end)
-                if end < 0:
-                    raise argparse.ArgumentTypeError(f"unclosed '`' in {text!r}")
-                if not text.startswith("``", end):
-                    break
-                end += 2
-            part = text[pos + 1 : end].replace("``", "`")
-            pos = end + 1
-            rest = text[pos:].split(",", 1)[0]
-            if rest.strip():
-                raise argparse.ArgumentTypeError(f"text after a quoted name in {text!r}")
-            pos += len(rest)
-            names.append(part)
-            part, pos = "", pos + 1
-            continue
-        if pos == len(text) or text[pos] == ",":
-            names.append(part.strip())
-            part, pos = "", pos + 1
-            continue
-        part += text[pos]
-        pos += 1
-    if not all(n.strip() for n in names):
-        raise argparse.ArgumentTypeError(f"empty name in {text!r}")
-    return names
-
-
-def _positive_gap(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"not a number: {text!r}") from None
-    if not (value > 1 and math.isfinite(value)):
-        raise argparse.ArgumentTypeError(f"must be larger than 1 and finite, got {text}")
-    return value
-
-
-def _whole(text: str) -> int:
-    """A whole-number option value (argparse names the option in its message)."""
-    try:
-        return int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-
-
-def _share(text: str) -> float:
-    """A share in [0, 1) (the hold-out)."""
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number in [0, 1), got {text!r}") from None
-    if not 0 <= value < 1:
-        raise argparse.ArgumentTypeError(f"expected a number in [0, 1), got {text}")
-    return value
-
-
-_DELIMITER_WORDS = {",": ",", ";": ";", "|": "|", "tab": "\t", "\t": "\t", "\\t": "\t"}
-
-
-def _delimiter(text: str) -> str:
-    """``tab`` (or ``\\t``) as a tab; other values are checked by the reader."""
-    return _DELIMITER_WORDS.get(text, text)
-
-
-def add_reading_options(parser: argparse.ArgumentParser, *, missing: bool = True) -> None:
-    """Add the options that say how a CSV file is laid out, and what to do with gaps."""
-    group = parser.add_argument_group("reading CSV files")
-    group.add_argument(
-        "--delimiter",
-        type=_delimiter,
-        default=",",
-        metavar="C",
-        help="field delimiter: , ; | or tab (default ,)",
-    )
-    group.add_argument(
-        "--decimal",
-        default=".",
-        metavar="C",
-        help="decimal mark: . or , (default .)",
-    )
-    group.add_argument(
-        "--units-row",
-        action="store_true",
-        help="the line under the header holds the units (read as 'name [unit]')",
-    )
-    if missing:
-        group.add_argument(
-            "--missing",
-            default="refuse",
-            metavar="POLICY",
-            help="empty cells: refuse (default), drop (their rows) or interpolate "
-            "(linearly in time within a run)",
-        )
-
-
-def _csv_format(args: argparse.Namespace) -> dict:
-    """The reading options of ``args`` as keyword arguments of ``read_data``."""
-    return {"delimiter": args.delimiter, "decimal": args.decimal, "units_row": args.units_row}
-
-
-def add_data_options(
-    parser: argparse.ArgumentParser,
-    *,
-    metavar: str = "DATA",
-    help: str = "CSV or Parquet file(s)",
-    title: str = "columns",
-) -> None:
-    """Add the options that say which data and columns to read (shared by sub-commands)."""
-    parser.add_argument("data", nargs="+", metavar=metavar, help=help)
-    group = parser.add_argument_group(title)
-    group.add_argument("--time", metavar="NAME", help="time column (default: 'time' or 't')")
-    group.add_argument(
-        "--states",
-        type=_names,
-        metavar="A,B",
-        help="state columns (default: every numeric column but time, run and inputs, "
-        "leaving out constant, two-valued and label-like columns)",
-    )
-    group.add_argument("--inputs", type=_names, default=[], metavar="U,V", help="input columns")
-    group.add_argument("--run", metavar="NAME", help="column identifying runs within a file")
-    group.add_argument(
-        "--resample", action="store_true", help="interpolate irregular runs onto a uniform step"
-    )
-    group.add_argument(
-        "--max-gap",
-        type=_positive_gap,
-        default=5.0,
-        metavar="N",
-        help="split runs where the step exceeds N times the median (default 5)",
-    )
-    group.add_argument(
-        "--min-samples",
-        type=_whole,
-        default=8,
-        metavar="N",
-        help="fewest samples per run (default 8)",
-    )
-    add_reading_options(parser)
-
-
-def load_dataset(args: argparse.Namespace) -> Dataset:
-    """Read the data named by :func:`add_data_options`, filling in default columns."""
-    source = args.data[0] if len(args.data) == 1 else list(args.data)
-    if args.min_samples < 2:
-        raise ModemapError(f"--min-samples must be a whole number >= 2, got {args.min_samples}")
-    time, states = args.time, args.states
-    if time is None or states is None:
-        columns = peek_columns(source, **_csv_format(args))
-        label = str(args.data[0])
-        time = time if time is not None else _guess_time(columns, label)
-        if states is None:
-            states = _default_states(columns, [time, *args.inputs, args.run], label)
-    ds = read_data(
-        source,
-        time=time,
-        states=states,
-        inputs=args.inputs,
-        run=args.run,
-        resample=args.resample,
-        max_gap=args.max_gap,
-        min_samples=args.min_samples,
-        missing=args.missing,
-        **_csv_format(args),
-    )
-    # no states named: constant, two-valued and label-like columns are left out, with a note
-    return default_states(ds) if args.states is None else ds
-
-
-def _guess_time(columns: list[tuple[str, bool]], label: str) -> str:
-    """A column named ``time`` or ``t``; exact case wins (``T`` is often a temperature)."""
-    bare = [parse_header(h)[0] for h, _ in columns]
-    for want in _TIME_NAMES:
-        for same in (str.__eq__, lambda a, b: a.lower() == b):
-            hits = [h for (h, _), b in zip(columns, bare, strict=True) if same(b, want)]
-            if len(hits) > 1:
-                raise DataError(
-                    f"several time columns ({', '.join(hits)}); choose one with --time",
-                    source=label,
-                )
-            if hits:
-                return hits[0]
-    listed = ", ".join(repr(h) for h, _ in columns[:12]) + (", ..." if len(columns) > 12 else "")
-    raise DataError(
-        f"no column named 'time' or 't'; choose one with --time (columns: {listed})", source=label
-    )
-
-
-def _default_states(
-    columns: list[tuple[str, bool]], taken: list[str | None], label: str
-) -> list[str]:
-    used = set()
-    for name in taken:
-        if name is not None:
-            used |= {name.strip(), parse_header(name)[0]}
-    states = [h for h, numeric in columns if numeric and h.strip() not in used]
-    states = [h for h in states if parse_header(h)[0] not in used]
-    if not states:
-        raise DataError(
-            "no numeric column left to use as a state; name them with --states", source=label
-        )
-    return states
 
 
 # --------------------------------------------------------------------------- check
@@ -383,7 +173,7 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--max-regimes",
-        type=_whole,
+        type=whole,
         default=6,
         metavar="K",
         help="largest number of regimes 'auto' tries (default: 6)",
@@ -410,7 +200,7 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--max-degree",
-        type=_whole,
+        type=whole,
         default=3,
         metavar="D",
         help="highest degree 'auto' considers (default: 3)",
@@ -450,7 +240,7 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--holdout",
-        type=_share,
+        type=share,
         default=0.25,
         metavar="F",
         help="share of runs (or of the run's tail) kept out for validation (default: 0.25)",
@@ -464,21 +254,21 @@ def add_fit_options(parser: argparse.ArgumentParser) -> None:
     )
     group.add_argument(
         "--min-dwell",
-        type=_whole,
+        type=whole,
         default=1,
         metavar="N",
         help="shortest stay in a regime, in samples (default: 1)",
     )
     group.add_argument(
         "--min-regime-samples",
-        type=_whole,
+        type=whole,
         default=None,
         metavar="N",
         help="smallest regime kept, in samples (default: 5 per candidate term and at least "
         "20 when the number of regimes is chosen; 2 per term plus 2 and at least 10 when it "
         "is given)",
     )
-    group.add_argument("--seed", type=_whole, default=0, help="random seed (default: 0)")
+    group.add_argument("--seed", type=whole, default=0, help="random seed (default: 0)")
     group.add_argument(
         "--engine",
         choices=("local", "dask"),
@@ -617,7 +407,7 @@ def _data_record(args: argparse.Namespace) -> dict:
         "max_gap": args.max_gap,
         "min_samples": args.min_samples,
         "missing": args.missing,
-        **_csv_format(args),
+        **csv_format(args),
     }
 
 
@@ -687,7 +477,7 @@ def _add_simulate(subparsers: argparse._SubParsersAction) -> None:
         "--initial", metavar="A=1,B=2", help="initial state (default: DATA's first row)"
     )
     parser.add_argument(
-        "--regime", type=_whole, metavar="ID", help="initial regime (default: classify)"
+        "--regime", type=whole, metavar="ID", help="initial regime (default: classify)"
     )
     parser.add_argument("--out", required=True, metavar="FILE", help="output CSV")
     add_reading_options(parser)
@@ -738,7 +528,7 @@ def _run_simulate(args: argparse.Namespace) -> int:
             f"--regime {args.regime}: {args.model} has no such regime "
             f"(its regimes: {', '.join(map(str, ids))})"
         )
-    peeked = peek_columns(args.data, **_csv_format(args))
+    peeked = peek_columns(args.data, **csv_format(args))
     columns = [h for h, _ in peeked]
     bare = {parse_header(h)[0] for h in columns}
     has_states = all(s in bare for s in model.states)
@@ -747,7 +537,7 @@ def _run_simulate(args: argparse.Namespace) -> int:
             f"{args.data}: no columns for the states {', '.join(model.states)}; "
             "give the initial state with --initial"
         )
-    time = args.time or _guess_time(peeked, str(args.data))
+    time = args.time or guess_time(peeked, str(args.data))
     ds = _read_grid(args.data, time, model, has_states, args)
     initial = _parse_initial(args.initial, model.states) if args.initial else None
     frames, stopped = [], []
@@ -795,12 +585,12 @@ def _read_grid(path: str, time: str, model, has_states: bool, args) -> Dataset:
     if has_states:
         return read_data(
             path, time=time, states=list(model.states), inputs=list(model.inputs), run=run,
-            missing=missing, **_csv_format(args),
+            missing=missing, **csv_format(args),
         )  # fmt: skip
     # Only a time grid and inputs: validate them through intake with a placeholder state.
     from modemap.data.tables import CsvFormat, read_table
 
-    frame = read_table(path, CsvFormat(**_csv_format(args)))
+    frame = read_table(path, CsvFormat(**csv_format(args)))
     frame["__initial__"] = 0.0
     try:
         return read_data(
