@@ -225,3 +225,12 @@ def test_discrete_equilibrium_errors_match_their_spread() -> None:
     assert np.all((ratio > 0.5) & (ratio < 2.0)), ratio
     bias = estimates.mean(axis=0) - np.array([1.0, 5.0])
     assert np.all(np.abs(bias) < 3 * spread / np.sqrt(len(estimates))), bias
+
+
+def test_written_model_carries_the_guard_standard_errors(relay) -> None:
+    # computed once, for the model that is written (the refit on all data)
+    _, _, ident = relay
+    spread = ident.model_.metadata["guard_stderr"]
+    assert set(spread) == {f"{g.source}->{g.target}" for g in ident.model_.guards}
+    assert all(rec["replicates"] == 40 and min(rec["stderr"]) > 0 for rec in spread.values())
+    assert ident.surfaces_.n_boot == 40

@@ -145,7 +145,12 @@ class HybridIdentifier(BaseEstimator):
         progress(0.0, "splitting off validation data")
         train, test = split_holdout(ds, self.holdout) if self.holdout > 0 else (ds, None)
         last = 1.0 if test is None or not self.refit else 0.55
-        finder, surfaces, model = self._identify(train, stage, scaled(progress, 0.02, last))
+        # the guards' standard errors only for the model that is written: the refit's
+        # when there is one (the block bootstrap costs about 30 s on a million rows)
+        errors = test is None or not self.refit
+        finder, surfaces, model = self._identify(
+            train, stage, scaled(progress, 0.02, last), guard_errors=errors
+        )
         model.metadata["options"] = options_record(
             finder, surfaces, self.holdout, self.tolerance, self.refit
         )
@@ -173,9 +178,14 @@ class HybridIdentifier(BaseEstimator):
         return self
 
     def _identify(
-        self, ds: Dataset, stage: RegimeFinder, progress: ProgressCallback
+        self,
+        ds: Dataset,
+        stage: RegimeFinder,
+        progress: ProgressCallback,
+        guard_errors: bool = True,
     ) -> tuple[RegimeFinder, SwitchingSurfaces, HybridModel]:
-        """Regimes -> equilibria -> guards -> model, on ``ds``."""
+        """Regimes -> equilibria -> guards -> model, on ``ds`` (``guard_errors``: with the
+        guards' bootstrap standard errors)."""
         finder = stage.fit(ds, progress=scaled(progress, 0.0, 0.85))
         _, x, u, lengths = ds.concat()
         z = np.hstack([x, u])
@@ -183,9 +193,10 @@ class HybridIdentifier(BaseEstimator):
         progress(0.85, "equilibria and stability")
         regimes, inputs = self._regimes(ds, finder, z, labels)
         progress(0.93, "learning switching surfaces")
-        surfaces = (clone(self.guards) if self.guards else SwitchingSurfaces()).fit(
-            z, labels, lengths, list(ds.variable_names), units=dict(ds.units)
-        )
+        surfaces = clone(self.guards) if self.guards else SwitchingSurfaces()
+        if not guard_errors:
+            surfaces.set_params(n_boot=0)
+        surfaces.fit(z, labels, lengths, list(ds.variable_names), units=dict(ds.units))
         for regime, u_typ in zip(regimes, inputs, strict=True):
             place_equilibria(surfaces.guards_, [regime], ds.variable_names, u_typ)
         return finder, surfaces, self._model(ds, finder, surfaces, regimes, z, labels)
