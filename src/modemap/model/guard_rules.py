@@ -16,7 +16,7 @@ from modemap.model.hybrid import Guard
 from modemap.terms.expressions import quote_name, variable_of
 from modemap.terms.library import TermLibrary
 
-__all__ = ["after_values", "guard_text", "guard_values", "predict_labels"]
+__all__ = ["after_values", "guard_text", "guard_values", "predict_labels", "threshold_of"]
 
 
 def after_values(
@@ -51,6 +51,20 @@ def _decimals(span: float) -> int:
     return max(0, 2 - math.floor(math.log10(span)))
 
 
+def threshold_of(guard: Guard, variables: Sequence[str]) -> tuple[str, float, bool] | None:
+    """``(variable, threshold, fires_above)`` when ``guard`` compares one of ``variables``
+    with a constant (a ``"1"`` term counts as part of the constant), else None."""
+    weights = np.asarray(guard.weights, dtype=float)
+    offset = float(guard.offset) + float(
+        sum(w for w, t in zip(weights, guard.terms, strict=True) if t == "1")
+    )
+    active = [(w, t) for w, t in zip(weights, guard.terms, strict=True) if t != "1" and w != 0]
+    if len(active) != 1 or variable_of(active[0][1]) not in variables:
+        return None
+    w, term = active[0]
+    return str(variable_of(term)), -offset / w, bool(w > 0)
+
+
 def guard_text(
     guard: Guard, units: dict[str, str] | None = None, spans: dict[str, float] | None = None
 ) -> str:
@@ -66,11 +80,10 @@ def guard_text(
     head = f"switch {guard.source} -> {guard.target} when "
     if nz.size == 0:
         return head + ("always" if guard.offset > 0 else "never")
-    one = variable_of(guard.terms[nz[0]]) if nz.size == 1 else None
-    if one is not None and one in spans:
-        name = one
-        thr = -guard.offset / w[nz[0]]
-        op = ">" if w[nz[0]] > 0 else "<"
+    one = threshold_of(guard, list(spans))
+    if one is not None:
+        name, thr, above = one
+        op = ">" if above else "<"
         unit = f" {units[name]}" if units.get(name) else ""
         digits = _decimals(spans[name])
         return head + f"{quote_name(name)} {op} {round(thr, digits) + 0.0:.{digits}f}{unit}"

@@ -77,12 +77,12 @@ from sklearn.base import BaseEstimator
 
 from modemap._exceptions import FitError
 from modemap._params import Interval, Options, check_params
-from modemap.model.guard_rules import guard_text, guard_values
+from modemap.model.guard_rules import guard_text, guard_values, threshold_of
 from modemap.model.guard_spread import block_indices, printed_numbers, spread
 from modemap.model.hybrid import Guard
 from modemap.model.hysteresis import hysteresis_evidence, position_in_run
 from modemap.model.logistic import LogisticFit, fit_logistic
-from modemap.terms.expressions import quote_name, variable_of
+from modemap.terms.expressions import quote_name
 from modemap.terms.library import TermLibrary
 
 __all__ = ["SwitchingSurfaces"]
@@ -440,11 +440,7 @@ class SwitchingSurfaces(BaseEstimator):
         for i, j in list(self._fixed_terms):  # memoryless pairs: one surface both ways
             self._fixed_terms.setdefault((j, i), self._fixed_terms[(i, j)])
         kept = self._significance
-        one = {
-            (g.source, g.target): np.count_nonzero(g.weights) == 1
-            and variable_of(g.terms[int(np.flatnonzero(g.weights)[0])]) in self._spans
-            for g in self.guards_
-        }
+        one = {(g.source, g.target): threshold_of(g, self._vars) is not None for g in self.guards_}
         reps: dict[tuple[int, int], list[np.ndarray]] = {k: [] for k in one}
         final = {(g.source, g.target): g for g in self.guards_}
         for _ in range(int(self.n_boot)):

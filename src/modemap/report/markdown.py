@@ -16,6 +16,7 @@ from typing import Any
 
 import numpy as np
 
+from modemap.model.guard_rules import threshold_of
 from modemap.model.hybrid import Equilibrium, Guard, HybridModel, RegimeModel
 from modemap.model.summary import regime_equations
 from modemap.terms.expressions import quote_name, variable_of
@@ -462,10 +463,11 @@ def _guard_stderr_text(model: HybridModel, g: Guard, spread: dict) -> str:
     se = [float(v) for v in rec.get("stderr", [])]
     nz = [t for t, w in zip(g.terms, g.weights, strict=True) if w != 0]
     sig = ((model.metadata or {}).get("guard_significance") or {}).get(f"{g.source}->{g.target}")
-    if len(nz) == 1 and nz[0] in ((sig or {}).get("override") or {}):
+    one = _threshold(model, g)
+    if one is not None and len(nz) == 1 and nz[0] in ((sig or {}).get("override") or {}):
         return "– (a two-valued variable: any threshold between its values)"
-    if len(se) == 1 and len(nz) == 1:
-        unit = model.units.get(variable_of(nz[0]) or "", "")
+    if one is not None and len(se) == 1:
+        unit = model.units.get(one[0], "")
         unit = f" {unit}" if unit not in ("", "-", "1") else ""
         return f"threshold ± {_num(se[0])}{unit}"
     if len(se) != len(nz) + 1:
@@ -576,15 +578,7 @@ def _guard_terms_text(model: HybridModel) -> list[str]:
 
 def _threshold(model: HybridModel, g: Guard) -> tuple[str, float, bool] | None:
     """(variable, threshold, fires_above) when a guard is one variable against a constant."""
-    weights = np.asarray(g.weights, dtype=float)
-    offset = float(g.offset) + float(
-        sum(w for w, t in zip(weights, g.terms, strict=True) if t == "1")
-    )
-    active = [(w, t) for w, t in zip(weights, g.terms, strict=True) if t != "1" and w != 0]
-    if len(active) != 1 or variable_of(active[0][1]) not in model.variables:
-        return None
-    w, term = active[0]
-    return str(variable_of(term)), -offset / w, bool(w > 0)
+    return threshold_of(g, model.variables)
 
 
 def _hysteresis_notes(model: HybridModel) -> list[str]:
