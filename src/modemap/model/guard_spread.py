@@ -21,32 +21,21 @@ from collections.abc import Sequence
 import numpy as np
 
 from modemap.model.hybrid import Guard
+from modemap.model.hysteresis import contiguous_blocks, median_stay
 
 __all__ = ["block_indices", "printed_numbers", "spread"]
 
 
 def block_indices(labels: np.ndarray, lengths: Sequence[int], min_blocks: int = 10) -> list:
     """Row indices of contiguous blocks of every run, each about four median stays long
-    (at least 10 samples) and short enough that there are ``min_blocks`` of them."""
-    lengths = [int(n) for n in lengths]
-    stays = []
-    start = 0
-    for n in lengths:
-        lab = labels[start : start + n]
-        cuts = np.flatnonzero(np.diff(lab) != 0)
-        stays += np.diff(np.concatenate([[-1], cuts, [n - 1]])).tolist()
-        start += n
-    total = sum(lengths)
-    size = max(10, 4 * int(np.median(stays)) if stays else 10)
+    (:func:`~modemap.model.hysteresis.median_stay`; at least 10 samples) and short enough
+    that there are ``min_blocks`` of them; blocks of fewer than 2 samples are left out."""
+    total = int(np.sum(lengths))
+    size = max(10, 4 * int(median_stay(labels, lengths)))
     size = max(2, min(size, total // min_blocks))
-    blocks, start = [], 0
-    for n in lengths:
-        for a in range(0, n, size):
-            b = min(a + size, n)
-            if b - a >= 2:
-                blocks.append(np.arange(start + a, start + b))
-        start += n
-    return blocks
+    ids = contiguous_blocks(lengths, size)
+    blocks = np.split(np.arange(total), np.flatnonzero(np.diff(ids)) + 1)
+    return [b for b in blocks if b.size >= 2]
 
 
 def printed_numbers(final: Guard, guard: Guard, one_variable: bool) -> np.ndarray:
