@@ -131,6 +131,28 @@ def test_autocorrelation_time_of_an_ar1_series(phi) -> None:
     assert tau == pytest.approx((1 + phi) / (1 - phi), rel=0.12, abs=0.05)
 
 
+def test_autocorrelation_time_sees_past_the_telescoping_noise() -> None:
+    # Increments of consecutive windows share an end sample: measurement noise e gives the
+    # residual e[t+1] - e[t] (rho_1 = -1/2, long-run variance 0), model error adds an AR(1)
+    # series a (coefficient phi, innovations s).  The integrated autocorrelation time is
+    # the long-run variance over the variance (textbook, common practice):
+    # (s^2 / (1 - phi)^2) / (2 + s^2 / (1 - phi^2)) = 3.64 for s = 0.3, phi = 0.9.  A sum
+    # stopped at the first negative autocorrelation gives 1 here; Geyer's pairs do not.
+    rng = np.random.default_rng(5)
+    phi, s = 0.9, 0.3
+    runs = []
+    for _ in range(4):
+        e = rng.standard_normal(20_001)
+        a = np.empty(20_000)
+        a[0] = rng.standard_normal() * s / np.sqrt(1 - phi**2)
+        for t in range(1, a.size):
+            a[t] = phi * a[t - 1] + s * rng.standard_normal()
+        runs.append(np.diff(e) + a)
+    tau = autocorrelation_time(np.concatenate(runs)[:, None], np.array([20_000] * 4))
+    expected = (s**2 / (1 - phi) ** 2) / (2 + s**2 / (1 - phi**2))
+    assert tau == pytest.approx(expected, rel=0.12)
+
+
 def test_windows_hold_a_regime_only_when_their_samples_agree() -> None:
     # the common targets: increments over windows of h intervals, the regressors their
     # trapezoidal integrals; exact for x' = 2 (a constant slope: the target is 2 whatever

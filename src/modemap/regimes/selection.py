@@ -29,11 +29,11 @@ noise model:
 * **serial correlation**: slowly varying model error makes neighbouring residuals alike,
   and a likelihood that counts every window as independent overstates the evidence.  The
   log-likelihood is divided by the residuals' integrated autocorrelation time
-  ``tau = 1 + 2 sum_k rho_k`` (summed while the estimates stay positive, the initial
-  positive sequence of "Practical Markov chain Monte Carlo", Statistical Science 7(4),
-  1992, DOI 10.1214/ss/1177011137), estimated once, on the whitened residuals of the
-  candidate that fits best, so every candidate is judged on one scale; ``n / tau`` is the
-  effective number of windows.
+  ``tau = 1 + 2 sum_k rho_k``, summed as Geyer's initial positive sequence (the sums of
+  adjacent pairs ``rho_2k + rho_2k+1`` while they stay positive: "Practical Markov chain
+  Monte Carlo", Statistical Science 7(4), 1992, DOI 10.1214/ss/1177011137), estimated
+  once, on the whitened residuals of the candidate that fits best, so every candidate is
+  judged on one scale; ``n / tau`` is the effective number of windows.
 
 The criterion is then
 
@@ -362,9 +362,13 @@ def _statistics(local: Any, G: np.ndarray, target: np.ndarray) -> GramStats | li
 def autocorrelation_time(residuals: np.ndarray, lengths: np.ndarray) -> float:
     """Integrated autocorrelation time of residuals (n, m) over runs, averaged over columns.
 
-    Missing rows (NaN) are set to zero after centring.  ``tau = 1 + 2 sum_k rho_k`` with the
-    sum stopped at the first lag whose estimate is not positive (Geyer's initial positive
-    sequence, see the module notes), at most a quarter of the shortest run; never below 1.
+    Missing rows (NaN) are set to zero after centring.  ``tau = -1 + 2 sum_k Gamma_k`` with
+    ``Gamma_k = rho_2k + rho_2k+1`` summed while they stay positive (Geyer's initial positive
+    sequence, see the module notes), lags at most a quarter of the shortest run; never below
+    1.  Summing pairs matters here: the increments of consecutive windows share an end
+    sample, so measurement noise alone gives ``rho_1 = -1/2``, and a sum stopped at the
+    first negative estimate would never reach the positive correlation of model error at
+    longer lags.
     """
     r = np.asarray(residuals, dtype=np.float64)
     r = r[:, None] if r.ndim == 1 else r
@@ -382,10 +386,13 @@ def autocorrelation_time(residuals: np.ndarray, lengths: np.ndarray) -> float:
         acf = _acf(x, lengths, max_lag)
         if acf[0] <= 0:
             continue
-        rho = acf[1:] / acf[0]
-        stop = np.flatnonzero(rho <= 0)
-        rho = rho[: stop[0]] if stop.size else rho
-        taus.append(1.0 + 2.0 * float(rho.sum()))
+        rho = acf / acf[0]
+        if rho.size % 2:  # lags 0..max_lag in pairs (2k, 2k + 1)
+            rho = rho[:-1]
+        pairs = rho.reshape(-1, 2).sum(axis=1)
+        stop = np.flatnonzero(pairs <= 0)
+        pairs = pairs[: stop[0]] if stop.size else pairs
+        taus.append(-1.0 + 2.0 * float(pairs.sum()))
     return max(1.0, float(np.mean(taus))) if taus else 1.0
 
 
