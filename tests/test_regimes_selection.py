@@ -9,8 +9,10 @@ import statsmodels.api as sm
 
 from modemap.regimes.likelihood import regime_log_likelihood
 from modemap.regimes.selection import (
+    _wald_pairs,
     autocorrelation_time,
     count_parameters,
+    distinct_regimes,
     information_criterion,
 )
 from modemap.regimes.viterbi import forward_backward
@@ -151,6 +153,44 @@ def test_autocorrelation_time_sees_past_the_telescoping_noise() -> None:
     tau = autocorrelation_time(np.concatenate(runs)[:, None], np.array([20_000] * 4))
     expected = (s**2 / (1 - phi) ** 2) / (2 + s**2 / (1 - phi**2))
     assert tau == pytest.approx(expected, rel=0.12)
+
+
+def test_wald_statistic_of_two_constant_regimes_is_welchs_t_squared() -> None:
+    # Two regimes with a constant only: the Wald statistic of the difference of their
+    # coefficients, each with its own least-squares variance, is the square of Welch's t
+    # (scipy.stats.ttest_ind with equal_var=False).
+    from scipy import stats
+
+    rng = np.random.default_rng(11)
+    y = np.concatenate([1.0 + rng.standard_normal(300), 1.2 + 2.0 * rng.standard_normal(500)])
+    labels = np.repeat([0, 1], [300, 500])
+    G = np.ones((y.size, 1))
+    coefs = [np.array([[y[labels == j].mean()]]) for j in (0, 1)]
+    [(a, b, W, dof)] = _wald_pairs(coefs, G, y[:, None], labels)
+    t = stats.ttest_ind(y[labels == 0], y[labels == 1], equal_var=False).statistic
+    assert (a, b, dof) == (0, 1, 1)
+    assert W == pytest.approx(t**2, rel=1e-10)
+
+
+def test_regimes_a_wald_test_cannot_tell_apart_count_as_one() -> None:
+    # the same line fitted on three stretches: two share their slope and intercept (their
+    # difference is noise), the third does not; the candidate keeps two distinct regimes
+    from types import SimpleNamespace
+
+    rng = np.random.default_rng(12)
+    z = rng.uniform(-1, 1, 3000)
+    labels = np.repeat([0, 1, 2], 1000)
+    y = np.where(labels == 2, 3.0 - 2.0 * z, 1.0 + 0.5 * z) + 0.1 * rng.standard_normal(3000)
+    G = np.column_stack([np.ones_like(z), z])
+    coefs = [
+        np.linalg.lstsq(G[labels == j], y[labels == j], rcond=None)[0][:, None] for j in range(3)
+    ]
+    wald = _wald_pairs(coefs, G, y[:, None], labels)
+    candidate = SimpleNamespace(result=SimpleNamespace(n_regimes=3), wald=wald)
+    assert distinct_regimes(candidate) == 2
+    # a huge autocorrelation time leaves no evidence for any difference
+    assert distinct_regimes(candidate, tau=1e9) == 1
+    assert distinct_regimes(SimpleNamespace(result=SimpleNamespace(n_regimes=3), wald=[])) == 3
 
 
 def test_windows_hold_a_regime_only_when_their_samples_agree() -> None:

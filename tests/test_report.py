@@ -198,7 +198,7 @@ def test_selection_table_and_choice() -> None:
     text = render_report(two_regime_model())
     assert "Number of regimes asked for: chosen from the data." in text
     assert "Chosen: K = 2, polynomial terms up to degree 2; the model has 2 regime(s)." in text
-    assert "kept fewer regimes than asked for (K = 3)" in text
+    assert "kept fewer distinct regimes than asked for (K = 3;" in text
     header = "| K | degree | n_regimes | loglik | n_params | criterion | effective_windows |"
     assert header in text
     assert "| 2 | 2 | 2 | -400 | 18 | 907.5 | 400 | no | yes |" in text

@@ -46,6 +46,19 @@ residual covariances (``m (m + 1) / 2`` once, or per regime), ``K (K - 1)`` tran
 ``K - 1`` initial probabilities, and those of the gate and of optional emission terms.  The
 lowest ``C`` wins, the fewer parameters on a tie.  A candidate whose refinement lost regimes
 (it asked for ``K`` and kept fewer) is shown as collapsed and never chosen.
+
+**Distinct regimes.**  A regime is its equations: two regimes whose models the data cannot
+tell apart are one regime, however much the chain gains by telling their stretches apart (a
+region of a piecewise-affine field entered from two sides can be split in two copies whose
+only difference is where each goes next).  With a noise covariance shared by the regimes
+(so that regimes differ by their dynamics alone), every pair of regimes is compared by a
+Wald test of the difference of their window fits' coefficients, over the union of their
+terms and every state, with each fit's least-squares covariance scaled by the
+autocorrelation time (:func:`distinct_regimes`).  A pair whose difference is not
+significant at the 1 % level (:data:`DISTINCT_LEVEL`, the level the guards' terms are
+tested at) counts as one regime, and a candidate with fewer distinct regimes than ``K`` is
+shown as collapsed, with ``n_regimes`` its distinct regimes.  With one covariance per regime
+(discrete form) regimes may differ in their noise alone, and no pair is merged.
 """
 
 from __future__ import annotations
@@ -69,6 +82,7 @@ __all__ = [
     "autocorrelation_time",
     "choose",
     "count_parameters",
+    "distinct_regimes",
     "information_criterion",
     "library_criteria",
     "score",
@@ -76,6 +90,10 @@ __all__ = [
 
 #: Lags the autocorrelation time sums at most, as a share of the shortest run's rows.
 _MAX_LAG_SHARE = 0.25
+
+#: Two regimes count as one when a Wald test cannot tell their models apart at this level
+#: (the module notes; the level of the guards' term tests, common practice).
+DISTINCT_LEVEL = 0.01
 
 
 @dataclass
@@ -112,6 +130,7 @@ class Candidate:
     scored: int = 0
     residuals: np.ndarray | None = field(default=None, repr=False)
     posteriors: np.ndarray | None = field(default=None, repr=False)
+    wald: list[tuple[int, int, float, int]] = field(default_factory=list, repr=False)
 
     @property
     def collapsed(self) -> bool:
@@ -303,7 +322,73 @@ def score(
     candidate.scored = int(scored.sum())
     candidate.residuals = white
     candidate.posteriors = posteriors
+    if result.covariance == "tied":
+        candidate.wald = _wald_pairs(coefs, G, target, labels)
     return candidate
+
+
+def _wald_pairs(
+    coefs: list[np.ndarray], G: np.ndarray, target: np.ndarray, labels: np.ndarray
+) -> list[tuple[int, int, float, int]]:
+    """``(a, b, W, dof)`` for every pair of regimes: the Wald statistic of the difference of
+    their coefficients over the union of their terms and every state, each regime's
+    least-squares covariance from its own windows (a pair either of whose regimes has too
+    few windows for its terms is left out)."""
+    m = target.shape[1]
+    covs: list[list[np.ndarray] | None] = []
+    for j, coef in enumerate(coefs):
+        sel = labels == j
+        per_state: list[np.ndarray] | None = []
+        for s in range(m):
+            support = np.flatnonzero(coef[:, s] != 0)
+            V = np.zeros((coef.shape[0], coef.shape[0]))
+            if support.size:
+                if sel.sum() <= support.size + 1:
+                    per_state = None
+                    break
+                Gs = G[sel][:, support]
+                r = target[sel, s] - Gs @ coef[support, s]
+                sigma2 = float(r @ r) / (int(sel.sum()) - support.size)
+                V[np.ix_(support, support)] = sigma2 * np.linalg.pinv(Gs.T @ Gs)
+            per_state.append(V)
+        covs.append(per_state)
+    out = []
+    for a in range(len(coefs)):
+        for b in range(a + 1, len(coefs)):
+            if covs[a] is None or covs[b] is None:
+                continue
+            W, dof = 0.0, 0
+            for s in range(m):
+                union = np.flatnonzero((coefs[a][:, s] != 0) | (coefs[b][:, s] != 0))
+                if not union.size:
+                    continue
+                V = covs[a][s][np.ix_(union, union)] + covs[b][s][np.ix_(union, union)]
+                d = (coefs[a][:, s] - coefs[b][:, s])[union]
+                W += float(d @ np.linalg.pinv(V) @ d)
+                dof += int(union.size)
+            if dof:
+                out.append((a, b, W, dof))
+    return out
+
+
+def distinct_regimes(candidate: Candidate, tau: float = 1.0) -> int:
+    """The candidate's regimes that a Wald test tells apart (module notes): regimes joined
+    by a pair whose difference is not significant at :data:`DISTINCT_LEVEL`, with each
+    statistic divided by the autocorrelation time ``tau``, count as one."""
+    from scipy.stats import chi2
+
+    k = candidate.result.n_regimes
+    parent = list(range(k))
+
+    def root(i: int) -> int:
+        while parent[i] != i:
+            i = parent[i]
+        return i
+
+    for a, b, W, dof in candidate.wald:
+        if chi2.sf(W / max(float(tau), 1.0), dof) > DISTINCT_LEVEL:
+            parent[root(a)] = root(b)
+    return len({root(i) for i in range(k)})
 
 
 def library_criteria(locals_: list[Any], windows: Windows) -> list[float]:
@@ -423,20 +508,21 @@ def choose(candidates: list[Candidate], windows: Windows) -> tuple[pd.DataFrame,
     best_fit = max(live, key=lambda c: c.loglik)
     tau = autocorrelation_time(best_fit.residuals, windows.lengths)
     n = windows.n_windows
+    distinct = [distinct_regimes(c, tau) for c in candidates]
     table = pd.DataFrame(
         [
             {
                 "K": c.k,
                 "degree": "terms" if c.degree is None else c.degree,
-                "n_regimes": c.result.n_regimes,
+                "n_regimes": kept,
                 "loglik": c.loglik,
                 "n_params": c.n_params,
                 "criterion": information_criterion(c.loglik, c.n_params, n, tau),
                 "effective_windows": n / tau,
-                "collapsed": c.collapsed,
+                "collapsed": kept < c.k,
                 "chosen": False,
             }
-            for c in candidates
+            for c, kept in zip(candidates, distinct, strict=True)
         ]
     )
     crit = np.where(table["collapsed"].to_numpy(), np.inf, table["criterion"].to_numpy())

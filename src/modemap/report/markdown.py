@@ -258,9 +258,10 @@ def _selection_section(model: HybridModel) -> str:
     collapsed = sorted({row.get("K") for row in table if row.get("collapsed")})
     if collapsed:
         text += (
-            " Candidates marked collapsed kept fewer regimes than asked for (K = "
+            " Candidates marked collapsed kept fewer distinct regimes than asked for (K = "
             + ", ".join(_num(k) for k in collapsed)
-            + ") and were not eligible."
+            + "; a regime lost while refining, or two regimes whose equations a Wald test "
+            "cannot tell apart) and were not eligible."
         )
     out.append(text)
     header = list(dict.fromkeys(key for row in table for key in row))
