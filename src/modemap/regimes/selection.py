@@ -69,6 +69,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy.stats import chi2
 
 from modemap.fit.statistics import GramStats
 from modemap.regimes.likelihood import SurfaceTerm, pair_counts, transition_model
@@ -375,8 +376,6 @@ def distinct_regimes(candidate: Candidate, tau: float = 1.0) -> int:
     """The candidate's regimes that a Wald test tells apart (module notes): regimes joined
     by a pair whose difference is not significant at :data:`DISTINCT_LEVEL`, with each
     statistic divided by the autocorrelation time ``tau``, count as one."""
-    from scipy.stats import chi2
-
     k = candidate.result.n_regimes
     parent = list(range(k))
 
