@@ -548,6 +548,18 @@ def test_a_text_edit_of_a_model_file_loads_or_raises_model_file_error(data) -> N
     _loads_or_refuses(text[:start] + insert + text[stop:])
 
 
+def test_a_value_holding_a_line_break_is_refused_on_one_line() -> None:
+    # found by the text-edit property above: an edit that put "\n" (JSON's escape) inside
+    # the form's string gave a two-line message; the value is now shown escaped, as repr does
+    data = model_to_dict(small_model())
+    data["form"] = "contin\nuous\u2028"
+    with pytest.raises(ModelFileError) as info:
+        loads_model(json.dumps(data), source="m.json")
+    message = str(info.value)
+    assert message.isprintable() and message.startswith("m.json: form: ")
+    assert "contin\\nuous\\u2028" in message
+
+
 def test_a_model_too_large_to_load_back_is_not_saved(tmp_path: Path, monkeypatch) -> None:
     from modemap.model import modelfile
 

@@ -504,6 +504,12 @@ def _kind(value: Any) -> str:
     return type(value).__name__
 
 
+def _one_line(text: str) -> str:
+    """``text`` with its control characters (a newline inside a quoted value) written as
+    escapes, as ``repr`` writes them: an error is one line."""
+    return "".join(c if c.isprintable() else repr(c)[1:-1] for c in text)
+
+
 def _is_number(value: Any) -> bool:
     return isinstance(value, int | float) and not isinstance(value, bool)
 
@@ -517,7 +523,8 @@ class _Reader:
 
     def fail(self, path: str, message: str) -> NoReturn:
         prefix = f"{self.source}: cannot save" if self.saving else self.source
-        raise ModelFileError(f"{prefix}: {path}: {message}" if path else f"{prefix}: {message}")
+        text = f"{prefix}: {path}: {message}" if path else f"{prefix}: {message}"
+        raise ModelFileError(_one_line(text))
 
     # --- primitives
     def obj(self, value: Any, path: str) -> dict[str, Any]:
