@@ -69,6 +69,8 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
 from scipy.stats import chi2
 
 from modemap.fit.statistics import GramStats
@@ -339,18 +341,20 @@ def _wald_pairs(
     covs: list[list[np.ndarray] | None] = []
     for j, coef in enumerate(coefs):
         sel = labels == j
+        Gj = G[sel]  # the regime's windows, its residuals and normal matrix once
+        rss = ((target[sel] - Gj @ coef) ** 2).sum(axis=0)
+        gram = Gj.T @ Gj
         per_state: list[np.ndarray] | None = []
         for s in range(m):
             support = np.flatnonzero(coef[:, s] != 0)
             V = np.zeros((coef.shape[0], coef.shape[0]))
             if support.size:
-                if sel.sum() <= support.size + 1:
+                if Gj.shape[0] <= support.size + 1:
                     per_state = None
                     break
-                Gs = G[sel][:, support]
-                r = target[sel, s] - Gs @ coef[support, s]
-                sigma2 = float(r @ r) / (int(sel.sum()) - support.size)
-                V[np.ix_(support, support)] = sigma2 * np.linalg.pinv(Gs.T @ Gs)
+                sigma2 = float(rss[s]) / (Gj.shape[0] - support.size)
+                block = np.ix_(support, support)
+                V[block] = sigma2 * np.linalg.pinv(gram[block])
             per_state.append(V)
         covs.append(per_state)
     out = []
@@ -377,17 +381,16 @@ def distinct_regimes(candidate: Candidate, tau: float = 1.0) -> int:
     by a pair whose difference is not significant at :data:`DISTINCT_LEVEL`, with each
     statistic divided by the autocorrelation time ``tau``, count as one."""
     k = candidate.result.n_regimes
-    parent = list(range(k))
-
-    def root(i: int) -> int:
-        while parent[i] != i:
-            i = parent[i]
-        return i
-
-    for a, b, W, dof in candidate.wald:
-        if chi2.sf(W / max(float(tau), 1.0), dof) > DISTINCT_LEVEL:
-            parent[root(a)] = root(b)
-    return len({root(i) for i in range(k)})
+    same = [
+        (a, b)
+        for a, b, W, dof in candidate.wald
+        if chi2.sf(W / max(float(tau), 1.0), dof) > DISTINCT_LEVEL
+    ]
+    if not same:
+        return k
+    a, b = np.array(same).T
+    joined = coo_matrix((np.ones(a.size), (a, b)), shape=(k, k))
+    return int(connected_components(joined, directed=False)[0])
 
 
 def library_criteria(locals_: list[Any], windows: Windows) -> list[float]:
