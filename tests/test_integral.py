@@ -23,11 +23,18 @@ import statsmodels.api as sm
 from statsmodels.stats.sandwich_covariance import S_nw_panel, weights_bartlett
 
 from lag_data import held_lag
+from modemap.data.derivatives import estimate_noise
 from modemap.demos import make_demo
 from modemap.fit.centring import fit_sparse_centred
 from modemap.fit.sparse import LocalFit
 from modemap.fit.statistics import GramStats
-from modemap.regimes.integral import LongRunVariance, integral_refit, right_ends, window_bounds
+from modemap.regimes.integral import (
+    EndpointNoise,
+    LongRunVariance,
+    integral_refit,
+    right_ends,
+    window_bounds,
+)
 from modemap.regimes.rows import Rows
 from modemap.regimes.segments import stepped_columns
 from modemap.terms.library import TermLibrary
@@ -186,7 +193,53 @@ def test_long_run_variance_equals_statsmodels_newey_west_fed_in_any_pieces() -> 
     np.testing.assert_allclose(acc.result(), scores[:, 0].T @ scores[:, 0], rtol=1e-12)
 
 
-def test_effective_windows_follow_the_sandwich_and_never_exceed_the_windows() -> None:
+def _endpoint_gram(X, start, end):
+    """``sum_k d_k d_k'`` from its definition: ``d_k`` the windows ending at sample ``k``
+    less those starting there."""
+    d = np.zeros((int(end.max()) + 1, X.shape[1]))
+    np.add.at(d, end, X)
+    np.subtract.at(d, start, X)
+    return d.T @ d
+
+
+def test_endpoint_noise_is_the_spread_of_the_score_sums_over_noise_draws() -> None:
+    # three stretches (one shorter than the window), fed in pieces that cut a stretch;
+    # reference: the covariance of sum_w X_w (n_end - n_start) over 40000 draws of white
+    # noise (Monte Carlo, common practice), and the sum of d_k d_k' written out
+    rng = np.random.default_rng(3)
+    labels = np.repeat([0, 1, 0], [70, 9, 50])
+    start, end, stretch = window_bounds([labels.size], labels, window=16)
+    X = np.column_stack([2.0 + np.sin(start / 20.0), np.cos(start / 15.0)])  # smooth terms
+    acc = EndpointNoise(16, 2)
+    for piece in np.array_split(np.arange(start.size), [23, 61]):
+        acc.add(X[piece], stretch[piece], (end - start)[piece])
+    np.testing.assert_allclose(acc.total, _endpoint_gram(X, start, end), rtol=1e-12)
+    noise = rng.standard_normal((40000, labels.size))
+    sums = (noise[:, end] - noise[:, start]) @ X
+    np.testing.assert_allclose(acc.total, sums.T @ sums / len(noise), rtol=0.03)
+
+
+def test_standard_errors_never_fall_below_what_the_measured_noise_makes() -> None:
+    # one stretch of 30 samples against windows of 16 and 32 lags: the Newey-West sum of a
+    # regime's scores, which sum to zero at its least-squares solution, comes out near
+    # zero; the standard errors stay at least those of the targets' noise alone (noise
+    # variance from fourth differences, the estimate the compensation uses)
+    a, b, dt, window, n = 2.0, 3.0, 0.05, 16, 30
+    t, Z = _lag(a, b, dt, n, seed=2, noise=0.01)
+    labels = np.zeros(n, dtype=np.int64)
+    library = TermLibrary.from_terms(["x", "u"], ["x", "u"])
+    done = _refit(library, Z, t, [n], labels, 1, window=window, compensate=False)
+    X, _, start, _ = _reference_windows(t, Z, labels, window)
+    X, end = X[:, 1:], start + window
+    inv = np.linalg.inv(X.T @ X)
+    sigma2 = estimate_noise(Z[:, :1])[0] ** 2
+    bound = np.sqrt(np.diag(inv @ (sigma2 * _endpoint_gram(X, start, end)) @ inv))
+    stderr = done.fits[0].stderr[:, 0]
+    assert np.all(stderr >= bound * (1 - 1e-9))
+    assert stderr == pytest.approx(bound, rel=1e-6)  # the bound is what holds here
+
+
+def test_effective_windows_follow_the_sandwich_both_ways() -> None:
     a, b, dt, window, n = 2.0, 3.0, 0.05, 8, 1500
     t, Z = _lag(a, b, dt, n, seed=6, noise=0.01)
     labels = np.zeros(n, dtype=np.int64)
@@ -203,27 +256,29 @@ def test_effective_windows_follow_the_sandwich_and_never_exceed_the_windows() ->
     assert ratio([0, 1]) > 2.0
     assert done.stats[0].n == pytest.approx(done.n_windows[0] / ratio([0, 1]), rel=1e-6)
     # the right model: the residual is the measurement noise, whose part in the targets
-    # telescopes over overlapping windows, so the sandwich variance is below the plain one;
-    # the statistics still count no more windows than there are
+    # telescopes over overlapping windows, so the sandwich variance is below the plain one
+    # and the statistics count more windows than there are (the variance the noise alone
+    # makes, the lower bound, is below the sandwich's here)
     library = TermLibrary.from_terms(["1", "x", "u"], ["x", "u"])
     done = _refit(library, Z, t, [n], labels, 1, window=window, compensate=False)
     assert ratio([0, 1, 2]) < 1.0
-    assert done.stats[0].n == done.n_windows[0]
+    assert done.stats[0].n == pytest.approx(done.n_windows[0] / ratio([0, 1, 2]), rel=1e-6)
 
 
 def test_selection_and_effective_windows_are_iterated_until_the_support_settles() -> None:
     # the fit handed in lacks u, whose contribution, left in its residuals, is serially
     # correlated over many windows: the first selection sees n / (a large ratio) windows;
     # it finds u, and the second sees the windows counted on the residuals of 1, x, u
-    # (ratios by statsmodels' Newey-West against plain least squares, at least 1); the
-    # support then stays and the selection stops
+    # (ratios by statsmodels' Newey-West against plain least squares; below 1 on the right
+    # support, where the targets' noise telescopes); the support then stays and the
+    # selection stops
     a, b, dt, window, n = 2.0, 3.0, 0.05, 8, 1500
     t, Z = _lag(a, b, dt, n, seed=6, noise=0.01)
     labels = np.zeros(n, dtype=np.int64)
     X, y, _, stretch = _reference_windows(t, Z, labels, window)
 
     def ratio(columns):
-        return max(1.0, _hac_ratio(X[:, columns], y, stretch, window))
+        return _hac_ratio(X[:, columns], y, stretch, window)
 
     library = TermLibrary.from_terms(["1", "x", "u"], ["x", "u"])
     terms = list(library.terms_)

@@ -26,7 +26,10 @@ the step.
 one window over all of it).  Windows that overlap have correlated residuals, so
 the standard errors are a sandwich whose middle is the Newey-West long-run
 variance of the windows' scores within each stretch, with two window lengths of
-lags (:class:`LongRunVariance`).
+lags (:class:`LongRunVariance`), never below the variance that the targets'
+measurement noise alone makes (:class:`EndpointNoise`): on a short record the
+long-run variance comes out too low, because a regime's scores sum to zero at
+its least-squares solution.
 
 **Noise in the regressors.**  The integrated terms are computed from noisy
 states, which biases least squares towards zero on every term that carries
@@ -44,9 +47,11 @@ estimate is kept for that state and a note says so.
 
 **Selection.**  Given a selection function, the terms are chosen again on the
 window statistics scaled to an effective number of independent windows (the
-largest ratio of a sandwich variance to the plain least-squares one, never
-below 1); those scaled statistics are also what is handed on for the
-equilibria's standard errors.  The ratio comes from the residuals of the
+largest ratio of a sandwich variance to the plain least-squares one); those
+scaled statistics are also what is handed on for the equilibria's standard
+errors.  The ratio may be below 1: the targets' noise telescopes over
+overlapping windows, which then carry more information than as many
+independent ones.  The ratio comes from the residuals of the
 support being chosen among, so selection and ratio are iterated until the
 supports settle (at most ``_SELECTION_ROUNDS`` selections).  The residual
 covariance of each fit stays that of the derivative targets, which the decoding
@@ -70,7 +75,14 @@ from modemap.fit.uncertainty import standard_errors
 from modemap.regimes.rows import Rows
 from modemap.regimes.segments import stepped_columns
 
-__all__ = ["IntegralRefit", "LongRunVariance", "integral_refit", "right_ends", "window_bounds"]
+__all__ = [
+    "EndpointNoise",
+    "IntegralRefit",
+    "LongRunVariance",
+    "integral_refit",
+    "right_ends",
+    "window_bounds",
+]
 
 _CHUNK_ROWS = 65536
 #: Lags of the long-run variance of the scores, in window lengths (:class:`LongRunVariance`).
@@ -225,7 +237,7 @@ class _Windows:
         keep = (labels[start] >= 0) & (labels[start] < n_regimes)  # unassigned samples: none
         self.start, self.end, self.stretch = start[keep], end[keep], stretch[keep]
         self.regime = labels[self.start].astype(np.int64)
-        self.lags = _LAG_WINDOWS * window
+        self.window, self.lags = window, _LAG_WINDOWS * window
         self.chunks = _chunks(self.start)
 
     def at_right(self, func, values: np.ndarray, lo: int, hi: int) -> np.ndarray:
@@ -349,7 +361,8 @@ def integral_refit(
     if int(window) < 1:
         raise ValueError(f"window must be >= 1, got {window!r}")
     windows = _Windows(library, Z, n_states, time, lengths, labels, int(window), k)
-    noise_var = _noise_variance(Z[:, :n_states], lengths) if compensate else np.zeros(n_states)
+    bound_var = _noise_variance(Z[:, :n_states], lengths)
+    noise_var = bound_var if compensate else np.zeros(n_states)
     stats = [GramStats.zeros(p, n_states) for _ in range(k)]
     bias = np.zeros((k, p, p))
     bias_cross = np.zeros((k, p, n_states))
@@ -365,14 +378,14 @@ def integral_refit(
             _add_noise_bias(windows, (lo, hi), s, e, labels[lo:hi], noise_var, acc)
     fits = list(fits)
     solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
-    spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
+    spread, least = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states, bound_var)
     # the effective number of windows comes from the residuals of the support it selects
     # among; a support that misses a term leaves it in the residuals, serially correlated,
     # and counts too few windows, so the two are iterated until the supports settle
     for _ in range(_SELECTION_ROUNDS if select is not None else 0):
         changed = False
         for g, (coef, normal, _) in enumerate(solved):
-            _, effective = _sandwich(fits[g], coef, normal, spread[g], stats[g])
+            _, effective = _sandwich(fits[g], coef, normal, spread[g], least[g], stats[g])
             if effective.n > p:  # enough independent windows to choose among the terms
                 chosen = select(effective)
                 support = np.asarray(chosen.support, dtype=bool)
@@ -387,10 +400,10 @@ def integral_refit(
         if not changed:
             break
         solved = [_solve(stats[g], bias[g], bias_cross[g], fits[g]) for g in range(k)]
-        spread = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states)
+        spread, least = _score_spread(windows, [c for c, _, _ in solved], k, p, n_states, bound_var)
     new_fits, new_stats = [], []
     for g, (coef, normal, _) in enumerate(solved):
-        stderr, scaled = _sandwich(fits[g], coef, normal, spread[g], stats[g])
+        stderr, scaled = _sandwich(fits[g], coef, normal, spread[g], least[g], stats[g])
         new_fits.append(_local_fit(fits[g], coef, stderr, derivative_stats[g]))
         new_stats.append(scaled)
     counts = np.bincount(windows.regime, minlength=k)[:k]
@@ -549,9 +562,61 @@ class LongRunVariance:
         return self.total + self._sums(closing)[0]
 
 
+class EndpointNoise:
+    """The part of the windows' score variance that the targets' measurement noise makes.
+
+    A window's target is the change of a state between its two end samples, so white
+    measurement noise of variance ``sigma^2`` on the states puts ``n_e - n_s`` in its
+    residual.  Over the windows of one stretch the score sum ``sum_w X_w (n_e - n_s)`` is
+    ``sum_k n_k d_k`` with ``d_k`` the integrated terms of the window ending at sample ``k``
+    less those of the window starting there, so its variance is ``sigma^2 sum_k d_k d_k'``:
+    twice ``sum_w X_w X_w'`` less the products of the window pairs that meet at a sample
+    (the window ``w`` samples later in the same stretch, ``w`` its width), in both orders.
+    The sum telescopes, which is why overlapping windows can carry more information than as
+    many independent ones.  Noise in the integrated terms is left out, so this is a lower
+    bound: the least variance the measured noise makes.
+
+    Windows are fed in order, one piece at a time; the last ``window`` rows of a piece are
+    kept for the pairs that reach into the next one.
+
+    Parameters
+    ----------
+    window : int
+        The widest window, in sample intervals (>= 1).
+    p : int
+        Terms per window.
+    """
+
+    def __init__(self, window: int, p: int) -> None:
+        self.window = int(window)
+        self._X = np.zeros((0, p))
+        self._group = np.zeros(0, dtype=np.int64)
+        self.total = np.zeros((p, p))
+
+    def add(self, X: np.ndarray, groups: np.ndarray, widths: np.ndarray) -> None:
+        """Append windows ``X (n, p)`` with their stretch ``groups (n,)`` and ``widths (n,)``."""
+        X = np.asarray(X, dtype=np.float64)
+        if X.shape[0] == 0:
+            return
+        rows = np.concatenate([self._X, X])
+        group = np.concatenate([self._group, np.asarray(groups, dtype=np.int64)])
+        new = np.arange(self._X.shape[0], rows.shape[0])
+        partner = new - np.asarray(widths, dtype=np.int64)
+        ok = partner >= 0
+        ok[ok] = group[partner[ok]] == group[new[ok]]
+        pairs = rows[partner[ok]].T @ rows[new[ok]]
+        self.total += 2.0 * (X.T @ X) - pairs - pairs.T
+        self._X, self._group = rows[-self.window :], group[-self.window :]
+
+
 def _score_spread(
-    windows: _Windows, coefs: Sequence[np.ndarray], k: int, p: int, m: int
-) -> np.ndarray:
+    windows: _Windows,
+    coefs: Sequence[np.ndarray],
+    k: int,
+    p: int,
+    m: int,
+    noise_var: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
     """Long-run variance of each regime's window scores, ``(k, m, p, p)``.
 
     The score of a window is its integrated terms times its residual.  Overlapping windows
@@ -559,17 +624,25 @@ def _score_spread(
     one sample, the terms' noise by windows that overlap), out to about one window length;
     the Newey-West estimate over the windows of each stretch (:class:`LongRunVariance`,
     ``_LAG_WINDOWS`` window lengths of lags) takes that in.  Windows of different stretches
-    are taken as independent.
+    are taken as independent.  Also returns the part of that variance the targets'
+    measurement noise alone makes (:class:`EndpointNoise`, with the noise variance of each
+    state ``noise_var``), which :func:`_sandwich` never goes below.
     """
     spreads = [LongRunVariance(windows.lags, (m, p)) for _ in range(k)]
+    ends = [EndpointNoise(windows.window, p) for _ in range(k)]
     for i, j in windows.chunks:
         _, _, X, Y = windows.chunk(i, j)
         r, stretch = windows.regime[i:j], windows.stretch[i:j]
+        width = windows.end[i:j] - windows.start[i:j]
         for g in np.unique(r):
             rows = r == g
             resid = Y[rows] - X[rows] @ coefs[g]
             spreads[g].add(resid[:, :, None] * X[rows][:, None, :], stretch[rows])
-    return np.stack([s.result() for s in spreads]) if k else np.zeros((0, m, p, p))
+            ends[g].add(X[rows], stretch[rows], width[rows])
+    if not k:
+        return np.zeros((0, m, p, p)), np.zeros((0, m, p, p))
+    noise = np.stack([e.total for e in ends])[:, None] * np.asarray(noise_var)[None, :, None, None]
+    return np.stack([s.result() for s in spreads]), noise
 
 
 def _solve(
@@ -613,20 +686,26 @@ def _solve(
 
 
 def _sandwich(
-    old: LocalFit, coef: np.ndarray, normal: np.ndarray, spread: np.ndarray, stats: GramStats
+    old: LocalFit,
+    coef: np.ndarray,
+    normal: np.ndarray,
+    spread: np.ndarray,
+    noise: np.ndarray,
+    stats: GramStats,
 ) -> tuple[np.ndarray, GramStats]:
     """Sandwich standard errors, and the window statistics scaled to match them.
 
     Standard errors are ``N^-1 S N^-1`` (``N`` the normal matrix solved with, ``S`` the
-    long-run variance of the scores, :func:`_score_spread`).  The window statistics' plain
-    least-squares variances are scaled up by the largest ratio of a sandwich variance to the
-    plain one (an effective number of independent windows), so that what is computed from
-    them (the selection's criterion, the equilibria's standard errors) errs on the safe
-    side.  The ratio is never taken below 1: overlapping windows never carry more
-    information than as many independent ones, and a ratio below 1 only says that the
-    long-run variance came out low (few windows against the lags: the scores of a regime sum
-    to zero at its least-squares solution).  Targets with no more windows than terms keep
-    ``old``'s errors.
+    long-run variance of the scores, :func:`_score_spread`), each variance never below the
+    one the targets' measurement noise alone makes (``noise``, :class:`EndpointNoise`).
+    The window statistics' plain least-squares variances are scaled by the largest ratio of
+    a sandwich variance to the plain one (an effective number of independent windows), so
+    that what is computed from them (the selection's criterion, the equilibria's standard
+    errors) errs on the safe side.  The ratio may be below 1: the targets' noise telescopes
+    over overlapping windows.  The bound keeps it from the long-run variance alone where that
+    comes out too low (a short record: a regime's scores sum to zero at its least-squares
+    solution, and a few stretches hold few independent sums).  Targets with no more windows
+    than terms keep ``old``'s errors.
     """
     support = np.asarray(old.support, dtype=bool)
     stderr = np.array(old.stderr, dtype=np.float64, copy=True)
@@ -640,10 +719,12 @@ def _sandwich(
         sc[~(sc > 0)] = 1.0
         inv = sla.pinvh(normal[j][np.ix_(idx, idx)] / np.outer(sc, sc)) / np.outer(sc, sc)
         var = np.einsum("ab,bc,ca->a", inv, spread[j][np.ix_(idx, idx)], inv)
+        least = np.einsum("ab,bc,ca->a", inv, noise[j][np.ix_(idx, idx)], inv)
+        var = np.maximum(var, least)
         stderr[idx, j] = np.sqrt(np.clip(var, 0.0, None))
         ok = plain[idx, j] > 0
         ratio.extend((var[ok] / plain[idx, j][ok] ** 2).tolist())
-    factor = max([1.0, *ratio])
+    factor = max(ratio) if ratio and max(ratio) > 0 else 1.0
     return stderr, stats * (1.0 / factor)
 
 
