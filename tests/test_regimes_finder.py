@@ -427,3 +427,75 @@ def test_explicit_number_of_regimes_is_kept_or_refused_in_one_line() -> None:
     with pytest.raises(FitError, match="12 regimes were asked for") as err:
         RegimeFinder(form="discrete", n_regimes=12, min_samples=100).fit(ds)
     assert "\n" not in str(err.value)
+
+
+def test_labels_are_each_samples_most_probable_regime_as_hmmlearn_decodes() -> None:
+    # Each sample's label is its most probable regime given all of its run (posterior
+    # decoding: "A tutorial on hidden Markov models and selected applications in speech
+    # recognition", Proceedings of the IEEE 77(2), 1989, DOI 10.1109/5.18626), which makes
+    # the expected number of wrong labels smallest.  With constant regime models and no
+    # emission terms the model is a Gaussian HMM: hmmlearn's GaussianHMM at the fitted
+    # parameters, decoded with algorithm="map", must give the same labels; they are the
+    # argmax of the probabilities reported beside them, and predict() gives them again.
+    from hmmlearn import hmm
+
+    ref = hmm.GaussianHMM(n_components=2, covariance_type="full")
+    ref.startprob_ = np.array([0.5, 0.5])
+    ref.transmat_ = np.array([[0.97, 0.03], [0.05, 0.95]])
+    ref.means_ = np.array([[0.0], [1.0]])
+    ref.covars_ = np.array([[[0.36]], [[0.49]]])  # levels 1.5 noise widths apart: overlap
+    y, _ = ref.sample(3000, random_state=5)
+    ds = read_data(pd.DataFrame({"t": np.arange(3000.0), "y": y[:, 0]}), time="t", states=["y"])
+    finder = RegimeFinder(
+        form="discrete",
+        n_regimes=2,
+        local_model=SparseLocalModel(terms=["1"]),
+        surface_weight=0.0,
+    ).fit(ds)
+    assert finder.emission_terms_ == ()
+    fitted = hmm.GaussianHMM(n_components=2, covariance_type="full")
+    fitted.startprob_ = np.array([0.5, 0.5])
+    fitted.transmat_ = finder.transmat_
+    fitted.means_ = np.array([f.coef[:, 0] for f in finder.local_fits_])
+    fitted.covars_ = finder.covariances_
+    _, expected = fitted.decode(y[1:], algorithm="map")  # row r models sample r + 1
+    np.testing.assert_array_equal(finder.regression_labels_, expected)
+    _, viterbi = fitted.decode(y[1:], algorithm="viterbi")
+    assert np.any(viterbi != expected)  # the two rules differ on this series
+    labels, probabilities = finder.labels_[0], finder.posteriors_[0]
+    np.testing.assert_array_equal(labels, np.argmax(probabilities, axis=1))
+    np.testing.assert_array_equal(finder.predict(ds)[0], labels)
+
+
+def test_most_probable_labels_that_would_empty_a_regime_leave_the_refinements() -> None:
+    # the guard of the rule above: when each sample's most probable regime would leave a
+    # regime below the smallest size kept, the refinement's labels stay, with a note
+    from hmmlearn import hmm
+
+    from modemap.regimes.rows import Rows
+
+    ref = hmm.GaussianHMM(n_components=2, covariance_type="full")
+    ref.startprob_ = np.array([0.5, 0.5])
+    ref.transmat_ = np.array([[0.97, 0.03], [0.05, 0.95]])
+    ref.means_ = np.array([[0.0], [1.0]])
+    ref.covars_ = np.array([[[0.36]], [[0.49]]])
+    y, _ = ref.sample(3000, random_state=5)
+    ds = read_data(pd.DataFrame({"t": np.arange(3000.0), "y": y[:, 0]}), time="t", states=["y"])
+    finder = RegimeFinder(
+        form="discrete", n_regimes=2, local_model=SparseLocalModel(terms=["1"]), surface_weight=0.0
+    ).fit(ds)
+    decoded = finder.regression_labels_.copy()
+    counts = np.bincount(decoded, minlength=2)
+    small = int(np.argmin(counts))
+    # a labelling with more samples in the smaller regime, and a size between the two
+    kept = decoded.copy()
+    kept[np.flatnonzero(decoded != small)[:200]] = small
+    finder.regression_labels_ = kept
+    reg = finder.regression_
+    rows = Rows.of(reg.Z, finder._common_targets(reg), reg.lengths, reg.time)
+    finder._soft_pass(ds, rows, min_samples=int(counts[small]) + 100)
+    np.testing.assert_array_equal(finder.regression_labels_, kept)
+    assert "the labels are the refinement's" in finder.notes_[-1]
+    # with a size both labellings meet, the most probable regimes are taken
+    finder._soft_pass(ds, rows, min_samples=10)
+    np.testing.assert_array_equal(finder.regression_labels_, decoded)

@@ -12,14 +12,17 @@ Pipeline inside :meth:`RegimeFinder.fit`:
    standardised features ``[states, increments or derivatives, inputs]`` and on the residuals
    of a single model fitted to all rows, each refined by the hard-EM switching regression
    (:mod:`.refine`); the refined labelling with the higher likelihood is kept;
-4. ``n_regimes="auto"``: K by BIC on the first 80 % of each run (:mod:`.selection`), then the
-   chosen labelling is extended to all rows (held-out tails decoded by Viterbi) and refined
-   there, so the model returned is the one the selection table scored;
+4. ``n_regimes="auto"``: K and the library order by one criterion on common targets
+   (:mod:`.selection`, :mod:`.candidates`), on all rows or, above ``selection_samples``, on
+   contiguous windows spread over every run, whose chosen labelling is then decoded on all
+   rows and refined there;
 5. continuous form: each regime's terms chosen and estimated again on the integral form over
    windows inside its stretches, with the measurement noise in the terms compensated
    (:mod:`.integral`; a local model with ``final_fit="derivative"`` keeps the fit on the
    derivatives);
-6. hygiene and a stable order of ids (:mod:`.hygiene`), statistics (:mod:`.summary`).
+6. hygiene and a stable order of ids (:mod:`.hygiene`), statistics (:mod:`.summary`);
+7. each sample's regime probabilities under the final model (forward-backward), and its
+   label: its most probable regime, as :meth:`RegimeFinder.predict` labels new data.
 
 What one fit knows once the data are read (the bound local model, the refinement settings,
 the executor, the derivative settings) is a :class:`FitContext` handed to every step; the
@@ -55,7 +58,7 @@ from modemap.regimes.refine import RefineResult, RefineSettings
 from modemap.regimes.rows import Rows
 from modemap.regimes.summary import chain_statistics, statistics
 from modemap.regimes.term_checks import check_library_on_data
-from modemap.regimes.viterbi import forward_backward, viterbi_runs
+from modemap.regimes.viterbi import forward_backward
 
 __all__ = ["FitContext", "RegimeFinder"]
 
@@ -348,7 +351,7 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
             overall(0.95, "estimating the coefficients again on the integral form")
             result = self._integral_refit(ctx, rows, result)
         self._set_results(ds, reg, ctx, result, table)
-        self._soft_pass(ctx, rows, result)
+        self._soft_pass(ds, rows, ctx.settings.min_samples)
         overall(1.0, f"{self.n_regimes_} regime(s) found")
         return self
 
@@ -426,23 +429,17 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
 
         The regression rows of ``ds`` are built with the same form and derivative
         settings as in :meth:`fit` (continuous form: derivatives never taken across a
-        step of a stepped input, see :mod:`modemap.regimes.segments`); each run is
-        decoded by Viterbi with the fitted residual likelihoods, the further emission terms
-        of the final fit (location, surface) and the transition matrix.
+        step of a stepped input, see :mod:`modemap.regimes.segments`); each sample gets
+        its most probable regime given all of its run (:meth:`predict_proba`: the fitted
+        residual likelihoods, the further emission terms of the final fit (location,
+        surface) and the transition matrix), as the fit labels its own samples.
 
         Returns
         -------
         list of ndarray
             One label array per run of ``ds``.
         """
-        log_em, reg = self._emissions(ds)
-        k = self.n_regimes_
-        with np.errstate(divide="ignore"):
-            log_trans = np.log(self.transmat_)
-        # (decoding again after re-estimating the derivatives within the decoded stretches,
-        # as the fit does, changed the held-out labels of the three demos by at most 0.14 %)
-        path, _ = viterbi_runs(log_em, np.asarray(reg.lengths), np.full(k, -np.log(k)), log_trans)
-        return _labels_per_sample(np.asarray(path), np.asarray(reg.sample_index), ds)
+        return [np.argmax(p, axis=1) for p in self.predict_proba(ds)]
 
     def predict_proba(self, ds: Dataset) -> list[np.ndarray]:
         """Each sample's probability of each regime given all of its run (forward-backward
@@ -503,10 +500,8 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
         self.covariances_ = result.covariances[order]
         self.emission_terms_ = tuple(term.reordered(order) for term in result.terms)
         self.selection_ = table
-        self.statistics_ = statistics(full, k, float(ds.step) if np.isfinite(ds.step) else 1.0)
         self.transmat_ = trans / trans.sum(axis=1, keepdims=True)
-        step = float(ds.step) if np.isfinite(ds.step) else 1.0
-        self.statistics_.update(chain_statistics(self.transmat_, full, step))
+        self._set_statistics(ds)
         self.library_ = ctx.library
         self.variables_ = list(ctx.variables)
         self.local_model_ = ctx.local
@@ -522,10 +517,24 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
                 f"with {result.monitor.changes[-1]} labels still changing"
             )
 
-    def _soft_pass(self, ctx: FitContext, rows: Rows, result: RefineResult) -> None:
-        """Each sample's regime probabilities under the final model: forward-backward with
-        its emissions on the common targets and its chain, in the reported order of ids,
-        one array per run."""
+    def _set_statistics(self, ds: Dataset) -> None:
+        """Shares, dwell times and switches of ``labels_``, and the chain's figures."""
+        step = float(ds.step) if np.isfinite(ds.step) else 1.0
+        self.statistics_ = statistics(self.labels_, self.n_regimes_, step)
+        self.statistics_.update(chain_statistics(self.transmat_, self.labels_, step))
+
+    def _soft_pass(self, ds: Dataset, rows: Rows, min_samples: int) -> None:
+        """Each sample's regime probabilities under the final model, and its regime.
+
+        The probabilities: forward-backward with the final model's emissions on the common
+        targets and its chain, in the reported order of ids, one array per run.  Each
+        sample's regime is then its most probable one (posterior decoding, which makes the
+        expected number of wrongly labelled samples smallest: "A tutorial on hidden Markov
+        models and selected applications in speech recognition", Proceedings of the IEEE
+        77(2), 1989, DOI 10.1109/5.18626), as :meth:`predict` gives on new data.  The
+        refinement's labels are kept when that would leave a regime with fewer than
+        ``min_samples`` samples it had before.
+        """
         coefs = [np.asarray(f.coef) for f in self.local_fits_]
         log_em = regime_log_likelihood(self.library_, rows.Z, rows.Y, coefs, self.covariances_)
         for term in self.emission_terms_:
@@ -534,8 +543,20 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
         with np.errstate(divide="ignore"):
             log_trans = np.log(self.transmat_)
         _, post = forward_backward(log_em, rows.lengths, np.full(k, -np.log(k)), log_trans)
-        reg = self.regression_
-        self.posteriors_ = _rows_per_sample(post, np.asarray(reg.sample_index), self.labels_)
+        index = np.asarray(self.regression_.sample_index)
+        decoded = np.argmax(post, axis=1)
+        before = np.bincount(self.regression_labels_, minlength=k)[:k]
+        after = np.bincount(decoded, minlength=k)[:k]
+        if np.any((after < min_samples) & (before >= min_samples)):
+            self.notes_.append(
+                "each sample's most probable regime would leave a regime with fewer than "
+                f"{min_samples} samples; the labels are the refinement's"
+            )
+        else:
+            self.regression_labels_ = decoded
+            self.labels_ = _labels_per_sample(decoded, index, ds)
+            self._set_statistics(ds)
+        self.posteriors_ = _rows_per_sample(post, index, self.labels_)
 
 
 def _rows_per_sample(values: np.ndarray, sample_index: np.ndarray, labels: list) -> list:
