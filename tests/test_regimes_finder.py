@@ -11,6 +11,7 @@ from statsmodels.datasets import nile
 
 from lag_data import held_lag
 from modemap._exceptions import FitCancelled, FitError, ParameterError
+from modemap.data.dataset import Dataset
 from modemap.data.intake import read_data
 from modemap.fit.local_model import AffineLocalModel, SparseLocalModel
 from modemap.regimes import RegimeFinder
@@ -429,6 +430,25 @@ def test_explicit_number_of_regimes_is_kept_or_refused_in_one_line() -> None:
     assert "\n" not in str(err.value)
 
 
+def _level_switching_fit() -> tuple[np.ndarray, Dataset, RegimeFinder]:
+    """A two-level Gaussian HMM series (hmmlearn's sampler; levels 1.5 noise widths apart, so
+    the regimes overlap) and its discrete-form fit with constant regime models and no
+    emission terms: a Gaussian HMM itself."""
+    from hmmlearn import hmm
+
+    ref = hmm.GaussianHMM(n_components=2, covariance_type="full")
+    ref.startprob_ = np.array([0.5, 0.5])
+    ref.transmat_ = np.array([[0.97, 0.03], [0.05, 0.95]])
+    ref.means_ = np.array([[0.0], [1.0]])
+    ref.covars_ = np.array([[[0.36]], [[0.49]]])
+    y, _ = ref.sample(3000, random_state=5)
+    ds = read_data(pd.DataFrame({"t": np.arange(3000.0), "y": y[:, 0]}), time="t", states=["y"])
+    finder = RegimeFinder(
+        form="discrete", n_regimes=2, local_model=SparseLocalModel(terms=["1"]), surface_weight=0.0
+    ).fit(ds)
+    return y, ds, finder
+
+
 def test_labels_are_each_samples_most_probable_regime_as_hmmlearn_decodes() -> None:
     # Each sample's label is its most probable regime given all of its run (posterior
     # decoding: "A tutorial on hidden Markov models and selected applications in speech
@@ -439,19 +459,7 @@ def test_labels_are_each_samples_most_probable_regime_as_hmmlearn_decodes() -> N
     # argmax of the probabilities reported beside them, and predict() gives them again.
     from hmmlearn import hmm
 
-    ref = hmm.GaussianHMM(n_components=2, covariance_type="full")
-    ref.startprob_ = np.array([0.5, 0.5])
-    ref.transmat_ = np.array([[0.97, 0.03], [0.05, 0.95]])
-    ref.means_ = np.array([[0.0], [1.0]])
-    ref.covars_ = np.array([[[0.36]], [[0.49]]])  # levels 1.5 noise widths apart: overlap
-    y, _ = ref.sample(3000, random_state=5)
-    ds = read_data(pd.DataFrame({"t": np.arange(3000.0), "y": y[:, 0]}), time="t", states=["y"])
-    finder = RegimeFinder(
-        form="discrete",
-        n_regimes=2,
-        local_model=SparseLocalModel(terms=["1"]),
-        surface_weight=0.0,
-    ).fit(ds)
+    y, ds, finder = _level_switching_fit()
     assert finder.emission_terms_ == ()
     fitted = hmm.GaussianHMM(n_components=2, covariance_type="full")
     fitted.startprob_ = np.array([0.5, 0.5])
@@ -470,20 +478,9 @@ def test_labels_are_each_samples_most_probable_regime_as_hmmlearn_decodes() -> N
 def test_most_probable_labels_that_would_empty_a_regime_leave_the_refinements() -> None:
     # the guard of the rule above: when each sample's most probable regime would leave a
     # regime below the smallest size kept, the refinement's labels stay, with a note
-    from hmmlearn import hmm
-
     from modemap.regimes.rows import Rows
 
-    ref = hmm.GaussianHMM(n_components=2, covariance_type="full")
-    ref.startprob_ = np.array([0.5, 0.5])
-    ref.transmat_ = np.array([[0.97, 0.03], [0.05, 0.95]])
-    ref.means_ = np.array([[0.0], [1.0]])
-    ref.covars_ = np.array([[[0.36]], [[0.49]]])
-    y, _ = ref.sample(3000, random_state=5)
-    ds = read_data(pd.DataFrame({"t": np.arange(3000.0), "y": y[:, 0]}), time="t", states=["y"])
-    finder = RegimeFinder(
-        form="discrete", n_regimes=2, local_model=SparseLocalModel(terms=["1"]), surface_weight=0.0
-    ).fit(ds)
+    _, ds, finder = _level_switching_fit()
     decoded = finder.regression_labels_.copy()
     counts = np.bincount(decoded, minlength=2)
     small = int(np.argmin(counts))
