@@ -476,7 +476,7 @@ def test_labels_are_each_samples_most_probable_regime_as_hmmlearn_decodes() -> N
 
 
 def test_most_probable_labels_that_would_empty_a_regime_leave_the_refinements() -> None:
-    # the guard of the rule above: when each sample's most probable regime would leave a
+    # the guards of the rule above: when each sample's most probable regime would leave a
     # regime below the smallest size kept, the refinement's labels stay, with a note
     from modemap.regimes.rows import Rows
 
@@ -496,3 +496,8 @@ def test_most_probable_labels_that_would_empty_a_regime_leave_the_refinements() 
     # with a size both labellings meet, the most probable regimes are taken
     finder._soft_pass(ds, rows, min_samples=10)
     np.testing.assert_array_equal(finder.regression_labels_, decoded)
+    # samples the refinement left unassigned (-1: a regime too small to keep) stay so
+    finder.regression_labels_ = np.where(np.arange(decoded.size) < 50, -1, decoded)
+    finder._soft_pass(ds, rows, min_samples=10)
+    np.testing.assert_array_equal(finder.regression_labels_[:50], -1)
+    np.testing.assert_array_equal(finder.regression_labels_[50:], decoded[50:])

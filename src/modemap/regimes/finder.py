@@ -533,7 +533,8 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
         models and selected applications in speech recognition", Proceedings of the IEEE
         77(2), 1989, DOI 10.1109/5.18626), as :meth:`predict` gives on new data.  The
         refinement's labels are kept when that would leave a regime with fewer than
-        ``min_samples`` samples it had before.
+        ``min_samples`` samples it had before, and samples the refinement left unassigned
+        stay so.
         """
         coefs = [np.asarray(f.coef) for f in self.local_fits_]
         log_em = regime_log_likelihood(self.library_, rows.Z, rows.Y, coefs, self.covariances_)
@@ -544,9 +545,11 @@ class RegimeFinder(CandidateSearch, BaseEstimator):
             log_trans = np.log(self.transmat_)
         _, post = forward_backward(log_em, rows.lengths, np.full(k, -np.log(k)), log_trans)
         index = np.asarray(self.regression_.sample_index)
-        decoded = np.argmax(post, axis=1)
-        before = np.bincount(self.regression_labels_, minlength=k)[:k]
-        after = np.bincount(decoded, minlength=k)[:k]
+        old = np.asarray(self.regression_labels_)
+        # samples the refinement left unassigned (a regime too small to keep) stay so
+        decoded = np.where(old >= 0, np.argmax(post, axis=1), old)
+        before = np.bincount(old[old >= 0], minlength=k)[:k]
+        after = np.bincount(decoded[decoded >= 0], minlength=k)[:k]
         if np.any((after < min_samples) & (before >= min_samples)):
             self.notes_.append(
                 "each sample's most probable regime would leave a regime with fewer than "
