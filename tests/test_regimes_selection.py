@@ -214,3 +214,43 @@ def test_windows_hold_a_regime_only_when_their_samples_agree() -> None:
     # discrete form: a row holds its regime unless its interval holds a switch
     discrete = Windows(rows, x[:, None], 1, integral=False)
     np.testing.assert_array_equal(discrete.labels(labels), [0, 0, -1, 1, 1, 1, 0, -1, 1, 1])
+
+
+def _gated_scores(z: np.ndarray, labels: np.ndarray, lengths: list[int]) -> tuple[float, float]:
+    """Penalised log-likelihood of a known regime sequence (emissions that all but name the
+    regime) under the shared gate and under one gate per source regime, as the score counts
+    them: log-likelihood less half the gate's parameters times the log of the windows."""
+    from modemap.regimes.likelihood import SurfaceTerm
+    from modemap.regimes.selection import _source_gates
+    from modemap.regimes.viterbi import forward_gated
+
+    k = 2
+    log_em = np.where(np.arange(k)[None, :] == labels[:, None], 0.0, -10.0)
+    log_trans = np.log(np.array([[0.95, 0.05], [0.05, 0.95]]))
+    penalty = 0.5 * np.log(labels.size)
+    shared = SurfaceTerm.fit(z, 1, labels, k, C=1000)
+    one = forward_gated(log_em, lengths, log_trans, shared.log_prob(z, 1)) - penalty * 2
+    log_gate, extra = _source_gates(z, labels, np.asarray(lengths), k)
+    assert extra == 2 * 2  # two sources, one log-odds each, on one variable and a constant
+    return one, forward_gated(log_em, lengths, log_trans, log_gate) - penalty * extra
+
+
+def test_a_relay_is_gated_per_source_and_a_surface_by_one_classifier() -> None:
+    # A relay (hysteresis: heating from 2 to 8, cooling from 8 to 2; closed form) switches
+    # where the regime it leaves says: one classifier per source regime (the input-output
+    # HMM's own form, "Input-output HMMs for sequence processing", IEEE Transactions on
+    # Neural Networks 7(5), 1996) explains its switches far better than one classifier of
+    # the variable, which sees both regimes over the whole band.  A regime set by the side
+    # of a surface (x > 5, whatever came before) is explained as well by one classifier,
+    # and the per-source one does not pay for its extra parameters.
+    from relay_data import relay_frame
+
+    frame = relay_frame(n_runs=3, duration=20.0, step=0.02, noise=0.05)
+    lengths = frame.groupby("run").size().tolist()
+    z, labels = frame[["x [m]"]].to_numpy(), frame["true_regime"].to_numpy()
+    shared, per_source = _gated_scores(z, labels, lengths)
+    assert per_source > shared + 50.0
+    t = np.arange(1200) * 0.05
+    x = 5.0 + 3.0 * np.sin(t) + 0.05 * np.random.default_rng(2).standard_normal(t.size)
+    shared, per_source = _gated_scores(x[:, None], (x > 5.0).astype(np.int64), [400, 400, 400])
+    assert shared > per_source

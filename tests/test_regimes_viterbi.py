@@ -133,3 +133,43 @@ def test_forward_gated_sums_every_path() -> None:
     assert forward_gated(log_em, lengths, np.log(trans), np.log(gate)) == pytest.approx(
         total, rel=1e-10
     )
+
+
+def test_forward_gated_per_source_sums_every_path() -> None:
+    # the same definition with one gate per source regime, g_t(j | i) (the input-output
+    # HMM's own form: a transition classifier per state); a gate equal for every source
+    # gives the shared form's value
+    import itertools
+
+    from scipy.special import logsumexp
+
+    from modemap.regimes.viterbi import forward_gated
+
+    rng = np.random.default_rng(4)
+    k, lengths = 3, [4, 1, 5]
+    n = sum(lengths)
+    log_em = 3.0 * rng.normal(size=(n, k))
+    gate = rng.dirichlet(np.ones(k), size=(n, k))  # [t, i, j]
+    trans = rng.dirichlet(np.ones(k), size=k)
+    total, offset = 0.0, 0
+    for length in lengths:
+        e, g = log_em[offset : offset + length], gate[offset : offset + length]
+        offset += length
+        first = g[0].mean(axis=0)
+        paths = []
+        for path in itertools.product(range(k), repeat=length):
+            lp = np.log(first[path[0]]) + e[0, path[0]]
+            for t in range(1, length):
+                i, j = path[t - 1], path[t]
+                step = trans[i] * g[t, i]
+                lp += np.log(step[j] / step.sum()) + e[t, j]
+            paths.append(lp)
+        total += logsumexp(paths)
+    assert forward_gated(log_em, lengths, np.log(trans), np.log(gate)) == pytest.approx(
+        total, rel=1e-10
+    )
+    shared = rng.dirichlet(np.ones(k), size=n)
+    same = np.repeat(shared[:, None, :], k, axis=1)
+    assert forward_gated(log_em, lengths, np.log(trans), np.log(same)) == pytest.approx(
+        forward_gated(log_em, lengths, np.log(trans), np.log(shared)), rel=1e-12
+    )

@@ -21,7 +21,10 @@ noise model:
   classifier of the variables predicts the switches better than the constant chain by more
   than its parameters cost (BIC on the windows), the chain's transitions are gated by it
   (:func:`~modemap.regimes.viterbi.forward_gated`): regimes selected by where the state
-  sits are then not charged for switches that the state explains;
+  sits are then not charged for switches that the state explains.  Two gates are tried, the
+  better after its parameters kept: one classifier shared by every source regime (a
+  surface), and one per source regime (:func:`_source_gates`: where a relay switches
+  depends on the regime it leaves);
 * **windows that hold a switch** (their samples' labels disagree; in discrete form the
   sample interval that holds the switch) carry no emission (the same for every regime), and
   the log-likelihood is scaled up to all windows by the share scored, so that no candidate
@@ -71,6 +74,7 @@ import numpy as np
 import pandas as pd
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
+from scipy.special import log_softmax
 from scipy.stats import chi2
 
 from modemap.fit.statistics import GramStats
@@ -93,6 +97,9 @@ __all__ = [
 
 #: Lags the autocorrelation time sums at most, as a share of the shortest run's rows.
 _MAX_LAG_SHARE = 0.25
+
+#: Log-probability of a regime never seen after a source regime, under that source's gate.
+_IMPOSSIBLE_GATE = -30.0
 
 #: Two regimes count as one when a Wald test cannot tell their models apart at this level
 #: (the module notes; the level of the guards' term tests, common practice).
@@ -313,12 +320,19 @@ def score(
     loglik, posteriors = forward_backward(log_em, lengths, log_start, log_trans)
     n_gate = 0
     z = windows.variables
-    gate = SurfaceTerm.fit(z, m, labels, k, C=1000) if k > 1 else None
-    if gate is not None:  # switches predicted by where the variables are (module notes)
-        gated = forward_gated(log_em, lengths, log_trans, gate.log_prob(z, m))
-        extra = (k - 1) * (z.shape[1] + 1)
-        if gated - 0.5 * extra * np.log(max(labels.size, 2)) > loglik:
-            loglik, n_gate = gated, extra
+    gates = []
+    shared = SurfaceTerm.fit(z, m, labels, k, C=1000) if k > 1 else None
+    if shared is not None:  # switches predicted by where the variables are (module notes)
+        gates.append((shared.log_prob(z, m), (k - 1) * (z.shape[1] + 1)))
+        per_source = _source_gates(z, labels, lengths, k)
+        if per_source is not None:
+            gates.append(per_source)
+    penalty = 0.5 * np.log(max(labels.size, 2))
+    best = loglik
+    for log_gate, extra in gates:
+        gated = forward_gated(log_em, lengths, log_trans, log_gate)
+        if gated - penalty * extra > best - penalty * n_gate:
+            loglik, n_gate, best = gated, extra, gated
     share = max(int(scored.sum()), 1) / max(labels.size, 1)
     candidate.loglik = float(loglik / share)
     candidate.n_params = count_parameters(dataclasses.replace(result, fits=fits), m, n_gate)
@@ -328,6 +342,47 @@ def score(
     if result.covariance == "tied":
         candidate.wald = _wald_pairs(coefs, G, target, labels)
     return candidate
+
+
+def _source_gates(
+    z: np.ndarray, labels: np.ndarray, lengths: np.ndarray, k: int
+) -> tuple[np.ndarray, int] | None:
+    """Log-probabilities ``[t, i, j]`` of regime ``j`` at window ``t`` given the variables and
+    the regime ``i`` it comes from, one classifier per source regime, and their parameters.
+
+    For each source ``i``: a multinomial logistic regression (scikit-learn's, ``C = 1000`` on
+    standardised variables, as the shared gate) of the regime of the windows whose last
+    assigned window before them in the run was in ``i``.  A source never left in the labels
+    gets no classifier (even probabilities: the chain alone decides there).  None when no
+    source has two regimes after it.
+    """
+    from sklearn.linear_model import LogisticRegression
+
+    n, p = z.shape
+    lengths = np.asarray(lengths, dtype=np.int64)
+    run_start = np.repeat(np.cumsum(lengths) - lengths, lengths)
+    # the last window before each one, in its run, whose regime is assigned
+    last = np.maximum.accumulate(np.where(labels >= 0, np.arange(n), -1))
+    before = np.r_[-1, last[:-1]]
+    previous = np.where(before >= run_start, labels[np.maximum(before, 0)], -1)
+    mean, scale = z.mean(axis=0), z.std(axis=0)
+    x = (z - mean) / np.where(scale > 0, scale, 1.0)
+    log_gate = np.full((n, k, k), -np.log(k))
+    extra = 0
+    for i in range(k):
+        rows = np.flatnonzero((previous == i) & (labels >= 0))
+        present = np.unique(labels[rows])
+        if present.size < 2:
+            continue
+        clf = LogisticRegression(C=1000.0, max_iter=500).fit(x[rows], labels[rows])
+        decision = clf.decision_function(x)
+        if decision.ndim == 1:  # binary: the log-odds of classes_[1]
+            decision = np.column_stack([np.zeros(n), decision])
+        scores = np.full((n, k), _IMPOSSIBLE_GATE)
+        scores[:, clf.classes_] = log_softmax(decision, axis=1)
+        log_gate[:, i, :] = scores
+        extra += (present.size - 1) * (p + 1)
+    return (log_gate, extra) if extra else None
 
 
 def _wald_pairs(

@@ -242,9 +242,12 @@ def forward_gated(
     each regime given the variables at ``t`` (a switching surface's classifier): a chain
     whose switches are predicted by where the variables are (an input-output hidden
     Markov model: "Input-output HMMs for sequence processing", IEEE Transactions on Neural
-    Networks 7(5), 1996, DOI 10.1109/72.536317).  The first step of each run has the
-    probabilities ``g_0`` (normalised).  The forward pass runs in log space over all runs at
-    once, one step at a time.
+    Networks 7(5), 1996, DOI 10.1109/72.536317).  With a gate per source regime,
+    ``g_t(j | i)`` replaces ``g_t(j)`` (the input-output model's own form, one transition
+    classifier per state: where a switch happens may then depend on the regime it leaves,
+    as with hysteresis).  The first step of each run has the probabilities ``g_0``
+    (normalised; with a gate per source, their mean over the sources).  The forward pass
+    runs over all runs at once, one step at a time.
 
     Parameters
     ----------
@@ -252,8 +255,8 @@ def forward_gated(
     lengths : sequence of int
         Steps per run; must sum to ``n``.
     log_trans : ndarray of shape (K, K)
-    log_gate : ndarray of shape (n, K)
-        ``log g_t(j)``.
+    log_gate : ndarray of shape (n, K) or (n, K, K)
+        ``log g_t(j)``, or ``log g_t(j | i)`` indexed ``[t, i, j]``.
 
     Returns
     -------
@@ -270,9 +273,15 @@ def forward_gated(
     # alpha_t(j) = g_t(j) e_t(j) sum_i alpha_t-1(i) trans(i, j) / d_t(i), with
     # d_t(i) = sum_j trans(i, j) g_t(j); the log of every step's normaliser is summed
     g = np.exp(np.maximum(np.asarray(log_gate, dtype=np.float64), _IMPOSSIBLE))
-    g /= np.maximum(g.sum(axis=1, keepdims=True), 1e-300)
+    g /= np.maximum(g.sum(axis=-1, keepdims=True), 1e-300)
     trans = np.exp(log_trans)
-    d = np.maximum(g @ trans.T, 1e-300)  # (n, K): d_t(i)
+    step_trans = None
+    if g.ndim == 3:  # per source: each step's own transition matrix
+        step_trans = trans[None] * g
+        step_trans /= np.maximum(step_trans.sum(axis=2, keepdims=True), 1e-300)
+        g = g.mean(axis=1)  # the first steps
+    else:
+        d = np.maximum(g @ trans.T, 1e-300)  # (n, K): d_t(i)
     peak = e.max(axis=1, keepdims=True)
     em = np.exp(e - peak)
     top = int(lengths.max())
@@ -287,7 +296,10 @@ def forward_gated(
     alpha /= np.maximum(total, 1e-300)[:, None]
     for step in range(1, top):
         rows, on = idx[step], live[step]
-        new = ((alpha / d[rows]) @ trans) * g[rows] * em[rows]
+        if step_trans is not None:
+            new = np.einsum("ri,rij->rj", alpha, step_trans[rows]) * em[rows]
+        else:
+            new = ((alpha / d[rows]) @ trans) * g[rows] * em[rows]
         norm = new.sum(axis=1)
         ok = on & (norm > 0)
         loglik += float(np.log(norm[ok]).sum() + peak[rows[ok], 0].sum())
