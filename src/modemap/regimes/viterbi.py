@@ -270,18 +270,16 @@ def forward_gated(
     if lengths.size == 0:
         return 0.0
     # scaled probabilities (the normalised forward variables of the textbook recursion):
-    # alpha_t(j) = g_t(j) e_t(j) sum_i alpha_t-1(i) trans(i, j) / d_t(i), with
-    # d_t(i) = sum_j trans(i, j) g_t(j); the log of every step's normaliser is summed
+    # alpha_t(j) = e_t(j) sum_i alpha_t-1(i) T_t(i, j), with each step's transition matrix
+    # T_t(i, j) = trans(i, j) g_t(j | i) / sum_j' trans(i, j') g_t(j' | i) (a shared gate
+    # is the same for every source i); the log of every step's normaliser is summed
     g = np.exp(np.maximum(np.asarray(log_gate, dtype=np.float64), _IMPOSSIBLE))
     g /= np.maximum(g.sum(axis=-1, keepdims=True), 1e-300)
-    trans = np.exp(log_trans)
-    step_trans = None
-    if g.ndim == 3:  # per source: each step's own transition matrix
-        step_trans = trans[None] * g
-        step_trans /= np.maximum(step_trans.sum(axis=2, keepdims=True), 1e-300)
-        g = g.mean(axis=1)  # the first steps
-    else:
-        d = np.maximum(g @ trans.T, 1e-300)  # (n, K): d_t(i)
+    if g.ndim == 2:
+        g = g[:, None, :]
+    step_trans = np.exp(log_trans)[None] * g
+    step_trans /= np.maximum(step_trans.sum(axis=2, keepdims=True), 1e-300)
+    g = g.mean(axis=1)  # the first steps
     peak = e.max(axis=1, keepdims=True)
     em = np.exp(e - peak)
     top = int(lengths.max())
@@ -296,10 +294,7 @@ def forward_gated(
     alpha /= np.maximum(total, 1e-300)[:, None]
     for step in range(1, top):
         rows, on = idx[step], live[step]
-        if step_trans is not None:
-            new = np.einsum("ri,rij->rj", alpha, step_trans[rows]) * em[rows]
-        else:
-            new = ((alpha / d[rows]) @ trans) * g[rows] * em[rows]
+        new = np.einsum("ri,rij->rj", alpha, step_trans[rows]) * em[rows]
         norm = new.sum(axis=1)
         ok = on & (norm > 0)
         loglik += float(np.log(norm[ok]).sum() + peak[rows[ok], 0].sum())
