@@ -230,7 +230,7 @@ def _gated_scores(z: np.ndarray, labels: np.ndarray, lengths: list[int]) -> tupl
     penalty = 0.5 * np.log(labels.size)
     shared = SurfaceTerm.fit(z, 1, labels, k, C=1000)
     one = forward_gated(log_em, lengths, log_trans, shared.log_prob(z, 1)) - penalty * 2
-    log_gate, extra = _source_gates(z, 1, labels, np.asarray(lengths), k)
+    log_gate, extra = _source_gates(z, labels, np.asarray(lengths), k)
     assert extra == 2 * 2  # two sources, one log-odds each, on one variable and a constant
     return one, forward_gated(log_em, lengths, log_trans, log_gate) - penalty * extra
 

@@ -74,6 +74,7 @@ import numpy as np
 import pandas as pd
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
+from scipy.special import log_softmax
 from scipy.stats import chi2
 
 from modemap.fit.statistics import GramStats
@@ -96,6 +97,9 @@ __all__ = [
 
 #: Lags the autocorrelation time sums at most, as a share of the shortest run's rows.
 _MAX_LAG_SHARE = 0.25
+
+#: Log-probability of a regime never seen after a source regime, under that source's gate.
+_IMPOSSIBLE_GATE = -30.0
 
 #: Two regimes count as one when a Wald test cannot tell their models apart at this level
 #: (the module notes; the level of the guards' term tests, common practice).
@@ -320,7 +324,7 @@ def score(
     shared = SurfaceTerm.fit(z, m, labels, k, C=1000) if k > 1 else None
     if shared is not None:  # switches predicted by where the variables are (module notes)
         gates.append((shared.log_prob(z, m), (k - 1) * (z.shape[1] + 1)))
-        per_source = _source_gates(z, m, labels, lengths, k)
+        per_source = _source_gates(z, labels, lengths, k)
         if per_source is not None:
             gates.append(per_source)
     penalty = 0.5 * np.log(max(labels.size, 2))
@@ -341,32 +345,43 @@ def score(
 
 
 def _source_gates(
-    z: np.ndarray, m: int, labels: np.ndarray, lengths: np.ndarray, k: int
+    z: np.ndarray, labels: np.ndarray, lengths: np.ndarray, k: int
 ) -> tuple[np.ndarray, int] | None:
     """Log-probabilities ``[t, i, j]`` of regime ``j`` at window ``t`` given the variables and
     the regime ``i`` it comes from, one classifier per source regime, and their parameters.
 
-    For each source ``i``: the shared gate's classifier (:class:`SurfaceTerm`, ``C = 1000``)
-    taught on the windows whose last assigned window before them in the run was in ``i``.
-    A source never left in the labels gets no classifier (even probabilities: the chain
-    alone decides there).  None when no source has two regimes after it.
+    For each source ``i``: a multinomial logistic regression (scikit-learn's, ``C = 1000`` on
+    standardised variables, as the shared gate) of the regime of the windows whose last
+    assigned window before them in the run was in ``i``.  A source never left in the labels
+    gets no classifier (even probabilities: the chain alone decides there).  None when no
+    source has two regimes after it.
     """
-    n = z.shape[0]
+    from sklearn.linear_model import LogisticRegression
+
+    n, p = z.shape
     lengths = np.asarray(lengths, dtype=np.int64)
     run_start = np.repeat(np.cumsum(lengths) - lengths, lengths)
     # the last window before each one, in its run, whose regime is assigned
     last = np.maximum.accumulate(np.where(labels >= 0, np.arange(n), -1))
     before = np.r_[-1, last[:-1]]
     previous = np.where(before >= run_start, labels[np.maximum(before, 0)], -1)
+    mean, scale = z.mean(axis=0), z.std(axis=0)
+    x = (z - mean) / np.where(scale > 0, scale, 1.0)
     log_gate = np.full((n, k, k), -np.log(k))
     extra = 0
     for i in range(k):
-        after = np.where(previous == i, labels, -1)
-        gate = SurfaceTerm.fit(z, m, after, k, C=1000)
-        if gate is None:
+        rows = np.flatnonzero((previous == i) & (labels >= 0))
+        present = np.unique(labels[rows])
+        if present.size < 2:
             continue
-        log_gate[:, i, :] = gate.log_prob(z, m)
-        extra += (np.unique(after[after >= 0]).size - 1) * (z.shape[1] + 1)
+        clf = LogisticRegression(C=1000.0, max_iter=500).fit(x[rows], labels[rows])
+        decision = clf.decision_function(x)
+        if decision.ndim == 1:  # binary: the log-odds of classes_[1]
+            decision = np.column_stack([np.zeros(n), decision])
+        scores = np.full((n, k), _IMPOSSIBLE_GATE)
+        scores[:, clf.classes_] = log_softmax(decision, axis=1)
+        log_gate[:, i, :] = scores
+        extra += (present.size - 1) * (p + 1)
     return (log_gate, extra) if extra else None
 
 
