@@ -154,11 +154,7 @@ class LocalDynamics(BaseEstimator):
         local = locals_[0]
         if len(locals_) > 1:
             rows = Rows.of(reg.Z, reg.Y, reg.lengths, reg.time)
-            if self.form == "discrete":
-                windows = Windows(rows, rows.Y, 1, integral=False)
-            else:
-                h = max(1, int(reg.derivative.get("window", 3) or 3) // 3)
-                windows = Windows(rows, rows.Z[:, : rows.n_states], h, integral=True)
+            windows = Windows.common(rows, self.form, reg.derivative)
             local = locals_[int(np.argmin(library_criteria(locals_, windows)))]
         return local, local.fit(self._statistics(local, reg))
 

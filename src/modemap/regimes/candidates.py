@@ -63,17 +63,11 @@ class CandidateSearch:
         return chosen, table
 
     def _windows(self, ctx: FitContext, rows: Rows) -> Windows:
-        """The common targets the candidates are scored on (:class:`.selection.Windows`),
-        once per set of rows: continuous form, windows of a third of the derivative's
-        smoothing window (the noise sets both), at least one interval; discrete form, the
-        rows."""
+        """The common targets the candidates are scored on (:meth:`.selection.Windows.common`),
+        once per set of rows."""
         cached = ctx.windows
         if cached is None or cached[0] is not rows.Z:
-            if self.form == "discrete":
-                windows = Windows(rows, rows.Y, 1, integral=False)
-            else:
-                h = max(1, int(ctx.derivative.get("window", 3) or 3) // 3)
-                windows = Windows(rows, rows.Z[:, : rows.n_states], h, integral=True)
+            windows = Windows.common(rows, self.form, ctx.derivative)
             ctx.windows = cached = (rows.Z, windows)
         return cached[1]
 

@@ -215,6 +215,19 @@ class Windows:
             self.target = np.asarray(states, dtype=np.float64)[self.start]
         self._cache: dict[tuple, np.ndarray] = {}
 
+    @classmethod
+    def common(cls, rows: Rows, form: str, derivative: dict[str, Any]) -> Windows:
+        """The windows the candidates of one fit are scored on.
+
+        Continuous form: windows of a third of the derivative's smoothing window
+        (``derivative["window"]``, the noise sets both), at least one interval; discrete
+        form: the rows, against their next samples.
+        """
+        if form == "discrete":
+            return cls(rows, rows.Y, 1, integral=False)
+        h = max(1, int(derivative.get("window", 3) or 3) // 3)
+        return cls(rows, rows.Z[:, : rows.n_states], h, integral=True)
+
     @property
     def n_windows(self) -> int:
         return int(self.start.size)
