@@ -26,6 +26,7 @@ from modemap.fit.local_model import BoundLocalModel
 from modemap.fit.statistics import accumulate
 from modemap.regimes.context import FitContext
 from modemap.regimes.likelihood import regime_log_likelihood, residuals
+from modemap.regimes.partition import partition_start
 from modemap.regimes.proposal import propose
 from modemap.regimes.refine import RefineResult, refine
 from modemap.regimes.rows import Rows
@@ -212,8 +213,11 @@ class CandidateSearch:
         even where the states overlap), the HMM over the coefficients of local models fitted
         on short windows of rows (:mod:`.windows`: regimes that differ only in their
         dynamics, where the first two can settle on a split by level) when there are at
-        least five windows per regime, and, given the fit of ``k - 1`` regimes, that fit
-        with its worst regime cut in two (:mod:`.search`).
+        least five windows per regime, the variable space cut into ``k`` regions by straight
+        lines, each with its own affine fit (:mod:`.partition`: regimes chosen by where the
+        variables sit, whose models differ by too little for the first three), and, given
+        the fit of ``k - 1`` regimes, that fit with its worst regime cut in two
+        (:mod:`.search`).
 
         When the local model chooses its library order, every start is refined both with
         the affine terms and with the library the regimes are searched with: a richer
@@ -233,6 +237,10 @@ class CandidateSearch:
         if previous is not None and previous.n_regimes == k - 1:
             fitted = rows if previous.targets is None else rows.with_targets(previous.targets)
             splits = split_starts(ctx.library, fitted, previous, seed=int(self.seed))
+        if k > 1:
+            cut = partition_start(rows.Z, rows.Y, k, ctx.settings.min_samples, rows.n_states)
+            if cut is not None:
+                splits.append(cut)
         n_starts = len(starts) + len(splits)
         # the starts compete on the dynamics; the surface term then places the best's switches
         stages = [_without_surface(ctx)]
