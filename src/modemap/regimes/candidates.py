@@ -233,15 +233,15 @@ class CandidateSearch:
             if sizes.size >= _WINDOWS_PER_REGIME * k:  # enough windows to tell K groups apart
                 coef = window_coefficients(ctx.library, rows.Z, rows.Y, sizes)
                 starts.append((coef, per_run, sizes))
-        splits = []
+        labelled = []  # starts given as labels, not proposed by an HMM
         if previous is not None and previous.n_regimes == k - 1:
             fitted = rows if previous.targets is None else rows.with_targets(previous.targets)
-            splits = split_starts(ctx.library, fitted, previous, seed=int(self.seed))
+            labelled = split_starts(ctx.library, fitted, previous, seed=int(self.seed))
         if k > 1:
             cut = partition_start(rows.Z, rows.Y, k, ctx.settings.min_samples, rows.n_states)
             if cut is not None:
-                splits.append(cut)
-        n_starts = len(starts) + len(splits)
+                labelled.append(cut)
+        n_starts = len(starts) + len(labelled)
         # the starts compete on the dynamics; the surface term then places the best's switches
         stages = [_without_surface(ctx)]
         if (
@@ -251,7 +251,7 @@ class CandidateSearch:
         ):
             stages.insert(0, _without_surface(ctx.at_degree(1)))
         best: dict[int | None, RefineResult] = {}
-        for i, start in enumerate(starts + splits):
+        for i, start in enumerate(starts + labelled):
             labels = start if isinstance(start, np.ndarray) else self._propose(rows, k, start)
             step = scaled(progress, i / n_starts, (i + 1) / n_starts)
             for stage in stages:
