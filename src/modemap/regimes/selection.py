@@ -341,11 +341,10 @@ def score(
         if per_source is not None:
             gates.append(per_source)
     penalty = 0.5 * np.log(max(labels.size, 2))
-    best = loglik
-    for log_gate, extra in gates:
+    for log_gate, extra in gates:  # the best chain after its gate's parameters
         gated = forward_gated(log_em, lengths, log_trans, log_gate)
-        if gated - penalty * extra > best - penalty * n_gate:
-            loglik, n_gate, best = gated, extra, gated
+        if gated - penalty * extra > loglik - penalty * n_gate:
+            loglik, n_gate = gated, extra
     share = max(int(scored.sum()), 1) / max(labels.size, 1)
     candidate.loglik = float(loglik / share)
     candidate.n_params = count_parameters(dataclasses.replace(result, fits=fits), m, n_gate)
