@@ -173,3 +173,44 @@ def test_forward_gated_per_source_sums_every_path() -> None:
     assert forward_gated(log_em, lengths, np.log(trans), np.log(same)) == pytest.approx(
         forward_gated(log_em, lengths, np.log(trans), np.log(shared)), rel=1e-12
     )
+
+
+def _log_space_reference(e, lengths, start, trans):
+    from modemap.regimes.viterbi import _GivenEmissions
+
+    ref = _GivenEmissions(n_components=e.shape[1], implementation="log")
+    ref.startprob_, ref.transmat_ = start, trans
+    return ref.score_samples(e, lengths=lengths)
+
+
+def test_forward_backward_of_long_runs_equals_hmmlearn_log_space() -> None:
+    # runs too long to be laid side by side take hmmlearn's scaled recursions on emissions
+    # relative to each row's best regime; reference: hmmlearn's log-space recursions on the
+    # raw emissions (reference library)
+    from modemap.regimes.viterbi import forward_backward
+
+    rng = np.random.default_rng(7)
+    k, lengths = 3, np.array([500, 700])
+    e = 40.0 + 25.0 * rng.normal(size=(lengths.sum(), k))  # far from 0: exp() would overflow
+    start = np.array([0.2, 0.5, 0.3])
+    trans = np.array([[0.9, 0.05, 0.05], [0.1, 0.8, 0.1], [0.02, 0.28, 0.7]])
+    loglik, post = forward_backward(e, lengths, np.log(start), np.log(trans))
+    ref_loglik, ref_post = _log_space_reference(e, lengths, start, trans)
+    assert loglik == pytest.approx(ref_loglik, rel=1e-10)
+    np.testing.assert_allclose(post, ref_post, atol=1e-10)
+
+
+def test_forward_backward_of_a_run_with_no_possible_path() -> None:
+    # the chain starts in regime 1 and can never leave it, but the emissions allow regime 0
+    # only from the 300th row: the scaled recursions underflow, and the log-space ones
+    # (hmmlearn's, the reference) give the log-likelihood of an impossible path
+    from modemap.regimes.viterbi import _IMPOSSIBLE, forward_backward
+
+    e = np.zeros((600, 2))
+    e[300:, 1] = _IMPOSSIBLE
+    start, trans = np.array([0.0, 1.0]), np.array([[0.5, 0.5], [0.0, 1.0]])
+    with np.errstate(divide="ignore"):
+        loglik, _ = forward_backward(e, [600], np.log(start), np.log(trans))
+    ref_loglik, _ = _log_space_reference(np.maximum(e, _IMPOSSIBLE), [600], start, trans)
+    assert loglik == pytest.approx(ref_loglik, rel=1e-10)
+    assert loglik < -1e200

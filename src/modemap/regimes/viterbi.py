@@ -222,9 +222,22 @@ def forward_backward(
 def _forward_backward_hmmlearn(
     e: np.ndarray, lengths: np.ndarray, log_start: np.ndarray, log_trans: np.ndarray
 ) -> tuple[float, np.ndarray]:
+    """hmmlearn's compiled recursions, run by run: the scaled ones on each row's emissions
+    relative to its best regime (the row maxima added back to the log-likelihood; two to
+    three times faster than the log-space ones, whose posteriors take a log-sum-exp per run),
+    and the log-space ones when a run has no possible path (the scaled pass underflows)."""
+    start, trans = np.exp(log_start), np.exp(log_trans)
+    peak = e.max(axis=1, keepdims=True)
+    chain = _GivenEmissions(n_components=e.shape[1], implementation="scaling")
+    chain.startprob_, chain.transmat_ = start, trans
+    try:
+        log_prob, posteriors = chain.score_samples(e - peak, lengths=lengths)
+    except ValueError:  # underflow: a run with no possible path
+        log_prob = np.nan
+    if np.isfinite(log_prob) and np.isfinite(posteriors).all():
+        return float(log_prob + peak.sum()), posteriors
     chain = _GivenEmissions(n_components=e.shape[1], implementation="log")
-    chain.startprob_ = np.exp(log_start)
-    chain.transmat_ = np.exp(log_trans)
+    chain.startprob_, chain.transmat_ = start, trans
     log_prob, posteriors = chain.score_samples(e, lengths=lengths)
     return float(log_prob), posteriors
 
