@@ -17,7 +17,9 @@ noise model:
   approach to the economic analysis of nonstationary time series and the business cycle",
   Econometrica 57(2), 1989, DOI 10.2307/1912559), Gaussian residuals with the refinement's
   noise model (one covariance shared by the regimes in continuous form, one per regime in
-  discrete form), transition probabilities from the candidate's switch counts.  When a
+  discrete form), transition probabilities from the candidate's counts of consecutive
+  windows with the sticky prior (a window that holds a switch has no regime, so the switch
+  itself is not counted and costs what the prior allows: docs/method.md, limit (5)).  When a
   classifier of the variables predicts the switches better than the constant chain by more
   than its parameters cost (BIC on the windows), the chain's transitions are gated by it
   (:func:`~modemap.regimes.viterbi.forward_gated`): regimes selected by where the state
