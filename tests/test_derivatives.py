@@ -217,32 +217,3 @@ def test_runs_together_equal_each_run_alone(seed, monkeypatch) -> None:
         else:
             np.testing.assert_array_equal(dx[a:b], alone)
     assert ({"savgol"} if seed == 2 else {"central", "savgol"}) <= methods
-
-
-@pytest.mark.parametrize(("window", "order"), [(3, 1), (5, 2), (5, 3), (27, 3), (101, 3), (9, 4)])
-def test_savgol_derivative_equals_scipys_filter(window, order) -> None:
-    # reference library: scipy.signal.savgol_filter(deriv=1, mode="interp"), whose ends fit
-    # a polynomial to the first and last windows; ours takes the same least-squares
-    # derivative from precomputed coefficients, along either axis of a stack of runs
-    from scipy.signal import savgol_filter
-
-    from modemap.data.derivatives import savgol_derivative
-
-    rng = np.random.default_rng(window + order)
-    for shape, axis in (((333, 2), 0), ((4, 150, 3), 1), ((window,), 0)):
-        X = 100.0 + 3.0 * rng.normal(size=shape).cumsum(axis=axis)
-        ref = savgol_filter(X, window, order, deriv=1, delta=0.013, axis=axis, mode="interp")
-        ours = savgol_derivative(X, window, order, 0.013, axis=axis)
-        np.testing.assert_allclose(ours, ref, rtol=0, atol=1e-12 * np.abs(ref).max())
-
-
-def test_savgol_derivative_is_exact_on_a_cubic() -> None:
-    # textbook: a least-squares polynomial of order 3 reproduces a cubic, so its derivative
-    # is exact at every sample, the ends included
-    from modemap.data.derivatives import savgol_derivative
-
-    t = 2.0 + 0.013 * np.arange(300)
-    x = 0.5 * t**3 - t**2 + 3.0
-    exact = 1.5 * t**2 - 2.0 * t
-    for window in (5, 27, 101):
-        np.testing.assert_allclose(savgol_derivative(x, window, 3, 0.013), exact, rtol=1e-11)

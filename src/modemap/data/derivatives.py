@@ -12,8 +12,7 @@ two from an estimate of the noise:
 ``savgol``
     Savitzky-Golay smoothing derivative ("Smoothing and differentiation of data
     by simplified least squares procedures", Analytical Chemistry, 1964,
-    DOI 10.1021/ac60214a047), SciPy's filter with its ends by precomputed coefficients
-    (:func:`savgol_derivative`); needs a
+    DOI 10.1021/ac60214a047) through ``scipy.signal.savgol_filter``; needs a
     uniform step.  Options ``window`` (odd, in samples) and ``order``.
 ``spline``
     Derivative of a smoothing spline (``scipy.interpolate.UnivariateSpline``)
@@ -32,14 +31,12 @@ Callers loop over runs: a derivative never crosses a run boundary.
 from __future__ import annotations
 
 import warnings
-from functools import lru_cache
 from typing import Any
 
 import numpy as np
 from scipy.interpolate import UnivariateSpline
 from scipy.linalg import solveh_banded
-from scipy.ndimage import convolve1d
-from scipy.signal import savgol_coeffs
+from scipy.signal import savgol_coeffs, savgol_filter
 
 from modemap._exceptions import DataError
 
@@ -49,7 +46,6 @@ __all__ = [
     "differentiate_runs",
     "estimate_noise",
     "gradient_rows",
-    "savgol_derivative",
 ]
 
 DERIVATIVE_METHODS = ("central", "savgol", "spline", "tv")
@@ -204,7 +200,7 @@ def _savgol_together(
     done = valid & uniform
     for h in np.unique(step[done]):
         pick = np.flatnonzero(done & (step == h))
-        dx = savgol_derivative(X[pick], window, order, h, axis=1)
+        dx = savgol_filter(X[pick], window, order, deriv=1, delta=h, axis=1, mode="interp")
         for i, d in zip(pick, dx, strict=True):
             out[rows[i]] = d
             settings[runs[i]] = {
@@ -247,7 +243,7 @@ def _auto_together(
         out[rows[i]] = grad[i]
     for h in np.unique(step[smooth]):
         pick = np.flatnonzero(smooth & (step == h))
-        dx = savgol_derivative(X[pick], 5, AUTO_ORDER, h, axis=1)
+        dx = savgol_filter(X[pick], 5, AUTO_ORDER, deriv=1, delta=h, axis=1, mode="interp")
         for i, d in zip(pick, dx, strict=True):
             out[rows[i]] = d
     for i in np.flatnonzero(central | smooth):
@@ -290,58 +286,6 @@ def estimate_noise(X: np.ndarray) -> np.ndarray:
 # ------------------------------------------------------------------ methods
 
 
-def savgol_derivative(
-    X: np.ndarray, window: int, order: int, delta: float, axis: int = 0
-) -> np.ndarray:
-    """First derivative by a Savitzky-Golay filter along ``axis``, the ends by the same
-    least-squares polynomial over the first and last ``window`` samples.
-
-    The same values as ``scipy.signal.savgol_filter(X, window, order, deriv=1, delta=delta,
-    axis=axis, mode="interp")``, to round-off: the interior is the same convolution, and the
-    ends are the dot products of the edge windows with the filter's coefficients at each
-    position (``savgol_coeffs(..., pos=p)``, cached), where SciPy fits a polynomial to every
-    edge window anew.  On many short stretches that fit was most of the time.
-
-    Parameters
-    ----------
-    X : ndarray
-        Samples, evenly spaced by ``delta`` along ``axis`` (at least ``window`` of them).
-    window : int
-        Odd number of samples in the window.
-    order : int
-        Polynomial order, below ``window``.
-    delta : float
-        Sample spacing.
-    axis : int, default=0
-
-    Returns
-    -------
-    ndarray of the shape of ``X``
-    """
-    X = np.moveaxis(np.asarray(X, dtype=np.float64), axis, -1)
-    n, half = X.shape[-1], window // 2
-    middle, head, tail = _savgol_table(int(window), int(order))
-    out = convolve1d(X, middle, axis=-1, mode="constant")
-    out[..., :half] = X[..., :window] @ head.T
-    out[..., n - half :] = X[..., n - window :] @ tail.T
-    out /= delta
-    return np.moveaxis(out, -1, axis)
-
-
-@lru_cache(maxsize=64)
-def _savgol_table(window: int, order: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The first derivative's coefficients at unit spacing: the convolution's, and the dot
-    products' at the first and the last ``window // 2`` positions of a window."""
-    half, centre = window // 2, (window - 1) / 2
-    u = (np.arange(window) - centre) / centre  # positions scaled to [-1, 1]: well conditioned
-    powers = np.arange(order + 1)
-    fit = np.linalg.pinv(u[:, None] ** powers)  # polynomial coefficients from the samples
-    slope = powers * u[:, None] ** np.maximum(powers - 1, 0) / centre  # d/dposition
-    at = slope @ fit  # row p: the derivative at position p from the window's samples
-    middle = savgol_coeffs(window, order, deriv=1)  # the interior: SciPy's convolution
-    return middle, at[:half], at[window - half :]
-
-
 def _central(t: np.ndarray, X: np.ndarray) -> tuple[np.ndarray, dict[str, Any]]:
     return np.gradient(X, t, axis=0, edge_order=2), {"method": "central"}
 
@@ -360,7 +304,7 @@ def _savgol(
         raise DataError(f"savgol order must be between 1 and window-1 ({window - 1}), got {order}")
     window = min(window, n if n % 2 else n - 1)
     order = min(order, window - 1)
-    dX = savgol_derivative(X, window, order, step, axis=0)
+    dX = savgol_filter(X, window, order, deriv=1, delta=step, axis=0, mode="interp")
     return dX, {"method": "savgol", "window": window, "order": order, "step": step}
 
 

@@ -44,13 +44,13 @@ from itertools import pairwise
 from typing import Any
 
 import numpy as np
+from scipy.signal import savgol_filter
 
 from modemap.data.derivatives import (
     RECORD_ONLY,
     UNIFORM_TOLERANCE,
     differentiate,
     gradient_rows,
-    savgol_derivative,
 )
 from modemap.regimes.short_runs import batched
 
@@ -163,7 +163,7 @@ def _stretches(
         stack = states[rows]  # (stretches, n, m)
         if key[0] == "savgol":
             _, _, window, order, step = key
-            dx = savgol_derivative(stack, window, order, step, axis=1)
+            dx = savgol_filter(stack, window, order, deriv=1, delta=step, axis=1, mode="interp")
         else:
             dx = gradient_rows(stack, time[rows], uniform=key[3], edge_order=key[2])
         for j, d in zip(members, dx, strict=True):
